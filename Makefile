@@ -1,0 +1,31 @@
+# Two entry points: `make demo` and `make test`. Both create .venv when missing and refresh it when
+# pyproject.toml changes (the stamp file records the last install).
+PYTHON ?= python3.11
+VENV := .venv
+STAMP := $(VENV)/.installed
+BIN := $(VENV)/bin
+
+.PHONY: demo test test-fast bench clean-results
+
+$(STAMP): pyproject.toml
+	test -x $(BIN)/python || $(PYTHON) -m venv $(VENV) || python3 -m venv $(VENV)
+	$(BIN)/python -m pip install --quiet --upgrade pip
+	# torch first, exactly pinned, so no other requirement can pull a CUDA build
+	$(BIN)/python -m pip install --quiet torch==2.13.0
+	$(BIN)/python -m pip install --quiet -e '.[test]'
+	touch $(STAMP)
+
+demo: $(STAMP)
+	$(BIN)/shiftgrid demo --run
+
+test: $(STAMP)
+	$(BIN)/python -m pytest -q
+
+test-fast: $(STAMP)
+	$(BIN)/python -m pytest -q -m "not e2e"
+
+bench: $(STAMP)
+	$(BIN)/python bench/startup_overhead.py
+
+clean-results:
+	rm -rf results/splits results/runs results/grid.* results/report.html results/logs .snakemake
