@@ -1,0 +1,28 @@
+# shiftgrid DAG: raw station dumps -> clean Parquet -> splits -> trained runs (MLflow) -> grid and report.
+# Configuration comes from Hydra (config/); pass overrides with
+#   snakemake --config overrides="experiment=demo model=lstm,gru penalty.weight=100"
+# The plan (cities, splits, jobs, each job's config slice) is computed once here, from config only.
+
+from pipeline.workflow import plan_workflow
+
+PLAN = plan_workflow(config.get("overrides"), workflow.basedir)
+RESULTS = PLAN.results_dir
+
+
+wildcard_constraints:
+    city=r"[a-z][a-z0-9]*",
+    split_id=r"[a-z0-9+\-]+",
+    model=r"[a-z][a-z0-9_]*",
+    seed=r"\d+",
+
+
+include: "pipeline/rules/ingest.smk"
+include: "pipeline/rules/splits.smk"
+include: "pipeline/rules/train.smk"
+include: "pipeline/rules/aggregate.smk"
+
+
+rule all:
+    input:
+        f"{RESULTS}/grid.csv",
+        f"{RESULTS}/report.html",

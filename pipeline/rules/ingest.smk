@@ -1,0 +1,31 @@
+# Stage 1: one job per city turns its raw dump into the canonical hourly table and a QC report.
+
+
+def raw_files_of(wildcards):
+    from pipeline.ingest import raw_files
+
+    return raw_files(PLAN.cfg.data.raw_dir, PLAN.city_format(wildcards.city))
+
+
+def city_format_json(wildcards):
+    from pipeline.config import canonical_json
+
+    return canonical_json(PLAN.city_format(wildcards.city))
+
+
+rule ingest_city:
+    input:
+        raw=raw_files_of,
+        stations=PLAN.cfg.data.stations,
+    output:
+        clean=f"{PLAN.cfg.data.clean_dir}/{{city}}.parquet",
+        qc=f"{PLAN.cfg.data.qc_dir}/{{city}}.json",
+    log:
+        f"{RESULTS}/logs/ingest_city/{{city}}.log",
+    params:
+        city_format=city_format_json,
+        raw_dir=PLAN.cfg.data.raw_dir,
+        reference_temperature_c=PLAN.cfg.data.reference_temperature_c,
+        code=PLAN.stage_digest("ingest"),
+    script:
+        "../scripts/ingest_city.py"

@@ -1,0 +1,40 @@
+# Stage 2: tracking store and split records. Both are cheap; the split list itself comes from config.
+
+
+rule setup_tracking:
+    output:
+        f"{RESULTS}/tracking.json",
+    log:
+        f"{RESULTS}/logs/setup_tracking.log",
+    params:
+        uri=PLAN.tracking_uri,
+        experiment=PLAN.cfg.tracking.experiment,
+        results_dir=RESULTS,
+    script:
+        "../scripts/setup_tracking.py"
+
+
+def clean_inputs_of_split(wildcards):
+    return {city: PLAN.clean_path(city) for city in PLAN.split_cities(wildcards.split_id)}
+
+
+def split_plan_json(wildcards):
+    from pipeline.config import canonical_json
+
+    return canonical_json(PLAN.splits[wildcards.split_id])
+
+
+rule build_split:
+    input:
+        unpack(clean_inputs_of_split),
+    output:
+        f"{RESULTS}/splits/{{split_id}}.json",
+    log:
+        f"{RESULTS}/logs/build_split/{{split_id}}.log",
+    params:
+        plan=split_plan_json,
+        lookback=PLAN.cfg.forecast.lookback_hours,
+        horizon=PLAN.cfg.forecast.horizon_hours,
+        code=PLAN.stage_digest("splits"),
+    script:
+        "../scripts/build_split.py"

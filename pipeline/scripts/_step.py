@@ -1,0 +1,30 @@
+"""Shared shell of every rule script: send output to the job's log, turn bad input into one line.
+
+A rule script runs with Snakemake's `snakemake` object; the work itself is a plain function of the
+package, so each step also runs and is tested without Snakemake.
+"""
+
+import contextlib
+import sys
+import traceback
+from pathlib import Path
+
+from pipeline.errors import InputError
+
+
+def run_step(snakemake, work) -> None:
+    log_path = Path(snakemake.log[0]) if snakemake.log else None
+    if log_path:
+        log_path.parent.mkdir(parents=True, exist_ok=True)
+    with open(log_path, "w") if log_path else contextlib.nullcontext(sys.stderr) as log:
+        with contextlib.redirect_stdout(log), contextlib.redirect_stderr(log):
+            try:
+                work(snakemake)
+            except InputError as error:
+                print(f"error: {error}", file=log)
+                print(f"error: {error}", file=sys.__stderr__)
+                sys.exit(2)
+            except Exception:
+                traceback.print_exc(file=log)
+                print(f"error: step failed, see {log_path}", file=sys.__stderr__)
+                sys.exit(1)

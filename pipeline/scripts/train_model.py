@@ -1,0 +1,17 @@
+"""Rules train_model / fit_baseline: every seed of one split x model x penalty -> MLflow + run records."""
+
+import json
+
+from pipeline.scripts._step import run_step
+from pipeline.train_job import run_train_job
+
+
+def work(snakemake):
+    tracking = json.loads(open(snakemake.input.tracking).read())
+    clean_paths = {k: str(v) for k, v in snakemake.input.items() if k not in ("split", "tracking")}
+    run_train_job(snakemake.input.split, json.loads(snakemake.params.job), list(snakemake.params.seeds),
+                  list(snakemake.output), tracking["tracking_uri"], tracking["experiment"],
+                  snakemake.params.code, clean_paths=clean_paths)
+
+
+run_step(snakemake, work)  # noqa: F821

@@ -1,0 +1,65 @@
+"""Model-selection rules: which evaluated checkpoint of a fit a run reports.
+
+Reads a fitted model's `history_` (one entry per evaluation with `val/<set>/all` risks) and, for
+leave-one-source-out, the validation curves of refits that each left one source group out. Obeys
+`selection.rule` and `selection.also`.
+
+- source-val: lowest risk on the validation time block of the source environments (honest default).
+- leave-one-source-out: refit without each source group, score on the left-out group's validation
+  block, average the curves over groups, take the step with the lowest average (honest; costs refits).
+- target-oracle: lowest risk on the target's validation block. It uses target data, so it is only an
+  upper bound and every figure built from it is labelled as such.
+Ties go to the earliest step (fewer updates). Families without a training curve have one step, 0.
+"""
+
+from __future__ import annotations
+
+ORACLE = "target-oracle"
+LOSO = "leave-one-source-out"
+UPPER_BOUND_LABEL = "target-oracle (upper bound: selected with target data)"
+
+
+def uses_target_data(rule: str) -> bool:
+    return rule == ORACLE
+
+
+def label(rule: str) -> str:
+    """How a selection rule is named in every table and figure."""
+    return UPPER_BOUND_LABEL if uses_target_data(rule) else rule
+
+
+def _argmin_step(points: dict[int, float]) -> int:
+    finite = {step: value for step, value in points.items() if value == value}  # drop NaN
+    if not finite:
+        return min(points) if points else 0
+    best = min(finite.values())
+    return min(step for step, value in finite.items() if value == best)
+
+
+def curve(history: list[dict], key: str) -> dict[int, float]:
+    return {int(entry["step"]): float(entry[key]) for entry in history if key in entry}
+
+
+def nearest_step(step: int, available: list[int]) -> int:
+    """The stored snapshot closest to `step` (earlier one on a tie)."""
+    return min(available, key=lambda s: (abs(s - step), s))
+
+
+def choose_step(rule: str, history: list[dict], available_steps: list[int],
+                loso_curves: dict[str, dict[int, float]] | None = None) -> int:
+    if not history:
+        return available_steps[0] if available_steps else 0
+    if rule == "source-val":
+        step = _argmin_step(curve(history, "val/source/all"))
+    elif rule == ORACLE:
+        step = _argmin_step(curve(history, "val/target/all"))
+    elif rule == LOSO:
+        if not loso_curves:
+            raise ValueError("leave-one-source-out needs the curves of the left-out refits")
+        common = set.intersection(*(set(points) for points in loso_curves.values()))
+        averaged = {s: sum(points[s] for points in loso_curves.values()) / len(loso_curves)
+                    for s in common}
+        step = _argmin_step(averaged)
+    else:
+        raise ValueError(f"unknown selection rule {rule!r}")
+    return nearest_step(step, available_steps)

@@ -1,0 +1,104 @@
+"""MLflow bookkeeping: the store, the experiment, logging one run in batches, superseding old runs.
+
+Writes to the MLflow tracking store named by `tracking.uri` (default: SQLite file
+`<results_dir>/mlflow.db`, artifacts under `<results_dir>/mlartifacts`, both absolute paths).
+A fresh SQLite store opened by parallel jobs breaks (STACK-NOTES), so `setup_store` runs once, in its
+own rule, before any training job. Every call goes through an explicit MlflowClient (no global run).
+"""
+
+from __future__ import annotations
+
+import time
+from pathlib import Path
+from typing import Iterable
+
+from pipeline.errors import InputError
+
+RUN_IDENTITY_TAGS = ("split_id", "model", "penalty", "seed")
+SUPERSEDED_TAG = "superseded_by"
+# MLflow's log_batch limits per call (documented): 1000 metrics, 100 params, 100 tags.
+_BATCH = {"metrics": 1000, "params": 100, "tags": 100}
+
+
+def resolve_tracking_uri(uri: str | None, results_dir: Path | str) -> str:
+    if uri:
+        return uri
+    return f"sqlite:///{(Path(results_dir).resolve() / 'mlflow.db')}"
+
+
+def artifact_location(results_dir: Path | str) -> str:
+    return (Path(results_dir).resolve() / "mlartifacts").as_uri()
+
+
+def client_for(uri: str):
+    from mlflow.tracking import MlflowClient
+
+    return MlflowClient(tracking_uri=uri)
+
+
+def setup_store(uri: str, experiment: str, artifact_uri: str) -> str:
+    """Create the store (schema migration happens here, in one process) and the experiment; return its id."""
+    client = client_for(uri)
+    found = client.get_experiment_by_name(experiment)
+    if found is not None:
+        return found.experiment_id
+    return client.create_experiment(experiment, artifact_location=artifact_uri)
+
+
+def experiment_id(client, experiment: str) -> str:
+    found = client.get_experiment_by_name(experiment)
+    if found is None:
+        raise InputError(f"MLflow experiment {experiment!r} does not exist; run the setup_tracking rule first",
+                         field="tracking.experiment")
+    return found.experiment_id
+
+
+def flatten(tree: dict, prefix: str = "") -> dict[str, str]:
+    """Nested config -> {'model.hidden_size': '32', ...} (MLflow params are strings)."""
+    flat = {}
+    for key, value in tree.items():
+        name = f"{prefix}{key}"
+        if isinstance(value, dict) and value:
+            flat.update(flatten(value, f"{name}."))
+        else:
+            flat[name] = str(value)
+    return flat
+
+
+def _chunks(items: list, size: int) -> Iterable[list]:
+    for start in range(0, len(items), size):
+        yield items[start:start + size]
+
+
+def log_run(client, experiment_id_: str, *, run_name: str, params: dict[str, str],
+            metrics: dict[str, float], curves: dict[str, list[tuple[int, float]]], tags: dict[str, str],
+            artifacts: dict[str, Path]) -> str:
+    """Create, fill and finish one run with batched calls (one HTTP request per batch on a server)."""
+    from mlflow.entities import Metric, Param, RunTag
+
+    run = client.create_run(experiment_id_, run_name=run_name, tags={k: str(v) for k, v in tags.items()})
+    run_id = run.info.run_id
+    now = int(time.time() * 1000)
+    metric_rows = [Metric(k, float(v), now, 0) for k, v in sorted(metrics.items())]
+    metric_rows += [Metric(k, float(v), now, int(step)) for k, points in sorted(curves.items())
+                    for step, v in points]
+    for batch in _chunks(metric_rows, _BATCH["metrics"]):
+        client.log_batch(run_id, metrics=batch)
+    for batch in _chunks([Param(k, v[:6000]) for k, v in sorted(params.items())], _BATCH["params"]):
+        client.log_batch(run_id, params=batch)
+    for name, path in artifacts.items():
+        client.log_artifact(run_id, str(path), artifact_path=name)
+    client.set_terminated(run_id, "FINISHED")
+    return run_id
+
+
+def supersede_previous(client, experiment_id_: str, identity: dict[str, str], new_run_id: str) -> list[str]:
+    """Tag earlier current runs of the same split/model/penalty/seed as superseded (never deleted)."""
+    clauses = [f"tags.{key} = '{identity[key]}'" for key in RUN_IDENTITY_TAGS]
+    older = client.search_runs([experiment_id_], filter_string=" and ".join(clauses), max_results=1000)
+    superseded = []
+    for run in older:
+        if run.info.run_id != new_run_id and SUPERSEDED_TAG not in run.data.tags:
+            client.set_tag(run.info.run_id, SUPERSEDED_TAG, new_run_id)
+            superseded.append(run.info.run_id)
+    return superseded

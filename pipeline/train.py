@@ -1,0 +1,161 @@
+"""One training job: every seed of one split x model x penalty, evaluated, logged to MLflow, recorded.
+
+Reads the split record (results/splits/<split_id>.json), the clean Parquet of the split's cities and the
+job's config slice (pipeline.config.job_slice: model, penalty, trainer, selection, forecast, metrics).
+Writes one MLflow run per seed (params, metrics, tags, artifacts) and one run record per seed
+(results/runs/<split_id>/<model>/<penalty>/<seed>.json). Seeds share one process so the ~3 s of imports
+and MLflow connection are paid once per job, not per run (STACK-NOTES).
+"""
+
+from __future__ import annotations
+
+import dataclasses
+import json
+import os
+import tempfile
+import time
+from pathlib import Path
+
+import numpy as np
+import pandas as pd
+
+from pipeline import selection
+from pipeline.config import NOT_APPLICABLE
+from pipeline.metrics import forecast_scores, mse
+from pipeline.models import build_model
+from pipeline.penalties import build_penalty
+from pipeline.train_loop import TrainerConfig
+from pipeline.windows import ForecastConfig, build_windows
+
+
+def write_json_atomic(path: Path | str, payload: dict) -> None:
+    path = Path(path)
+    path.parent.mkdir(parents=True, exist_ok=True)
+    with tempfile.NamedTemporaryFile("w", dir=path.parent, suffix=".tmp", delete=False) as handle:
+        json.dump(payload, handle, indent=2, sort_keys=True, default=str)
+        temporary = handle.name
+    os.replace(temporary, path)
+
+
+def subset(window_set, mask: np.ndarray):
+    """The windows of a WindowSet where mask is True (same feature and environment lists)."""
+    return dataclasses.replace(window_set, X=window_set.X[mask], y=window_set.y[mask], env=window_set.env[mask],
+                               station=window_set.station[mask], origin=window_set.origin[mask])
+
+
+def station_city_map(tables: dict[str, pd.DataFrame]) -> dict[str, str]:
+    return {station: city for city, table in tables.items() for station in table["station_id"].unique()}
+
+
+def _loso_groups(split: dict, station_city: dict[str, str]) -> dict[str, set[str]]:
+    """Groups left out one at a time: source cities, or source environments within one city."""
+    if len(split["sources"]) >= 2:
+        return {city: {s for s in split["source_stations"] if station_city.get(s) == city}
+                for city in split["sources"]}
+    return {env: set(stations) for env, stations in split["environments"].items()}
+
+
+def _make_penalty(job: dict):
+    spec = job["penalty"]
+    if spec is None:
+        return None
+    return build_penalty(spec["name"], weight=spec["weight"], warmup_steps=spec["warmup_steps"],
+                         **spec.get("extra", {}))
+
+
+def _fit(job: dict, seed: int, train, val: dict):
+    params = {k: v for k, v in job["model"].items() if k != "family"}
+    model = build_model(job["model"]["family"], params, seed=seed)
+    return model.fit(train, val=val, penalty=_make_penalty(job), trainer=TrainerConfig(**job["trainer"]))
+
+
+def loso_curves(job: dict, seed: int, windows, split: dict, station_city: dict) -> dict[str, dict]:
+    curves = {}
+    for group, stations in _loso_groups(split, station_city).items():
+        keep = ~np.isin(windows.train.station, list(stations))
+        held = np.isin(windows.val_source.station, list(stations))
+        if keep.sum() == 0 or held.sum() == 0:
+            continue
+        refit = _fit(job, seed, subset(windows.train, keep), {"source": subset(windows.val_source, held)})
+        curves[group] = selection.curve(refit.history_, "val/source/all")
+    return curves
+
+
+def _evaluate(model, windows, job: dict) -> tuple[dict, np.ndarray]:
+    """Target and source test metrics in canonical units for the model's current snapshot."""
+    threshold = job["metrics"]["exceedance_threshold"]
+    y_target = windows.unscale_target(windows.test_target.y)
+    p_target = windows.unscale_target(model.predict(windows.test_target.X))
+    scores = {f"target_{k}": v for k, v in
+              forecast_scores(y_target, p_target, windows.target_naive_scale, threshold).items()}
+    source = windows.test_source
+    y_source = windows.unscale_target(source.y)
+    p_source = windows.unscale_target(model.predict(source.X))
+    scores["source_mae"] = float(np.nanmean(np.abs(y_source - p_source))) if len(source.y) else float("nan")
+    scores["source_mse"] = mse(y_source, p_source) if len(source.y) else float("nan")
+    env_risks = {}
+    for index, name in enumerate(source.env_names):
+        mask = source.env == index
+        if mask.any():
+            env_risks[name] = mse(y_source[mask], p_source[mask])
+    for name, risk in env_risks.items():
+        scores[f"source_env_mse.{name}"] = risk
+    scores["worst_source_env_mse"] = max(env_risks.values()) if env_risks else float("nan")
+    scores["gap_mae"] = scores["target_mae"] - scores["source_mae"]
+    return scores, p_target
+
+
+def predictions_frame(windows, predictions: dict[str, np.ndarray]) -> pd.DataFrame:
+    test = windows.test_target
+    y = windows.unscale_target(test.y)
+    frames = []
+    for rule, pred in predictions.items():
+        frame = pd.DataFrame({"station_id": test.station, "origin": test.origin, "selection": rule})
+        for step in range(y.shape[1]):
+            frame[f"y_h{step + 1:02d}"] = y[:, step].astype("float32")
+            frame[f"p_h{step + 1:02d}"] = pred[:, step].astype("float32")
+        frames.append(frame)
+    return pd.concat(frames, ignore_index=True)
+
+
+def history_curves(history: list[dict]) -> dict[str, list[tuple[int, float]]]:
+    keys = {"train_loss": "curve.train_loss", "val/source/all": "curve.val_source",
+            "val/target/all": "curve.val_target"}
+    return {name: [(e["step"], e[key]) for e in history if key in e and np.isfinite(e[key])]
+            for key, name in keys.items()}
+
+
+def state_for_saving(model) -> dict:
+    import torch
+
+    state = model.state_dict() or {}
+    return {k: torch.as_tensor(np.asarray(v)) if not isinstance(v, torch.Tensor) else v
+            for k, v in state.items()}
+
+
+def run_seed(job: dict, seed: int, windows, split: dict, station_city: dict) -> dict:
+    """Fit one seed and evaluate it under every configured selection rule."""
+    started = time.perf_counter()
+    model = _fit(job, seed, windows.train, {"source": windows.val_source, "target": windows.val_target})
+    fit_seconds = time.perf_counter() - started
+    primary = job["selection"]["rule"]
+    rules = list(dict.fromkeys([primary, *job["selection"]["also"]]))
+    loso = None
+    if selection.LOSO in rules and model.history_:
+        loso = loso_curves(job, seed, windows, split, station_city)
+        if not loso:
+            rules.remove(selection.LOSO)  # a single source group cannot be left out
+    metrics, predictions, chosen = {}, {}, {}
+    for rule in rules:
+        step = selection.choose_step(rule, model.history_, model.snapshot_steps_, loso)
+        model.use_snapshot(step)
+        scores, predictions[rule] = _evaluate(model, windows, job)
+        chosen[rule] = step
+        metrics.update({f"{rule}.{k}": v for k, v in scores.items()})
+        metrics[f"{rule}.selected_step"] = step
+    if primary in chosen:
+        model.use_snapshot(chosen[primary])
+        metrics.update({k.split(".", 1)[1]: v for k, v in metrics.items() if k.startswith(f"{primary}.")})
+    metrics["fit_seconds"] = fit_seconds
+    return {"model": model, "metrics": metrics, "predictions": predictions, "chosen": chosen,
+            "primary": primary if primary in chosen else rules[0]}
