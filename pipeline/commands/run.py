@@ -1,0 +1,27 @@
+"""`shiftgrid run [OVERRIDES...] [-- SNAKEMAKE ARGS]`: the whole DAG, ingestion first, then the rest.
+
+Overrides use Hydra syntax; `model=a,b`, `penalty=a,b` and `seed=0,1` sweep (see pipeline.config).
+"""
+
+from pathlib import Path
+
+from pipeline.runner import run_pipeline
+from pipeline.workflow import plan_workflow
+
+
+def add_arguments(parser) -> None:
+    parser.add_argument("overrides", nargs="*", help="Hydra overrides, e.g. experiment=demo model=lstm,gru")
+    parser.add_argument("--profile", default="local", help="Snakemake profile: local, slurm or a folder")
+    parser.add_argument("--snakemake", nargs="*", default=[], metavar="ARG",
+                        help="extra arguments handed to snakemake as they are (e.g. --snakemake=-n)")
+
+
+def run(args) -> int:
+    plan = plan_workflow(args.overrides, args.root)  # fails early, in one line, on a bad override
+    print(f"plan: {len(plan.cities)} cities, {len(plan.splits)} splits, {len(plan.jobs)} training jobs, "
+          f"{len(plan.all_run_records())} runs")
+    status = run_pipeline(args.overrides, root=Path(args.root), profile=args.profile, extra=args.snakemake)
+    if status == 0:
+        print(f"grid: {Path(args.root) / plan.results_dir / 'grid.csv'}")
+        print(f"report: {Path(args.root) / plan.results_dir / 'report.html'}")
+    return status
