@@ -56,19 +56,19 @@ class SplitConfig:
     target_train_fraction: float = 0.0  # last part of the target's train block admitted into training
 
 
-def _plain(value):
+def plain_container(value):
     """Plain Python containers from dicts, lists or OmegaConf containers (no omegaconf import)."""
     if isinstance(value, Mapping):
-        return {str(k): _plain(v) for k, v in value.items()}
+        return {str(k): plain_container(v) for k, v in value.items()}
     if isinstance(value, Sequence) and not isinstance(value, (str, bytes)):
-        return [_plain(v) for v in value]
+        return [plain_container(v) for v in value]
     return value
 
 
 def _as_config(cfg) -> SplitConfig:
     if isinstance(cfg, SplitConfig):
         cfg = asdict(cfg)
-    values = _plain(cfg)
+    values = plain_container(cfg)
     known = {f.name for f in fields(SplitConfig)}
     for key in values:
         if key not in known:
