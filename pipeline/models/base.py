@@ -1,0 +1,233 @@
+"""The contract every model family follows, and the wrapper that trains torch networks through it.
+
+Reads in-memory window sets (X (n, L, F), y (n, H), env, env_names, target_index; see
+pipeline.train_loop.WindowSetLike); writes nothing. Obeys the `model` config group: the keys of the
+family's `Params` dataclass, plus the run seed.
+
+Contract (sklearn-like): `__init__(seed=0, **params)` only checks the parameter NAMES and stores them
+unchanged (`self.seed`, `self.params`); values are validated in `fit` (Params.__post_init__).
+`fit(train, val=None, penalty=None, trainer=None)` returns self; learned state ends in `_`:
+`history_`, `snapshot_steps_`, `best_step_`, `stop_reason_`, `n_parameters_`, `fit_seconds_`.
+`predict(X)` returns float32 (n, H) in scaled units. `state_dict()` returns {"meta": {...}, "weights":
+{...}} and `load_state_dict()` restores a model that predicts identically, also into a fresh instance.
+"""
+
+from __future__ import annotations
+
+import time
+from dataclasses import asdict, dataclass, fields
+from typing import Any, ClassVar
+
+import numpy as np
+import torch
+
+from pipeline.errors import InputError
+from pipeline.train_loop import TrainerConfig, check_window_set, predict_network, train_network
+
+
+class NotFittedError(RuntimeError):
+    """predict/state_dict called before fit or load_state_dict."""
+
+
+def check_positive_ints(params: Any, *names: str) -> None:
+    """Shared Params validation: each named field is an int >= 1 (bool rejected)."""
+    for name in names:
+        value = getattr(params, name)
+        if isinstance(value, bool) or not isinstance(value, (int, np.integer)) or value < 1:
+            raise InputError(f"must be an integer >= 1, got {value!r}", field=f"model.{name}")
+
+
+def check_fraction(params: Any, name: str) -> None:
+    value = getattr(params, name)
+    if not isinstance(value, (int, float)) or not 0.0 <= value < 1.0:
+        raise InputError(f"must be a number in [0, 1), got {value!r}", field=f"model.{name}")
+
+
+class ForecastModel:
+    """Base class: parameter handling, input checks, timing and the snapshot interface."""
+
+    family: ClassVar[str] = "base"
+    trainable: ClassVar[bool] = False
+
+    @dataclass
+    class Params:
+        pass
+
+    def __init__(self, seed: int = 0, **params):
+        known = {f.name for f in fields(self.Params)}
+        for key in params:
+            if key not in known:
+                raise InputError(f"unknown parameter {key!r} for model family {self.family!r} "
+                                 f"(known: {', '.join(sorted(known)) or 'none'})", field=f"model.{key}")
+        self.seed = seed
+        self.params = dict(params)
+
+    def get_params(self) -> dict:
+        """All hyperparameters with defaults filled in, plus the seed (what a run record should log)."""
+        return {"seed": self.seed, **asdict(self.Params(**self.params))}
+
+    def __repr__(self) -> str:
+        args = ", ".join([f"seed={self.seed!r}"] + [f"{k}={v!r}" for k, v in self.params.items()])
+        return f"{type(self).__name__}({args})"
+
+    # -- shared helpers ------------------------------------------------------------------------
+    def _start_fit(self, train) -> None:
+        self._fit_started = time.perf_counter()
+        self.hparams_ = self.Params(**self.params)
+        check_window_set(train, "train")
+        if len(train.y) == 0:
+            raise InputError("no training windows", field="train")
+        if not hasattr(train, "target_index"):
+            raise InputError("missing attribute 'target_index'", field="train")
+        _, self.lookback_, self.n_features_ = train.X.shape
+        self.horizon_ = train.y.shape[1]
+        self.target_index_ = int(train.target_index)
+        if not 0 <= self.target_index_ < self.n_features_:
+            raise InputError(f"{self.target_index_} outside 0..{self.n_features_ - 1}",
+                             field="train.target_index")
+
+    def _finish_fit(self) -> None:
+        self.fit_seconds_ = time.perf_counter() - self._fit_started
+
+    def _meta(self) -> dict:
+        self._check_fitted()
+        return {"family": self.family, "lookback": self.lookback_, "n_features": self.n_features_,
+                "horizon": self.horizon_, "target_index": self.target_index_}
+
+    def _load_meta(self, state: dict) -> dict:
+        meta = state.get("meta", {})
+        if meta.get("family") != self.family:
+            raise InputError(f"state of family {meta.get('family')!r} cannot load into {self.family!r}",
+                             field="state_dict.meta.family")
+        self.lookback_, self.n_features_ = int(meta["lookback"]), int(meta["n_features"])
+        self.horizon_, self.target_index_ = int(meta["horizon"]), int(meta["target_index"])
+        self.hparams_ = self.Params(**self.params)
+        for attr, default in (("history_", []), ("snapshot_steps_", []), ("best_step_", None),
+                              ("stop_reason_", "loaded"), ("fit_seconds_", 0.0)):
+            if not hasattr(self, attr):
+                setattr(self, attr, default)
+        return state["weights"]
+
+    def _check_fitted(self) -> None:
+        if not hasattr(self, "horizon_"):
+            raise NotFittedError(f"model family {self.family!r} is not fitted: call fit or load_state_dict")
+
+    def _check_X(self, X: np.ndarray) -> np.ndarray:
+        self._check_fitted()
+        X = np.asarray(X, dtype=np.float32)
+        if X.ndim != 3 or X.shape[1:] != (self.lookback_, self.n_features_):
+            raise InputError(f"expected shape (n, {self.lookback_}, {self.n_features_}), got {X.shape}",
+                             field="X")
+        return X
+
+
+class ClosedFormModel(ForecastModel):
+    """Families fitted without gradient steps (baselines, ridge, VAR).
+
+    They ignore `val`, `penalty` and `trainer`: any penalty, erm or not, is accepted and has NO
+    effect (the grid labels such cells penalty "n/a"). history_ == [] and the only snapshot is step 0.
+    """
+
+    trainable = False
+
+    def fit(self, train, val=None, penalty=None, trainer=None) -> "ClosedFormModel":
+        self._start_fit(train)
+        self._fit_closed_form(train)
+        self.n_parameters_ = sum(int(np.size(v)) for v in self._weights().values())
+        self.history_, self.snapshot_steps_ = [], [0]
+        self.best_step_, self.stop_reason_ = 0, "closed_form"
+        self._finish_fit()
+        return self
+
+    def use_snapshot(self, step: int) -> "ClosedFormModel":
+        self._check_fitted()
+        if step != 0:
+            raise InputError(f"family {self.family!r} has only snapshot step 0, got {step}", field="step")
+        return self
+
+    def predict(self, X: np.ndarray) -> np.ndarray:
+        X = self._check_X(X)
+        return np.asarray(self._predict_closed_form(X), dtype=np.float32).reshape(len(X), self.horizon_)
+
+    def state_dict(self) -> dict:
+        return {"meta": self._meta(), "weights": {k: np.array(v) for k, v in self._weights().items()}}
+
+    def load_state_dict(self, state: dict) -> "ClosedFormModel":
+        weights = self._load_meta(state)
+        self._set_weights({k: np.array(v) for k, v in weights.items()})
+        self.n_parameters_ = sum(int(np.size(v)) for v in weights.values())
+        return self
+
+    # -- what a closed-form family supplies ----------------------------------------------------
+    def _fit_closed_form(self, train) -> None:
+        """Learn from `train`; self.lookback_, n_features_, horizon_, target_index_ are already set."""
+        raise NotImplementedError
+
+    def _predict_closed_form(self, X: np.ndarray) -> np.ndarray:
+        raise NotImplementedError
+
+    def _weights(self) -> dict[str, np.ndarray]:
+        """Learned arrays beyond the meta data ({} for the baselines)."""
+        return {}
+
+    def _set_weights(self, weights: dict[str, np.ndarray]) -> None:
+        pass
+
+
+class TorchForecaster(ForecastModel):
+    """Gradient-trained families: a subclass only says how to build its nn.Module.
+
+    After fit the model holds the snapshot of `best_step_` (lowest `val/source/all`) when a validation
+    set named "source" was given, otherwise the weights of the last step; `use_snapshot(step)` switches
+    to any step in `snapshot_steps_` (e.g. for another model-selection rule).
+    """
+
+    trainable = True
+
+    def build_network(self, lookback: int, n_features: int, horizon: int) -> torch.nn.Module:
+        raise NotImplementedError
+
+    def fit(self, train, val=None, penalty=None, trainer=None) -> "TorchForecaster":
+        self._start_fit(train)
+        if isinstance(trainer, dict):
+            trainer = TrainerConfig.from_dict(trainer)
+        shape = (self.lookback_, self.n_features_, self.horizon_)
+        self.network_, result = train_network(lambda: self.build_network(*shape), train, val=val,
+                                              penalty=penalty, trainer=trainer, seed=self.seed)
+        self.history_ = result.history
+        self._snapshots = result.snapshots
+        self.snapshot_steps_ = sorted(result.snapshots)
+        self.best_step_ = result.best_step
+        self.stop_reason_ = result.stop_reason
+        self.steps_trained_ = result.final_step
+        self.n_parameters_ = sum(p.numel() for p in self.network_.parameters())
+        if self.best_step_ is not None:
+            self.use_snapshot(self.best_step_)
+        self._finish_fit()
+        return self
+
+    def use_snapshot(self, step: int) -> "TorchForecaster":
+        self._check_fitted()
+        snapshots = getattr(self, "_snapshots", {})
+        if step not in snapshots:
+            raise InputError(f"no snapshot at step {step} (stored: {sorted(snapshots)})", field="step")
+        self.network_.load_state_dict(snapshots[step])
+        return self
+
+    def predict(self, X: np.ndarray) -> np.ndarray:
+        X = self._check_X(X)
+        if len(X) == 0:
+            return np.zeros((0, self.horizon_), dtype=np.float32)
+        return predict_network(self.network_, X)
+
+    def state_dict(self) -> dict:
+        weights = {k: v.detach().clone() for k, v in self.network_.state_dict().items()}
+        return {"meta": self._meta(), "weights": weights}
+
+    def load_state_dict(self, state: dict) -> "TorchForecaster":
+        weights = self._load_meta(state)
+        with torch.random.fork_rng(devices=[]):  # building the module draws init values: keep RNG
+            self.network_ = self.build_network(self.lookback_, self.n_features_, self.horizon_)
+        self.network_.load_state_dict(weights)
+        self.n_parameters_ = sum(p.numel() for p in self.network_.parameters())
+        return self

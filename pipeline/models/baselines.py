@@ -1,0 +1,64 @@
+"""Reference forecasts with nothing (or almost nothing) to learn: persistence and seasonal naive.
+
+Reads window sets (only the target column of X is used: `target_index`); writes nothing. Obeys
+`model.season_hours` (seasonal_naive). Both ignore penalties and trainer settings (see ClosedFormModel).
+"""
+
+from __future__ import annotations
+
+from dataclasses import dataclass
+
+import numpy as np
+
+from pipeline.errors import InputError
+from pipeline.models.base import ClosedFormModel, check_positive_ints
+
+
+class Persistence(ClosedFormModel):
+    """y_hat(t + h) = y(t) for every step h: the last observed target value, repeated H times."""
+
+    family = "persistence"
+
+    @dataclass
+    class Params:
+        pass
+
+    def _fit_closed_form(self, train) -> None:
+        pass  # nothing to learn; the horizon and target column were recorded by _start_fit
+
+    def _predict_closed_form(self, X: np.ndarray) -> np.ndarray:
+        last = X[:, -1, self.target_index_]
+        return np.repeat(last[:, None], self.horizon_, axis=1)
+
+
+class SeasonalNaive(ClosedFormModel):
+    """y_hat(t + h) = y(t + h - k*m) with k = ceil(h / m): the value one season (m hours) earlier.
+
+    For h <= m this is the observed value m hours before the forecast hour; for h > m the last observed
+    season is repeated (common practice, e.g. Hyndman & Athanasopoulos, FPP3 "seasonal naive"). Needs
+    lookback >= m.
+    """
+
+    family = "seasonal_naive"
+
+    @dataclass
+    class Params:
+        season_hours: int = 24  # daily cycle of traffic, heating and boundary-layer height
+
+        def __post_init__(self):
+            check_positive_ints(self, "season_hours")
+
+    def _fit_closed_form(self, train) -> None:
+        season = self.hparams_.season_hours
+        if self.lookback_ < season:
+            raise InputError(f"seasonal_naive needs a lookback of at least {season} hours, "
+                             f"got {self.lookback_}", field="forecast.lookback_hours")
+
+    def _source_positions(self) -> np.ndarray:
+        season = self.hparams_.season_hours
+        steps = np.arange(1, self.horizon_ + 1)
+        seasons_back = -(-steps // season)  # ceil(h / m)
+        return self.lookback_ - 1 + steps - seasons_back * season
+
+    def _predict_closed_form(self, X: np.ndarray) -> np.ndarray:
+        return X[:, self._source_positions(), self.target_index_]

@@ -1,0 +1,238 @@
+"""Training loop shared by every gradient-trained model family; reads top to bottom.
+
+Reads in-memory window sets (any object with X (n, L, F) float32, y (n, H) float32, env (n,) int64,
+env_names); writes nothing (returns the history, snapshots and timings). Obeys the `trainer` config
+group, i.e. the fields of `TrainerConfig`, plus the model seed and a penalty from pipeline.penalties.
+
+What it does, in order:
+1. fork the global torch RNG and seed it (so weight init and dropout are reproducible and the caller's
+   RNG is untouched), set torch threads, make a dedicated torch.Generator for batch sampling;
+2. every step draws an environment-balanced batch (batch_size // E windows of each of the E training
+   environments, with replacement within an environment), runs one forward pass, splits predictions by
+   environment, asks the penalty for the loss, clips the gradient norm and takes one Adam step;
+3. every `eval_every` steps (and at the last step) computes the MSE on every validation set, overall and
+   per environment, stores a snapshot of the weights and a history entry, and stops early when
+   `val/source/all` has not improved for `patience` evaluations.
+"""
+
+from __future__ import annotations
+
+import math
+import time
+from dataclasses import dataclass, field, fields
+from typing import Any, Protocol
+
+import numpy as np
+import torch
+
+from pipeline.errors import InputError
+from pipeline.penalties import Penalty, build_penalty
+
+EVAL_CHUNK = 4096  # windows per forward pass at evaluation/prediction: bounds memory, not results
+EARLY_STOP_SET = "source"  # validation set whose overall MSE drives early stopping and best_step
+
+
+class WindowSetLike(Protocol):
+    """The attributes of pipeline.windows.WindowSet that training needs (duck typing, no import)."""
+
+    X: np.ndarray  # float32 (n, L, F), scaled features
+    y: np.ndarray  # float32 (n, H), scaled target
+    env: np.ndarray  # int64 (n,), index into env_names
+    env_names: list
+    target_index: int
+
+
+@dataclass
+class TrainerConfig:
+    """Optimisation settings. Defaults are sized for a 2-core CPU demo, not for best accuracy."""
+
+    max_steps: int = 300  # optimizer steps (batches), not epochs: cost is the same whatever n is
+    batch_size: int = 128  # windows per step in total, split equally between environments
+    lr: float = 1e-3  # Adam learning rate (Adam's usual default)
+    weight_decay: float = 0.0  # L2 term inside Adam (coupled, as torch.optim.Adam does it)
+    eval_every: int = 25  # steps between validation evaluations / snapshots
+    patience: int = 8  # evaluations without improvement of val/source/all before stopping
+    grad_clip: float = 1.0  # max global L2 norm of the gradient; 0 disables clipping
+    threads: int = 1  # torch.set_num_threads; match the job's CPU allocation
+
+    def __post_init__(self):
+        for name in ("max_steps", "batch_size", "eval_every", "patience", "threads"):
+            value = getattr(self, name)
+            if isinstance(value, bool) or int(value) != value or value < 1:
+                raise InputError(f"must be an integer >= 1, got {value!r}", field=f"trainer.{name}")
+            setattr(self, name, int(value))
+        for name in ("lr", "weight_decay", "grad_clip"):
+            value = float(getattr(self, name))
+            if not math.isfinite(value) or value < 0 or (name == "lr" and value == 0):
+                raise InputError(f"must be a finite number {'> 0' if name == 'lr' else '>= 0'}, "
+                                 f"got {value!r}", field=f"trainer.{name}")
+            setattr(self, name, value)
+
+    @classmethod
+    def from_dict(cls, values: dict | None) -> "TrainerConfig":
+        known = {f.name for f in fields(cls)}
+        unknown = sorted(set(values or {}) - known)
+        if unknown:
+            raise InputError(f"unknown key {unknown[0]!r} (known: {', '.join(sorted(known))})", field="trainer")
+        return cls(**(values or {}))
+
+
+@dataclass
+class TrainResult:
+    history: list[dict[str, float]]  # one entry per evaluation
+    snapshots: dict[int, dict[str, torch.Tensor]]  # step -> copy of the network's state_dict
+    best_step: int | None  # step with the lowest val/source/all (earliest on ties); None without it
+    final_step: int  # number of optimizer steps taken
+    stop_reason: str  # "max_steps", "early_stopping" or "non_finite_loss"
+    fit_seconds: float
+    train_env_names: list = field(default_factory=list)
+
+
+class EnvironmentBalancedSampler:
+    """Draws per_env indices of every environment present in `env`, with replacement, from `generator`."""
+
+    def __init__(self, env: np.ndarray, batch_size: int, generator: torch.Generator):
+        self.env_ids = np.unique(env)
+        self.indices = [torch.from_numpy(np.flatnonzero(env == e)) for e in self.env_ids]
+        # With more environments than batch slots, every environment still gets one window.
+        self.per_env = max(1, batch_size // len(self.env_ids))
+        self.generator = generator
+
+    def next_batch(self) -> list[torch.Tensor]:
+        """One index tensor per environment (in the order of self.env_ids), each of length per_env."""
+        return [idx[torch.randint(len(idx), (self.per_env,), generator=self.generator)]
+                for idx in self.indices]
+
+
+def check_window_set(windows: Any, what: str) -> None:
+    """One-line InputError when a window set lacks fields, has wrong shapes or non-finite values."""
+    for attr in ("X", "y", "env", "env_names"):
+        if not hasattr(windows, attr):
+            raise InputError(f"missing attribute {attr!r}", field=what)
+    X, y, env = windows.X, windows.y, windows.env
+    if X.ndim != 3 or y.ndim != 2 or env.ndim != 1 or not (len(X) == len(y) == len(env)):
+        raise InputError(f"expected X (n, L, F), y (n, H), env (n,), got {X.shape}, {y.shape}, {env.shape}",
+                         field=what)
+    for name, arr in (("X", X), ("y", y)):
+        bad = int(np.size(arr) - np.count_nonzero(np.isfinite(arr)))
+        if bad:
+            raise InputError(f"{bad} non-finite values", field=f"{what}.{name}")
+    if len(env) and (env.min() < 0 or env.max() >= len(windows.env_names)):
+        raise InputError(f"env index outside 0..{len(windows.env_names) - 1}", field=f"{what}.env")
+
+
+def predict_network(network: torch.nn.Module, X: np.ndarray) -> np.ndarray:
+    """Forward pass in chunks, eval mode, no gradients; returns float32 (n, H)."""
+    network.eval()
+    outputs = []
+    with torch.no_grad():
+        X_t = torch.from_numpy(np.ascontiguousarray(X, dtype=np.float32))
+        for start in range(0, len(X_t), EVAL_CHUNK):
+            outputs.append(network(X_t[start:start + EVAL_CHUNK]))
+    if not outputs:
+        return np.zeros((0, 0), dtype=np.float32)
+    return torch.cat(outputs).numpy()
+
+
+def evaluate(network: torch.nn.Module, val: dict[str, Any]) -> dict[str, float]:
+    """MSE per validation set, overall (`val/<set>/all`) and per environment (`val/<set>/<env>`)."""
+    results = {}
+    for set_name, windows in val.items():
+        if len(windows.y) == 0:
+            continue  # an empty set has no risk; its keys are absent rather than NaN
+        squared = (predict_network(network, windows.X) - windows.y) ** 2
+        results[f"val/{set_name}/all"] = float(squared.mean())
+        for e in np.unique(windows.env):
+            results[f"val/{set_name}/{windows.env_names[e]}"] = float(squared[windows.env == e].mean())
+    return results
+
+
+def make_optimizer(network: torch.nn.Module, cfg: TrainerConfig) -> torch.optim.Optimizer:
+    try:  # fused Adam is as fast or faster on CPU; older builds or odd dtypes may refuse it
+        return torch.optim.Adam(network.parameters(), lr=cfg.lr, weight_decay=cfg.weight_decay, fused=True)
+    except (RuntimeError, TypeError, ValueError):
+        return torch.optim.Adam(network.parameters(), lr=cfg.lr, weight_decay=cfg.weight_decay)
+
+
+def copy_state(network: torch.nn.Module) -> dict[str, torch.Tensor]:
+    return {k: v.detach().clone() for k, v in network.state_dict().items()}
+
+
+def train_network(build_network, train: WindowSetLike, val: dict[str, WindowSetLike] | None = None,
+                  penalty: Penalty | None = None, trainer: TrainerConfig | None = None,
+                  seed: int = 0) -> tuple[torch.nn.Module, TrainResult]:
+    """Build a network with `build_network()` under the seed and train it; returns (network, result).
+
+    The returned network holds the weights of the LAST step; pick another with result.snapshots.
+    """
+    started = time.perf_counter()
+    cfg = trainer if trainer is not None else TrainerConfig()
+    penalty = penalty if penalty is not None else build_penalty("erm")
+    val = dict(val or {})
+    check_window_set(train, "train")
+    if len(train.y) == 0:
+        raise InputError("no training windows", field="train")
+    for set_name, windows in val.items():
+        check_window_set(windows, f"val/{set_name}")
+    torch.set_num_threads(cfg.threads)
+    penalty.reset()
+
+    with torch.random.fork_rng(devices=[]):
+        torch.manual_seed(seed)  # weight init and dropout draw from the (forked) global generator
+        network = build_network()
+        sampler_generator = torch.Generator().manual_seed(seed)
+        sampler = EnvironmentBalancedSampler(np.asarray(train.env), cfg.batch_size, sampler_generator)
+        X = torch.from_numpy(np.ascontiguousarray(train.X, dtype=np.float32))
+        y = torch.from_numpy(np.ascontiguousarray(train.y, dtype=np.float32))
+        optimizer = make_optimizer(network, cfg)
+        history, snapshots = [], {}
+        since_eval: dict[str, list[float]] = {}
+        best_value, best_step, evals_without_gain = math.inf, None, 0
+        stop_reason, step = "max_steps", 0
+        env_names = [train.env_names[e] for e in sampler.env_ids]
+
+        while step < cfg.max_steps:
+            if penalty.resets_optimizer_at(step):
+                optimizer = make_optimizer(network, cfg)
+            network.train()
+            batch = sampler.next_batch()
+            predictions = network(X[torch.cat(batch)])
+            preds_by_env = list(torch.split(predictions, [len(b) for b in batch]))
+            targets_by_env = [y[b] for b in batch]
+            loss, logs = penalty(preds_by_env, targets_by_env, step)
+            if not torch.isfinite(loss):
+                stop_reason = "non_finite_loss"
+                break
+            optimizer.zero_grad(set_to_none=True)
+            loss.backward()
+            if cfg.grad_clip > 0:
+                torch.nn.utils.clip_grad_norm_(network.parameters(), cfg.grad_clip)
+            optimizer.step()
+            step += 1
+            # Unscaled objective (loss / loss_scale) so histories with and without rescaling compare.
+            record = {"train_loss": logs["loss"] / logs["loss_scale"], "penalty_value": logs["penalty_value"]}
+            record.update({f"train/risk/{env_names[e]}": logs[f"risk/{e}"] for e in range(len(env_names))})
+            for key, value in record.items():
+                since_eval.setdefault(key, []).append(value)
+
+            if step % cfg.eval_every == 0 or step == cfg.max_steps:
+                entry = {"step": step, "penalty_weight": logs["penalty_weight"]}
+                entry.update({k: float(np.mean(v)) for k, v in since_eval.items()})
+                entry.update(evaluate(network, val))
+                history.append(entry)
+                snapshots[step] = copy_state(network)
+                since_eval = {}
+                criterion = entry.get(f"val/{EARLY_STOP_SET}/all")
+                if criterion is not None:
+                    if criterion < best_value:
+                        best_value, best_step, evals_without_gain = criterion, step, 0
+                    else:
+                        evals_without_gain += 1
+                        if evals_without_gain >= cfg.patience:
+                            stop_reason = "early_stopping"
+                            break
+
+    result = TrainResult(history=history, snapshots=snapshots, best_step=best_step, final_step=step,
+                         stop_reason=stop_reason, fit_seconds=time.perf_counter() - started,
+                         train_env_names=env_names)
+    return network, result
