@@ -3,9 +3,11 @@
 #   snakemake --config overrides="experiment=demo model=lstm,gru penalty.weight=100"
 # The plan (cities, splits, jobs, each job's config slice) is computed once here, from config only.
 
+import os
+
 from pipeline.workflow import plan_workflow
 
-PLAN = plan_workflow(config.get("overrides"), workflow.basedir)
+PLAN = plan_workflow(config.get("overrides"), os.getcwd())  # the project folder (--directory)
 RESULTS = PLAN.results_dir
 
 
