@@ -1,11 +1,11 @@
 """Point-forecast and threshold-exceedance scores for the comparison grid.
 
-Pure numpy functions: they read arrays handed over by the evaluation step and write nothing. No config
-keys are read here; the caller passes the MASE scale (`Windows.target_naive_scale`) and the exceedance
-threshold explicitly.
+Pure numpy functions: they read arrays handed over by the evaluation step and write nothing.
+No config keys are read here; the caller passes the MASE scale (`Windows.target_naive_scale`) and
+the exceedance threshold explicitly.
 
-Missing values: a (y, yhat) pair where either side is NaN/inf is left out of every score, the same way in
-each function, so MSE, MAE and the exceedance table always describe the same set of pairs.
+Missing values: a (y, yhat) pair where either side is NaN/inf is left out of every score, the same
+way in each function, so MSE, MAE and the exceedance table always describe the same set of pairs.
 """
 
 from __future__ import annotations
@@ -53,13 +53,15 @@ def mae(y, yhat) -> float:
     return float(np.mean(np.abs(y_ok - yhat_ok)))
 
 
-def seasonal_naive_scale(series_by_station: Sequence[np.ndarray] | np.ndarray, m: int = 24) -> float:
+def seasonal_naive_scale(series_by_station: Sequence[np.ndarray] | np.ndarray,
+                         m: int = 24) -> float:
     """MASE denominator: mean |y_t - y_{t-m}| over the training series (Hyndman & Koehler 2006).
 
     `series_by_station` is one 1-D series or a list of them (one per station, each on a complete
     hourly grid). Differences are taken inside each series only, so a lag never reaches into another
-    station's data; a difference with a NaN on either side is skipped. All differences of all stations
-    are pooled (a station with more data weighs more). Returns NaN when no difference is available.
+    station's data; a difference with a NaN on either side is skipped. All differences of all
+    stations are pooled (a station with more data weighs more). Returns NaN when no difference is
+    available.
     """
     if not isinstance(m, (int, np.integer)) or isinstance(m, bool) or m < 1:
         raise InputError(f"seasonal period must be a positive integer, got {m!r}", field="m")
@@ -115,11 +117,11 @@ def _ratio(numerator: float, denominator: float) -> float:
 
 
 def exceedance(y, yhat, threshold: float) -> dict[str, float]:
-    """2x2 contingency table and scores for the event "value > threshold" (Jolliffe & Stephenson 2012).
+    """2x2 table and scores for the event "value > threshold" (Jolliffe & Stephenson 2012, ch. 3).
 
-    An event is a value strictly above the threshold (an exceedance of a limit value, common practice).
-    Counts: hits a (forecast and observed), false_alarms b (forecast only), misses c (observed only),
-    correct_negatives d. Scores: pod = a/(a+c), far = b/(a+b), csi = a/(a+b+c),
+    An event is a value strictly above the threshold (an exceedance of a limit value, common
+    practice). Counts: hits a (forecast and observed), false_alarms b (forecast only), misses c
+    (observed only), correct_negatives d. Scores: pod = a/(a+c), far = b/(a+b), csi = a/(a+b+c),
     ets = (a - ar)/(a+b+c - ar) with ar = (a+b)(a+c)/n, bias = (a+b)/(a+c).
     A score whose denominator is 0 (e.g. no observed event: pod and bias) is NaN, not 0 or 1, so a
     city without episodes cannot look perfect or useless.

@@ -30,10 +30,10 @@ SHIFT_COLUMNS = ("city_a", "city_b", "energy_distance", "mean_wasserstein", "geo
 def standardise(frames, columns: Sequence[str] | None = None):
     """Z-score `columns` of several DataFrames with one mean/std fitted on their pooled rows.
 
-    `frames` is a dict {name: DataFrame} or a list of DataFrames; the same container type comes back,
-    holding new DataFrames with only `columns` (default: numeric columns common to all frames).
-    NaN is ignored in the fit and kept in the output. A column that is constant (or all NaN) in the
-    pool is only centred (std taken as 1), because dividing by 0 would turn it into NaN.
+    `frames` is a dict {name: DataFrame} or a list of DataFrames; the same container type comes
+    back, holding new DataFrames with only `columns` (default: the numeric columns common to all
+    frames). NaN is ignored in the fit and kept in the output. A column that is constant (or all
+    NaN) in the pool is only centred (std taken as 1), because dividing by 0 would give NaN.
     """
     named = dict(frames) if isinstance(frames, Mapping) else dict(enumerate(frames))
     if not named:
@@ -71,8 +71,8 @@ def _as_samples(values, name: str) -> np.ndarray:
 def energy_distance(a, b, max_n: int = 2000, seed: int = 0) -> float:
     """Energy distance E = 2 E|X-Y| - E|X-X'| - E|Y-Y'| between two multivariate samples.
 
-    a (n, p) and b (m, p) (1-D means p = 1), Euclidean norm. The expectations are plain means over all
-    pairs including i = j (the V-statistic), which keeps E >= 0. It is the square of what
+    a (n, p) and b (m, p) (1-D means p = 1), Euclidean norm. The expectations are plain means over
+    all pairs including i = j (the V-statistic), which keeps E >= 0. It is the square of what
     scipy.stats.energy_distance returns for 1-D samples. Each sample larger than `max_n` rows is
     subsampled without replacement by a Generator seeded with `seed` (cost is quadratic in n).
     Rows with NaN are rejected: the caller drops incomplete rows and reports how many it kept.
@@ -135,11 +135,12 @@ def pairwise_shift(tables: Mapping[str, pd.DataFrame], variables: Sequence[str],
                    stations: pd.DataFrame, *, max_n: int = 2000, seed: int = 0) -> pd.DataFrame:
     """Shift between every unordered pair of cities (city_a < city_b alphabetically).
 
-    Columns: city_a, city_b, energy_distance (complete rows, subsampled to `max_n`), mean_wasserstein,
-    geo_km (great-circle distance between the city centroids of `stations`), n_rows_a/n_rows_b
-    (complete rows available for the energy distance, before subsampling) and variables (the
-    comma-joined variables used: those with at least one value in both cities, so a city without,
-    say, an SO2 monitor still gets compared on the rest). No usable variable: NaN distances.
+    Columns: city_a, city_b, energy_distance (complete rows, subsampled to `max_n`),
+    mean_wasserstein, geo_km (great-circle distance between the city centroids of `stations`),
+    n_rows_a / n_rows_b (complete rows available for the energy distance, before subsampling) and
+    variables (the comma-joined variables used: those with at least one value in both cities, so a
+    city without, say, an SO2 monitor still gets compared on the rest). No usable variable: NaN
+    distances. All cities are standardised together first (see the module docstring).
     """
     from pipeline.geo import haversine_km  # one haversine in the package; imported where needed
 
@@ -186,28 +187,29 @@ def shift_vs_error(shift_df: pd.DataFrame, errors_df: pd.DataFrame, *,
 
     Each row of `errors_df` is one run or split: its target city, its source cities (a list or a
     "+"-joined string) and an error. Its shift is the mean shift between the target and each source.
-    Rows with a NaN error or a missing city pair are rejected (filter and count them first). Fewer
-    than 3 rows, or a constant column, leave the correlation undefined: (NaN, NaN).
+    Rows with a NaN error or a missing city pair are rejected, naming the row's index label (filter
+    and count them first). Fewer than 3 rows, or a constant column, leave the correlation undefined:
+    (NaN, NaN).
     """
     missing = {sources_col, target_col, error_col} - set(errors_df.columns)
     if missing:
         raise InputError(f"errors table lacks columns {sorted(missing)}", field="errors_df")
     lookup = _pair_lookup(shift_df, shift_col)
     shifts, errors = [], []
-    for position, (sources, target, error) in enumerate(
-            zip(errors_df[sources_col], errors_df[target_col], errors_df[error_col])):
+    for label, sources, target, error in zip(errors_df.index, errors_df[sources_col],
+                                             errors_df[target_col], errors_df[error_col]):
         source_list = sources.split("+") if isinstance(sources, str) else list(sources)
         pairs = [frozenset((source, target)) for source in source_list if source != target]
         absent = [sorted(pair) for pair in pairs if pair not in lookup]
         if not pairs or absent:
             raise InputError(f"no shift value for city pairs {absent or 'source == target'}",
-                             row=position, file="errors_df", field=sources_col)
+                             row=label, file="errors_df", field=sources_col)
         if not np.isfinite(error):
-            raise InputError("error is NaN; drop failed runs first", row=position,
+            raise InputError("error is NaN; drop failed runs first", row=label,
                              file="errors_df", field=error_col)
         shift = float(np.mean([lookup[pair] for pair in pairs]))
         if not np.isfinite(shift):
-            raise InputError(f"shift {shift_col} is NaN for this split's city pairs", row=position,
+            raise InputError(f"shift {shift_col} is NaN for this split's city pairs", row=label,
                              file="errors_df", field=sources_col)
         shifts.append(shift)
         errors.append(float(error))

@@ -1,7 +1,7 @@
 """Statistics of the comparison grid: forecast-accuracy tests, rank tests, intervals and tallies.
 
-Pure numpy/scipy/pandas functions: they read arrays or tables handed over by the aggregation step and
-write nothing. No config keys are read here; levels, horizons and seeds are explicit arguments.
+Pure numpy/scipy/pandas functions: they read arrays or tables handed over by the aggregation step
+and write nothing. No config keys are read here; levels, horizons and seeds are explicit arguments.
 
 Sign convention everywhere: values are losses or errors, so smaller is better.
 """
@@ -70,8 +70,8 @@ def diebold_mariano(d, h: int, *, alternative: str = "two-sided") -> DMResult:
     h = 1 (gamma_0 only, and the h = 1 correction factor) and `variance_fallback` is True; the same
     choice as the R forecast package's dm.test [from memory].
     Degenerate input: when d is constant there is no variance at all; d == 0 everywhere gives
-    statistic 0 and p 1 (no difference), a non-zero constant gives +-inf and p 0 (one model is better
-    at every step by the same amount).
+    statistic 0 and p 1 (no difference), a non-zero constant gives +-inf and p 0 (one model is
+    better at every step by the same amount).
     """
     d = _finite_vector(d, "d")
     if alternative not in ALTERNATIVES:
@@ -132,7 +132,7 @@ def friedman(errors) -> tuple[float, float, np.ndarray]:
 
 
 def nemenyi_q(k: int, alpha: float = 0.05) -> float:
-    """Critical value q_alpha of the Nemenyi test: studentized range quantile (k, inf df) / sqrt(2)."""
+    """Nemenyi critical value q_alpha: studentized range quantile (k, inf df) / sqrt(2)."""
     if not isinstance(k, (int, np.integer)) or k < 2:
         raise InputError(f"the Nemenyi test needs k >= 2 methods, got {k!r}", field="k")
     if not 0.0 < alpha < 1.0:
@@ -149,7 +149,7 @@ def nemenyi_cd(k: int, n: int, alpha: float = 0.05) -> float:
 
 
 def rank_within(df: pd.DataFrame, group_cols: list[str], value_col: str) -> pd.Series:
-    """Rank `value_col` inside each group of `group_cols`: smallest = 1, ties averaged, NaN stays NaN.
+    """Rank `value_col` within each group of `group_cols`: smallest = 1, ties averaged, NaN kept.
 
     Returns a float Series aligned with df.index (assign it as a column), so the input is untouched.
     """

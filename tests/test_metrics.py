@@ -5,10 +5,10 @@ import pytest
 from sklearn.metrics import mean_absolute_error, mean_squared_error
 
 from pipeline.errors import InputError
-from pipeline.metrics import (EXCEEDANCE_KEYS, HEADLINE_KEYS, exceedance, forecast_scores, mae, mase,
-                              mse, per_horizon, rmse, seasonal_naive_scale)
+from pipeline.metrics import (EXCEEDANCE_KEYS, HEADLINE_KEYS, exceedance, forecast_scores, mae,
+                              mase, mse, per_horizon, rmse, seasonal_naive_scale)
 
-# Worked example of CHECKS.md section 6 (Hyndman & Koehler 2006, IJF 22(4); seasonal scale as in FPP3)
+# Worked example of CHECKS.md section 6 (Hyndman & Koehler 2006, IJF 22(4); seasonal scale: FPP3)
 TRAIN = np.array([10, 14, 8, 12, 11, 16, 9, 13, 13, 15, 10, 16], dtype=float)
 TEST = np.array([14, 18, 11, 15], dtype=float)
 FORECAST = np.array([12, 17, 12, 14], dtype=float)
@@ -18,7 +18,8 @@ def test_mase_worked_example_hyndman_koehler():
     # Hyndman & Koehler (2006) / CHECKS.md section 6: MAE 1.25, MASE 0.3125 (m=1), 0.833333 (m=4)
     assert mae(TEST, FORECAST) == pytest.approx(1.25)
     assert mase(TEST, FORECAST, seasonal_naive_scale(TRAIN, m=1)) == pytest.approx(0.3125)
-    assert mase(TEST, FORECAST, seasonal_naive_scale(TRAIN, m=4)) == pytest.approx(0.833333, abs=1e-6)
+    assert mase(TEST, FORECAST, seasonal_naive_scale(TRAIN, m=4)) == pytest.approx(0.833333,
+                                                                                abs=1e-6)
 
 
 def test_naive_scale_never_crosses_station_boundaries_and_skips_nan_pairs():

@@ -6,8 +6,8 @@ import pytest
 from scipy import stats as sps
 
 from pipeline.errors import InputError
-from pipeline.stats import (DMResult, _long_run_variance, bootstrap_ci, diebold_mariano, friedman, nemenyi_cd, nemenyi_q,
-                            rank_within, relative_change, win_tie_loss)
+from pipeline.stats import (DMResult, _long_run_variance, bootstrap_ci, diebold_mariano, friedman,
+                            nemenyi_cd, nemenyi_q, rank_within, relative_change, win_tie_loss)
 
 # Loss differences of CHECKS.md section 4 (T = 16)
 D = np.array([0.5, 0.9, 0.7, -0.2, 0.1, 0.6, 1.0, 0.8, 0.3, -0.4, 0.2, 0.9, 0.6, 0.4, -0.1, 0.5])
@@ -18,7 +18,7 @@ ERRORS = np.array([[.21, .25, .19, .30], [.15, .18, .16, .22], [.33, .31, .29, .
 
 
 def test_dm_h1_matches_published_values_and_one_sample_t_test():
-    # Diebold & Mariano (1995) with Harvey, Leybourne & Newbold (1997); values of CHECKS.md section 4
+    # Diebold & Mariano (1995) + Harvey, Leybourne & Newbold (1997); values of CHECKS.md section 4
     result = diebold_mariano(D, 1)
     assert isinstance(result, DMResult)
     assert result.statistic == pytest.approx(4.225314, abs=1e-6)
