@@ -80,6 +80,8 @@ def energy_distance(a, b, max_n: int = 2000, seed: int = 0) -> float:
     a, b = _as_samples(a, "a"), _as_samples(b, "b")
     if a.shape[1] != b.shape[1]:
         raise InputError(f"samples have {a.shape[1]} and {b.shape[1]} variables", field="b")
+    if not isinstance(max_n, (int, np.integer)) or max_n < 2:
+        raise InputError(f"max_n must be an integer >= 2, got {max_n!r}", field="max_n")
     if not (np.isfinite(a).all() and np.isfinite(b).all()):
         raise InputError("samples hold NaN/inf; drop incomplete rows first", field="a, b")
     rng = np.random.default_rng(seed)
