@@ -157,5 +157,8 @@ def run_seed(job: dict, seed: int, windows, split: dict, station_city: dict) -> 
         model.use_snapshot(chosen[primary])
         metrics.update({k.split(".", 1)[1]: v for k, v in metrics.items() if k.startswith(f"{primary}.")})
     metrics["fit_seconds"] = fit_seconds
+    # Everything this seed computed (fits, refits, evaluation): the rest of a job's wall time is start-up
+    # and bookkeeping, which bench/startup_overhead.py reports as a share of the sweep.
+    metrics["compute_seconds"] = time.perf_counter() - started
     return {"model": model, "metrics": metrics, "predictions": predictions, "chosen": chosen,
             "primary": primary if primary in chosen else rules[0]}

@@ -10,6 +10,7 @@ from __future__ import annotations
 
 import json
 import tempfile
+import time
 from pathlib import Path
 
 import pandas as pd
@@ -62,8 +63,10 @@ def run_train_job(split_path: Path | str, job: dict, seeds: list[int], record_pa
                   tracking_uri: str, experiment: str, code_digest: str, clean_paths: dict | None = None,
                   supersede: bool = True) -> list[dict]:
     """Train every seed; returns the run records (also written to record_paths, one per seed)."""
+    started = time.perf_counter()
     split, tables = load_inputs(split_path, clean_paths)
     windows = build_windows(split, tables, ForecastConfig(**job["forecast"]))
+    prepare_seconds = time.perf_counter() - started  # data reading and windowing: real work, once per job
     station_city = station_city_map(tables)
     client = tracking.client_for(tracking_uri)
     experiment_id = tracking.experiment_id(client, experiment)
@@ -72,6 +75,7 @@ def run_train_job(split_path: Path | str, job: dict, seeds: list[int], record_pa
     records = []
     for seed, record_path in zip(seeds, record_paths):
         outcome = run_seed(job, seed, windows, split, station_city)
+        outcome["metrics"]["prepare_seconds"] = prepare_seconds
         tags = tags_for(split, job, seed, code_digest)
         tags["selection_label"] = selection.label(outcome["primary"])
         with tempfile.TemporaryDirectory() as workdir:

@@ -26,6 +26,8 @@ rule train_model:
         [f"{RESULTS}/runs/{{split_id}}/{{model}}/{{penalty}}/{seed}.json" for seed in SEEDS],
     log:
         f"{RESULTS}/logs/train_model/{{split_id}}/{{model}}/{{penalty}}.log",
+    benchmark:
+        f"{RESULTS}/benchmarks/train_model/{{split_id}}/{{model}}/{{penalty}}.tsv"
     wildcard_constraints:
         penalty=r"(?!na$)[a-z][a-z0-9_]*",
     threads: 1
@@ -46,6 +48,8 @@ rule fit_baseline:
         f"{RESULTS}/runs/{{split_id}}/{{model}}/na/0.json",
     log:
         f"{RESULTS}/logs/fit_baseline/{{split_id}}/{{model}}.log",
+    benchmark:
+        f"{RESULTS}/benchmarks/fit_baseline/{{split_id}}/{{model}}.tsv"
     threads: 1
     params:
         job=job_params,

@@ -1,0 +1,64 @@
+"""Share of a sweep's training wall time spent on process start-up and bookkeeping.
+
+Run after `make demo` (or any `shiftgrid run`): `python bench/startup_overhead.py [results_dir]`.
+Reads the Snakemake benchmark files of every train_model / fit_baseline job (wall seconds of the whole
+job process) and, from MLflow, each run's `compute_seconds` (fits, refits, evaluation) and
+`prepare_seconds` (reading Parquet and building windows, once per job). Overhead = job wall time minus
+that work: interpreter start, imports, MLflow connection, logging, artifacts. Prints the ratio; the goal
+in the issue is < 15 % of the sweep's wall time. Never fails on timings.
+"""
+
+import json
+import sys
+from pathlib import Path
+
+import pandas as pd
+
+
+def job_walls(results: Path) -> dict[str, float]:
+    walls = {}
+    for path in (results / "benchmarks").rglob("*.tsv"):
+        job = str(path.relative_to(results / "benchmarks").with_suffix(""))
+        walls[job] = float(pd.read_csv(path, sep="\t")["s"].iloc[0])
+    return walls
+
+
+def job_compute(results: Path) -> dict[str, float]:
+    from pipeline.tracking import client_for
+
+    compute: dict[str, float] = {}
+    prepare: dict[str, float] = {}
+    clients = {}
+    for record_path in (results / "runs").rglob("*.json"):
+        record = json.loads(record_path.read_text())
+        client = clients.setdefault(record["tracking_uri"], client_for(record["tracking_uri"]))
+        metrics = client.get_run(record["run_id"]).data.metrics
+        rule = "fit_baseline" if record["penalty"] == "na" else "train_model"
+        suffix = "" if rule == "fit_baseline" else f"/{record['penalty']}"
+        job = f"{rule}/{record['split_id']}/{record['model']}{suffix}"
+        compute[job] = compute.get(job, 0.0) + metrics.get("compute_seconds", 0.0)
+        prepare[job] = max(prepare.get(job, 0.0), metrics.get("prepare_seconds", 0.0))
+    return {job: compute[job] + prepare[job] for job in compute}
+
+
+def main() -> None:
+    results = Path(sys.argv[1] if len(sys.argv) > 1 else "results")
+    walls, work = job_walls(results), job_compute(results)
+    jobs = sorted(set(walls) & set(work))
+    if not jobs:
+        print(f"no finished training jobs with benchmarks under {results}; run `make demo` first")
+        return
+    wall = sum(walls[j] for j in jobs)
+    useful = sum(min(work[j], walls[j]) for j in jobs)
+    overhead = wall - useful
+    print(f"training jobs: {len(jobs)}")
+    print(f"job wall time (sum):      {wall:9.1f} s")
+    print(f"compute (fit/eval/data):  {useful:9.1f} s")
+    print(f"start-up + bookkeeping:   {overhead:9.1f} s")
+    print(f"overhead share of wall:   {overhead / wall:9.1%}   (goal: < 15%)")
+    per_job = overhead / len(jobs)
+    print(f"overhead per job:         {per_job:9.2f} s")
+
+
+if __name__ == "__main__":
+    main()
