@@ -193,6 +193,9 @@ def _within_item(cfg: SplitConfig, by_city: dict, stations: pd.DataFrame, gap: i
     if city not in by_city:
         raise InputError(f"unknown or missing city {city!r}", field="split.within_city")
     ids = by_city[city]
+    if len(ids) < 2:
+        raise InputError(f"city {city} has {len(ids)} station; within-city needs at least 2",
+                         field="split.within_city")
     if cfg.within_target_stations:
         unknown = sorted(set(cfg.within_target_stations) - set(ids))
         if unknown:
@@ -202,8 +205,8 @@ def _within_item(cfg: SplitConfig, by_city: dict, stations: pd.DataFrame, gap: i
         held_out = ids[1::3]  # every third station in id order: deterministic, about a third
     sources = [s for s in ids if s not in held_out]
     if not held_out or not sources:
-        raise InputError(f"city {city} needs at least one source and one held-out station "
-                         f"({len(ids)} stations)", field="split.within_target_stations")
+        raise InputError(f"city {city} needs at least one source and one held-out station",
+                         field="split.within_target_stations")
     return _make_item("within", [city], city, sources, held_out, cfg, stations, gap)
 
 

@@ -177,18 +177,23 @@ def _cut_windows(features, target_raw, hours, cfg: ForecastConfig, skipped: dict
     return X, y, hours[keep + lookback - 1]
 
 
+def seasonal_naive_scale(series: list[np.ndarray], period: int = SEASON_HOURS) -> float:
+    """Pooled mean |y_t - y_{t-period}| over several series (differences never cross two series);
+    pairs with a NaN are left out. NaN when no pair exists."""
+    differences = [np.abs(np.asarray(y, float)[period:] - np.asarray(y, float)[:-period]) for y in series]
+    pooled = np.concatenate([d[~np.isnan(d)] for d in differences] + [np.empty(0)])
+    return float(pooled.mean()) if pooled.size else float("nan")
+
+
 def _naive_scale(frames, station_ids, target, train_span) -> float:
-    """mean |y_t - y_{t-24}| over the target stations' train block, differences within a station."""
-    differences = []
-    for s in station_ids:
-        values = _block(frames.get(s), train_span, [target])[target].to_numpy()
-        d = np.abs(values[SEASON_HOURS:] - values[:-SEASON_HOURS])
-        differences.append(d[~np.isnan(d)])
-    pooled = np.concatenate(differences) if differences else np.empty(0)
-    if pooled.size == 0:
+    """The MASE scale over the target stations' train block (canonical units, m = 24 h)."""
+    scale = seasonal_naive_scale([_block(frames.get(s), train_span, [target])[target].to_numpy()
+                                  for s in station_ids])
+    if np.isnan(scale):
         raise InputError(f"no pair of {target} values {SEASON_HOURS} h apart in the target train block "
-                         f"of stations {list(station_ids)}: the MASE scale is undefined", field="target_naive_scale")
-    return float(pooled.mean())
+                         f"of stations {list(station_ids)}: the MASE scale is undefined",
+                         field="target_naive_scale")
+    return scale
 
 
 def _spans(record: dict) -> dict:
