@@ -1,0 +1,202 @@
+"""Ingest one city: raw dump files -> canonical hourly UTC table + QC report.
+
+Reads the files matched by the city's format (`files`, relative to `raw_dir`) and the station table;
+`run_ingest` writes data/clean/<city>.parquet and data/qc/<city>.json atomically. Obeys the data-config
+keys `cities.<city>` (the format dict, see formats.py), `stations` and `reference_temperature_c`.
+
+Each delivered row is either kept or dropped for exactly one reason (the first that applies, in the
+order of DROP_REASONS); rows_read == rows_kept + sum(dropped_by_reason) always holds.
+"""
+
+from pathlib import Path
+
+import numpy as np
+import pandas as pd
+
+from pipeline.errors import InputError
+from pipeline.ingest import jsonl, long_csv, qc, timeparse, wide_csv
+from pipeline.ingest.atomic import write_json_atomic, write_parquet_atomic
+from pipeline.ingest.formats import validate_format
+from pipeline.ingest.values import parse_numbers, to_canonical
+from pipeline.stations import load_stations, stations_of_city
+from pipeline.units import conversion_to_canonical
+from pipeline.variables import QC_MISSING, VARIABLE_NAMES, qc_column
+
+READERS = {"wide_csv": wide_csv, "long_csv": long_csv, "jsonl": jsonl}
+DROP_REASONS = ("unparseable_record", "unknown_station", "variable_not_mapped", "unparseable_timestamp",
+                "exact_duplicate", "nonexistent_local_time", "ambiguous_local_time",
+                "timestamp_not_on_the_hour", "conflicting_duplicate")
+
+
+def _matching_files(raw_dir, pattern: str) -> list[Path]:
+    paths = sorted(p for p in Path(raw_dir).glob(pattern) if p.is_file())
+    if not paths:
+        raise InputError(f"no raw file matches '{pattern}'", file=str(Path(raw_dir) / pattern))
+    return paths
+
+
+def _convert_wide(kept: pd.DataFrame, spec: dict, temperature: float):
+    values, conversions = {}, {}
+    for canonical in spec["columns"].values():
+        conversion = conversion_to_canonical(canonical, spec["units"][canonical], temperature)
+        numbers, flags = parse_numbers(kept[canonical], spec)
+        values[canonical] = to_canonical(numbers, flags, canonical, conversion)
+        conversions[canonical] = [{**conversion.as_record(), "values": int(len(kept))}]
+    return values, conversions
+
+
+def _convert_long(kept: pd.DataFrame, spec: dict, temperature: float):
+    """Convert per (variable, unit) group, then pivot to one row per station and hour."""
+    unit_text = kept["unit_raw"].where(kept["unit_raw"] != "",
+                                       kept["variable"].map(spec["units"]).fillna(""))
+    numbers = np.full(len(kept), np.nan)
+    flags = np.zeros(len(kept), dtype="int8")
+    conversions: dict[str, list] = {}
+    for (variable, unit), index in kept.groupby([kept["variable"], unit_text], sort=True).indices.items():
+        rows = kept.iloc[index]
+        try:
+            conversion = conversion_to_canonical(variable, unit, temperature)
+        except InputError as error:
+            first = rows.iloc[0]
+            raise InputError(str(error).split(": ", 1)[-1], file=first["file"], row=int(first["line"]),
+                             field=spec.get("unit_column", f"units.{variable}")) from None
+        parsed, parsed_flags = parse_numbers(rows["value_raw"], spec)
+        numbers[index], flags[index] = to_canonical(parsed, parsed_flags, variable, conversion)
+        conversions.setdefault(variable, []).append({**conversion.as_record(), "values": int(len(index))})
+    table = pd.DataFrame({"station_id": kept["station_id"].to_numpy(), "time": kept["utc"].to_numpy(),
+                          "variable": kept["variable"].to_numpy(), "value": numbers, "flag": flags})
+    wide_values = table.pivot(index=["station_id", "time"], columns="variable", values="value")
+    wide_flags = table.pivot(index=["station_id", "time"], columns="variable", values="flag")
+    keys = wide_values.index.to_frame(index=False)
+    values = {v: (wide_values[v].to_numpy(), wide_flags[v].fillna(QC_MISSING).to_numpy("int8"))
+              for v in wide_values.columns}
+    return keys, values, conversions
+
+
+def _complete_grid(keys: pd.DataFrame, values: dict) -> pd.DataFrame:
+    """One row per station and hour from its first to last delivered hour; absent hours MISSING."""
+    delivered = pd.DataFrame({"station_id": keys["station_id"].to_numpy(), "time": keys["time"].to_numpy()})
+    for variable, (numbers, flags) in values.items():
+        delivered[variable] = numbers
+        delivered[qc_column(variable)] = flags
+    pieces = []
+    for station, group in delivered.groupby("station_id", sort=True):
+        hours = pd.date_range(group["time"].min(), group["time"].max(), freq="h")
+        pieces.append(pd.DataFrame({"station_id": station, "time": hours}))
+    grid = pd.concat(pieces, ignore_index=True)
+    clean = grid.merge(delivered, on=["station_id", "time"], how="left")
+    columns = {"station_id": clean["station_id"].astype("string"),
+               "time": clean["time"].astype("datetime64[ns, UTC]")}
+    for variable in VARIABLE_NAMES:
+        if variable in values:
+            columns[variable] = clean[variable].astype("float64")
+            columns[qc_column(variable)] = clean[qc_column(variable)].fillna(QC_MISSING).astype("int8")
+        else:  # not delivered by this city
+            columns[variable] = np.full(len(clean), np.nan)
+            columns[qc_column(variable)] = np.full(len(clean), QC_MISSING, dtype="int8")
+    return pd.DataFrame(columns).sort_values(["station_id", "time"], ignore_index=True)
+
+
+def ingest_city(city: str, fmt: dict, raw_dir, stations: pd.DataFrame,
+                reference_temperature_c: float = 25.0, *, config_file: str | None = None
+                ) -> tuple[pd.DataFrame, dict]:
+    """Read a city's raw dump and return (clean table, QC report dict). Writes nothing."""
+    spec = validate_format(city, fmt, reference_temperature_c, config_file)
+    paths = _matching_files(raw_dir, spec["files"])
+    raw = READERS[spec["layout"]].read(paths, spec)
+    frame = raw.frame.reset_index(drop=True)
+    reason = np.full(len(frame), "", dtype=object)
+    known = set(stations_of_city(stations, city)["station_id"])
+
+    def active():
+        return reason == ""
+
+    frame["station_id"] = frame["station_raw"].map(spec["station_map"]).fillna(frame["station_raw"])
+    unknown = ~frame["station_id"].isin(known).to_numpy()
+    reason[unknown] = "unknown_station"
+    series_keys = ["station_id"]
+    if raw.long:
+        frame["variable"] = frame["variable_raw"].map(spec["variables"])
+        reason[active() & frame["variable"].isna().to_numpy()] = "variable_not_mapped"
+        series_keys.append("variable")
+        value_columns = ["variable", "value_raw", "unit_raw"]
+    else:
+        value_columns = list(spec["columns"].values())
+    parsed = timeparse.parse_text(frame["time_raw"], spec["time"])
+    reason[active() & parsed.isna().to_numpy()] = "unparseable_timestamp"
+    exact = qc.mark_exact_duplicates(frame, active(), ["station_id", "time_raw", *value_columns])
+    reason[exact] = "exact_duplicate"
+
+    if timeparse.is_aware(parsed):
+        utc = parsed
+        dst = {"timezone": "offset given in every timestamp", "ambiguous_rows": 0,
+               "nonexistent_rows_dropped": 0}
+    else:
+        utc = pd.Series(pd.NaT, index=frame.index, dtype="datetime64[ns, UTC]")
+        rows = active()
+        local_utc, time_reason, dst = timeparse.localize_to_utc(
+            parsed[rows], frame.loc[rows, series_keys], spec["time"])
+        utc[rows] = local_utc.astype("datetime64[ns, UTC]")
+        reason[np.flatnonzero(rows)[time_reason.to_numpy() != ""]] = time_reason[time_reason != ""].to_numpy()
+    dst["hour_label"] = spec["time"]["label"]
+    frame["utc"] = timeparse.apply_label(utc, spec["time"]).astype("datetime64[ns, UTC]")
+    off_hour = frame["utc"].notna() & (frame["utc"] != frame["utc"].dt.floor("h"))
+    reason[active() & off_hour.to_numpy()] = "timestamp_not_on_the_hour"
+    losers, conflict_groups = qc.mark_conflicting_duplicates(frame, active(), ["utc", *series_keys],
+                                                             spec["duplicates"])
+    reason[losers] = "conflicting_duplicate"
+
+    kept = frame[active()].reset_index(drop=True)
+    if kept.empty:
+        raise InputError(f"no usable row for city {city} (see the drop reasons: "
+                         f"{qc.top_codes(pd.Series(reason))})", file=str(paths[0]))
+    if raw.long:
+        keys, values, conversions = _convert_long(kept, spec, reference_temperature_c)
+    else:
+        keys = kept[["station_id", "utc"]].rename(columns={"utc": "time"})
+        values, conversions = _convert_wide(kept, spec, reference_temperature_c)
+    clean = _complete_grid(keys, values)
+
+    dropped = {name: int((reason == name).sum()) for name in DROP_REASONS}
+    dropped["unparseable_record"] = raw.pre_dropped.get("unparseable_record", 0)
+    rows_read = len(frame) + dropped["unparseable_record"]
+    report = {
+        "city": city, "layout": spec["layout"], "format": spec,
+        "reference_temperature_c": float(reference_temperature_c),
+        "files": raw.files,
+        "rows": {"read": rows_read, "kept": int(len(kept)), "dropped": rows_read - int(len(kept)),
+                 "dropped_by_reason": dropped},
+        "duplicates": {"exact_rows_dropped": dropped["exact_duplicate"],
+                       "conflicting_keys": conflict_groups,
+                       "conflicting_rows_dropped": dropped["conflicting_duplicate"],
+                       "resolution": ("kept the last row in delivery order (files by name, then lines)"
+                                      if spec["duplicates"] == "keep_last" else
+                                      "kept the first row in delivery order (files by name, then lines)")},
+        "unknown_station_codes": qc.top_codes(frame.loc[reason == "unknown_station", "station_raw"]),
+        "unmapped_variable_codes": (qc.top_codes(frame.loc[reason == "variable_not_mapped", "variable_raw"])
+                                    if raw.long else {}),
+        "dst": dst,
+        "conversions": conversions,
+        "variables_delivered": sorted(values),
+        "variables_not_delivered": [v for v in VARIABLE_NAMES if v not in values],
+        "values": qc.flag_counts(clean, VARIABLE_NAMES),
+        "stations_without_data": sorted(known - set(clean["station_id"])),
+        "gaps": {station: qc.station_gaps(group["utc"])
+                 for station, group in kept.groupby("station_id", sort=True)},
+        "clean_rows": int(len(clean)),
+    }
+    assert report["rows"]["dropped"] == sum(dropped.values()), "every dropped row has one reason"
+    return clean, report
+
+
+def run_ingest(city: str, fmt: dict, raw_dir, stations_csv, out_parquet, out_qc,
+               reference_temperature_c: float = 25.0, *, config_file: str | None = None) -> dict:
+    """Ingest one city and write its clean Parquet table and QC JSON atomically; return the QC dict."""
+    stations = load_stations(stations_csv)
+    clean, report = ingest_city(city, fmt, raw_dir, stations, reference_temperature_c,
+                                config_file=config_file)
+    report["stations_table"] = str(stations_csv)
+    report["outputs"] = {"parquet": str(out_parquet), "qc": str(out_qc)}
+    write_parquet_atomic(clean, out_parquet)
+    write_json_atomic(report, out_qc)
+    return report

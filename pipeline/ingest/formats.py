@@ -1,0 +1,132 @@
+"""Validate a city's format dict (config `data.cities.<city>`) and fill in its defaults.
+
+Reads nothing from disk. A format dict describes one city's raw dump completely, so a new city with a
+new format needs only config. Keys (defaults in brackets):
+
+  layout          wide_csv | long_csv | jsonl                                   (required)
+  files           glob relative to raw_dir, e.g. "mycity/*.csv"; matched files are read in name order
+  station_column  column (jsonl: field) holding the station code                (required)
+  station_map     {code in the dump: station_id}                                [codes used as ids]
+  time            {column: NAME | parts: {year, month, day, hour[, minute]},
+                   format: strftime pattern | iso8601 (with UTC offset) | epoch_s,
+                   timezone: tz database name (not needed for iso8601 / epoch_s) [UTC],
+                   label: start | end (hour-ending stamps are shifted back one hour) [start],
+                   ambiguous: order | dst | standard | drop [order], nonexistent: drop [drop]}
+  columns         wide_csv / jsonl: {column or dotted field path: canonical variable}
+  units           wide_csv / jsonl: {canonical variable: delivered unit}; long_csv: optional fallback
+  variable_column, value_column, unit_column, variables ({code: canonical})      long_csv only
+  separator [","]  decimal ["."]  header_line [1]  encoding ["utf-8"]
+  sentinels [[]]  missing_values [["", "NA", "NaN", "nan", "null", "None"]]
+  duplicates      keep_last | keep_first  (which of conflicting rows survives)  [keep_last]
+"""
+
+import copy
+import zoneinfo
+
+from pipeline.errors import InputError
+from pipeline.units import conversion_to_canonical
+from pipeline.variables import BY_NAME
+
+LAYOUTS = ("wide_csv", "long_csv", "jsonl")
+_COMMON = {"layout", "files", "station_column", "station_map", "time", "sentinels", "missing_values",
+           "duplicates", "encoding", "units"}
+_CSV = {"separator", "decimal", "header_line"}
+_ALLOWED = {
+    "wide_csv": _COMMON | _CSV | {"columns"},
+    "long_csv": _COMMON | _CSV | {"variable_column", "value_column", "unit_column", "variables"},
+    "jsonl": _COMMON | {"columns", "decimal"},
+}
+_REQUIRED = {
+    "wide_csv": ("files", "station_column", "time", "columns", "units"),
+    "long_csv": ("files", "station_column", "time", "variable_column", "value_column", "variables"),
+    "jsonl": ("files", "station_column", "time", "columns", "units"),
+}
+_TIME_KEYS = {"column", "parts", "format", "timezone", "label", "ambiguous", "nonexistent"}
+DEFAULTS = {"separator": ",", "decimal": ".", "header_line": 1, "encoding": "utf-8", "sentinels": [],
+            "missing_values": ["", "NA", "NaN", "nan", "null", "None"], "duplicates": "keep_last",
+            "station_map": {}, "units": {}}
+TIME_DEFAULTS = {"timezone": "UTC", "label": "start", "ambiguous": "order", "nonexistent": "drop"}
+
+
+def _fail(message: str, config_file: str | None, field: str):
+    raise InputError(message, file=config_file or "data config", field=field)
+
+
+def _check_variables(mapping: dict, where: str, config_file):
+    if not isinstance(mapping, dict) or not mapping:
+        _fail("must be a non-empty mapping", config_file, where)
+    targets = list(mapping.values())
+    for raw, canonical in mapping.items():
+        if canonical not in BY_NAME:
+            _fail(f"'{raw}' maps to unknown variable '{canonical}' (known: {', '.join(BY_NAME)})",
+                  config_file, f"{where}.{raw}")
+        if targets.count(canonical) > 1:
+            _fail(f"variable '{canonical}' is mapped from more than one column", config_file, where)
+
+
+def validate_format(city: str, fmt: dict, reference_temperature_c: float = 25.0,
+                    config_file: str | None = None) -> dict:
+    """Return a copy of `fmt` with defaults filled in; InputError naming the bad field otherwise."""
+    prefix = f"cities.{city}"
+    if not isinstance(fmt, dict):
+        _fail("must be a mapping", config_file, prefix)
+    layout = fmt.get("layout")
+    if layout not in LAYOUTS:
+        _fail(f"unknown layout '{layout}' (known: {', '.join(LAYOUTS)})", config_file, f"{prefix}.layout")
+    for key in fmt:
+        if key not in _ALLOWED[layout]:
+            _fail(f"unknown key for layout {layout}", config_file, f"{prefix}.{key}")
+    for key in _REQUIRED[layout]:
+        if key not in fmt:
+            _fail(f"missing (required for layout {layout})", config_file, f"{prefix}.{key}")
+    spec = copy.deepcopy(DEFAULTS)
+    spec.update(copy.deepcopy(fmt))
+    time = spec["time"]
+    if not isinstance(time, dict) or set(time) - _TIME_KEYS:
+        _fail(f"must be a mapping with keys among {sorted(_TIME_KEYS)}", config_file, f"{prefix}.time")
+    if ("column" in time) == ("parts" in time):
+        _fail("give exactly one of column or parts", config_file, f"{prefix}.time")
+    if "parts" in time and not {"year", "month", "day", "hour"} <= set(time["parts"]):
+        _fail("parts needs year, month, day and hour", config_file, f"{prefix}.time.parts")
+    if "parts" in time:  # the reader joins the parts itself, so it fixes the pattern too
+        time["format"] = "%Y-%m-%d %H:%M" if "minute" in time["parts"] else "%Y-%m-%d %H"
+    if not time.get("format"):
+        _fail("missing", config_file, f"{prefix}.time.format")
+    for key, value in TIME_DEFAULTS.items():
+        time.setdefault(key, value)
+    choices = {"label": ("start", "end"), "ambiguous": ("order", "dst", "standard", "drop"),
+               "nonexistent": ("drop",)}
+    for key, allowed in choices.items():
+        if time[key] not in allowed:
+            _fail(f"'{time[key]}' is not one of {', '.join(allowed)}", config_file, f"{prefix}.time.{key}")
+    try:
+        zoneinfo.ZoneInfo(str(time["timezone"]))
+    except (zoneinfo.ZoneInfoNotFoundError, ValueError):
+        _fail(f"unknown time zone '{time['timezone']}' (use a tz database name such as CET or "
+              f"Etc/GMT-1)", config_file, f"{prefix}.time.timezone")
+    if spec["duplicates"] not in ("keep_last", "keep_first"):
+        _fail("must be keep_last or keep_first", config_file, f"{prefix}.duplicates")
+    if layout == "long_csv":
+        _check_variables(spec["variables"], f"{prefix}.variables", config_file)
+        if "unit_column" not in spec and not spec["units"]:
+            _fail("long_csv needs unit_column or units", config_file, f"{prefix}.unit_column")
+    else:
+        _check_variables(spec["columns"], f"{prefix}.columns", config_file)
+        for canonical in spec["columns"].values():
+            if canonical not in spec["units"]:
+                _fail(f"no unit given for '{canonical}'", config_file, f"{prefix}.units.{canonical}")
+    for canonical, unit in spec["units"].items():
+        # Raises InputError for unknown units or impossible conversions, naming the field.
+        field = f"{prefix}.units.{canonical}"
+        try:
+            conversion_to_canonical(canonical, unit, reference_temperature_c, where=field)
+        except InputError as error:
+            _fail(str(error).removeprefix(f"{field}: "), config_file, field)
+    try:
+        spec["sentinels"] = [float(s) for s in spec["sentinels"]]
+    except (TypeError, ValueError):
+        _fail("must be a list of numbers", config_file, f"{prefix}.sentinels")
+    spec["missing_values"] = [str(s) for s in spec["missing_values"]]
+    if not isinstance(spec["header_line"], int) or spec["header_line"] < 1:
+        _fail("must be a positive line number", config_file, f"{prefix}.header_line")
+    return spec

@@ -1,0 +1,71 @@
+"""Quality control: duplicate rules, gap statistics and per-variable flag counts for the QC report.
+
+Reads and writes nothing (core.py assembles the report and writes it). Obeys the format key
+`duplicates` (keep_last | keep_first).
+
+Duplicate rules, applied to rows still in play:
+- exact duplicate: same station, same delivered timestamp text and identical delivered values
+  (and variable and unit, in long layouts) as an earlier row; the earlier row is kept. Detected before
+  DST resolution, so a re-delivered autumn day (A, B, A, B at the repeated hour) pairs up correctly.
+- conflicting duplicate: same station and UTC hour (and variable) but different values. One row
+  survives: the last in delivery order (files in name order, lines in order) under `keep_last`, on the
+  view that a later line is a correction; the first under `keep_first`. The others are dropped, counted.
+"""
+
+import numpy as np
+import pandas as pd
+
+from pipeline.variables import QC_FLAG_NAMES, qc_column
+
+HOUR = pd.Timedelta(hours=1)
+
+
+def mark_exact_duplicates(frame: pd.DataFrame, active: np.ndarray, columns: list[str]) -> np.ndarray:
+    """Boolean mask (over frame) of active rows that repeat an earlier active row exactly."""
+    duplicated = np.zeros(len(frame), dtype=bool)
+    if active.any():
+        duplicated[active] = frame.loc[active, columns].duplicated(keep="first").to_numpy()
+    return duplicated
+
+
+def mark_conflicting_duplicates(frame: pd.DataFrame, active: np.ndarray, keys: list[str],
+                                policy: str) -> tuple[np.ndarray, int]:
+    """(mask of active rows that lose a conflict, number of keys that had a conflict)."""
+    losers = np.zeros(len(frame), dtype=bool)
+    if not active.any():
+        return losers, 0
+    subset = frame.loc[active, keys]
+    keep = "last" if policy == "keep_last" else "first"
+    losers[active] = subset.duplicated(keep=keep).to_numpy()
+    groups = int(subset[subset.duplicated(keep=False)].drop_duplicates().shape[0])
+    return losers, groups
+
+
+def station_gaps(times: pd.Series) -> dict:
+    """Gap statistics of one station from its delivered (kept) UTC hours."""
+    hours = pd.Series(times.unique()).sort_values().reset_index(drop=True)
+    first, last = hours.iloc[0], hours.iloc[-1]
+    on_grid = int((last - first) / HOUR) + 1
+    steps = (hours.diff() / HOUR).iloc[1:].astype(int) - 1  # missing hours before each delivered hour
+    gaps = steps[steps > 0]
+    longest = int(gaps.max()) if len(gaps) else 0
+    longest_start = (hours.iloc[int(gaps.idxmax()) - 1] + HOUR).isoformat() if len(gaps) else None
+    return {"first": first.isoformat(), "last": last.isoformat(), "hours_on_grid": on_grid,
+            "hours_with_data": len(hours), "missing_hours": on_grid - len(hours),
+            "gap_count": int(len(gaps)), "longest_gap_hours": longest,
+            "longest_gap_start": longest_start}
+
+
+def flag_counts(clean: pd.DataFrame, variables) -> dict:
+    """{variable: {flag name: count}} over the whole clean table (gap rows included)."""
+    counts = {}
+    for variable in variables:
+        column = clean[qc_column(variable)]
+        tally = column.value_counts()
+        counts[variable] = {name: int(tally.get(code, 0)) for code, name in QC_FLAG_NAMES.items()}
+    return counts
+
+
+def top_codes(codes: pd.Series, limit: int = 20) -> dict:
+    """The most frequent offending codes with their counts (bounded, so a bad file cannot bloat the report)."""
+    return {str(k): int(v) for k, v in codes.value_counts().head(limit).items()}

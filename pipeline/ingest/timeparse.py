@@ -1,0 +1,92 @@
+"""Timestamps: delivered text -> UTC, with the daylight-saving decisions made explicit.
+
+Reads and writes nothing. Obeys the format key `time` (format, timezone, label, ambiguous, nonexistent).
+
+Local clock time with DST has two awkward hours a year:
+- autumn: one local hour happens twice. Policy `order` (default) pairs repeats in delivery order:
+  the first row of a station (and variable) at that local hour is the summer-time instant, the second
+  the standard-time instant (a logger writes them in that order). A lone row is taken as summer time
+  and counted. `dst` / `standard` force one reading; `drop` drops such rows (counted).
+- spring: one local hour does not exist. Rows stamped inside it are dropped and counted
+  (`nonexistent_local_time`): no reading can honestly be placed there.
+"""
+
+import re
+
+import numpy as np
+import pandas as pd
+
+_OFFSET_SUFFIX = re.compile(r"(Z|[+-]\d{2}:?\d{2})$")
+
+
+def parse_text(text: pd.Series, time_spec: dict) -> pd.Series:
+    """Text -> datetimes: naive local for strftime formats, UTC-aware for iso8601 / epoch_s.
+
+    Unparseable text gives NaT.
+    """
+    fmt = time_spec["format"]
+    if fmt == "iso8601":
+        has_offset = text.str.contains(_OFFSET_SUFFIX, regex=True)
+        parsed = pd.to_datetime(text.where(has_offset), format="ISO8601", utc=True, errors="coerce")
+        return parsed
+    if fmt == "epoch_s":
+        seconds = pd.to_numeric(text, errors="coerce")
+        return pd.to_datetime(seconds, unit="s", utc=True, errors="coerce")
+    return pd.to_datetime(text, format=fmt, errors="coerce")
+
+
+def is_aware(parsed: pd.Series) -> bool:
+    return getattr(parsed.dt, "tz", None) is not None
+
+
+def localize_to_utc(naive: pd.Series, group_keys: pd.DataFrame, time_spec: dict) -> tuple[pd.Series, pd.Series, dict]:
+    """Naive local datetimes -> UTC.
+
+    `group_keys` (same index) holds the columns that identify one series (station, and variable for
+    long layouts); rows must be in delivery order. Returns (utc with NaT where dropped,
+    reason per row: "" or a drop reason, DST report).
+    """
+    tz = time_spec["timezone"]
+    policy = time_spec["ambiguous"]
+    report = {"timezone": tz, "ambiguous_policy": policy, "nonexistent_policy": time_spec["nonexistent"],
+              "ambiguous_rows": 0, "ambiguous_assigned_summer_time": 0,
+              "ambiguous_assigned_standard_time": 0, "ambiguous_lone_rows": 0,
+              "ambiguous_rows_dropped": 0, "nonexistent_rows_dropped": 0}
+    # Two cheap passes tell the cases apart: NaT under ambiguous="NaT" (with nonexistent shifted)
+    # marks repeated local hours; NaT under nonexistent="NaT" marks skipped local hours.
+    ambiguous = naive.dt.tz_localize(tz, ambiguous="NaT", nonexistent="shift_forward").isna()
+    nonexistent = naive.dt.tz_localize(tz, ambiguous=np.ones(len(naive), dtype=bool),
+                                       nonexistent="NaT").isna()
+    ambiguous &= naive.notna()
+    nonexistent &= naive.notna() & ~ambiguous
+    occurrence = pd.Series(0, index=naive.index)
+    if ambiguous.any():
+        keys = group_keys[ambiguous].copy()
+        keys["_local"] = naive[ambiguous]
+        occurrence[ambiguous] = keys.groupby(list(keys.columns), sort=False).cumcount()
+        size = keys.groupby(list(keys.columns), sort=False)["_local"].transform("size")
+        report["ambiguous_lone_rows"] = int((size == 1).sum())
+    if policy == "standard":
+        summer = ~ambiguous.to_numpy()
+    elif policy == "dst":
+        summer = np.ones(len(naive), dtype=bool)
+    else:  # order (and drop: the flag is unused for dropped rows)
+        summer = (occurrence == 0).to_numpy()
+    utc = naive.dt.tz_localize(tz, ambiguous=summer, nonexistent="NaT").dt.tz_convert("UTC")
+    reason = pd.Series("", index=naive.index, dtype=object)
+    reason[nonexistent] = "nonexistent_local_time"
+    report["nonexistent_rows_dropped"] = int(nonexistent.sum())
+    report["ambiguous_rows"] = int(ambiguous.sum())
+    if policy == "drop":
+        reason[ambiguous] = "ambiguous_local_time"
+        report["ambiguous_rows_dropped"] = int(ambiguous.sum())
+    else:
+        report["ambiguous_assigned_summer_time"] = int((ambiguous & pd.Series(summer, index=naive.index)).sum())
+        report["ambiguous_assigned_standard_time"] = report["ambiguous_rows"] - report["ambiguous_assigned_summer_time"]
+    utc[reason != ""] = pd.NaT
+    return utc, reason, report
+
+
+def apply_label(utc: pd.Series, time_spec: dict) -> pd.Series:
+    """Hour-ending stamps (label `end`) name the hour by its end: move them to the hour's start."""
+    return utc - pd.Timedelta(hours=1) if time_spec["label"] == "end" else utc

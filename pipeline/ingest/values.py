@@ -1,0 +1,46 @@
+"""Delivered value text -> canonical numbers and QC flags.
+
+Reads and writes nothing. Obeys the format keys `decimal`, `missing_values`, `sentinels`, and the
+delivered units (per variable, or per row in long layouts). Order of checks, first match wins:
+missing (empty cell or a missing-value word) -> unparseable (text that is not a number) ->
+sentinel (a delivered no-data code, compared before unit conversion, as delivered) ->
+out of range (outside the canonical variable's [low, high] after conversion).
+A value with any flag other than ok becomes NaN; the flag keeps the reason.
+"""
+
+import numpy as np
+import pandas as pd
+
+from pipeline.units import Conversion
+from pipeline.variables import (BY_NAME, QC_MISSING, QC_OK, QC_OUT_OF_RANGE, QC_SENTINEL,
+                                QC_UNPARSEABLE)
+
+
+def parse_numbers(text: pd.Series, spec: dict) -> tuple[np.ndarray, np.ndarray]:
+    """Text -> (float64 values as delivered, int8 flags); flagged values are NaN."""
+    stripped = text.astype(str).str.strip()
+    missing = stripped.isin(spec["missing_values"]).to_numpy()
+    if spec["decimal"] != ".":
+        stripped = stripped.str.replace(spec["decimal"], ".", regex=False)
+    numbers = pd.to_numeric(stripped.where(~missing), errors="coerce").to_numpy(dtype="float64", copy=True)
+    unparseable = ~missing & np.isnan(numbers)
+    sentinel = ~missing & np.isin(numbers, np.asarray(spec["sentinels"], dtype="float64"))
+    flags = np.full(len(text), QC_OK, dtype="int8")
+    flags[missing] = QC_MISSING
+    flags[unparseable] = QC_UNPARSEABLE
+    flags[sentinel] = QC_SENTINEL
+    numbers[flags != QC_OK] = np.nan
+    return numbers, flags
+
+
+def to_canonical(numbers: np.ndarray, flags: np.ndarray, variable: str,
+                 conversion: Conversion) -> tuple[np.ndarray, np.ndarray]:
+    """Convert into canonical units and flag physically impossible values."""
+    values = conversion.apply(numbers)
+    limits = BY_NAME[variable]
+    with np.errstate(invalid="ignore"):
+        impossible = (flags == QC_OK) & ((values < limits.low) | (values > limits.high))
+    flags = flags.copy()
+    flags[impossible] = QC_OUT_OF_RANGE
+    values = np.where(flags == QC_OK, values, np.nan)
+    return values, flags

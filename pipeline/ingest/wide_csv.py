@@ -1,0 +1,28 @@
+"""Layout `wide_csv`: one row per station and hour, one column per variable.
+
+Reads the files matched by the format key `files`; writes nothing. Obeys `station_column`, `time`,
+`columns`, `separator`, `decimal` (applied later, when values are parsed), `header_line`, `encoding`.
+A semicolon-separated file with decimal commas is this layout with separator ";" and decimal ",".
+"""
+
+import pandas as pd
+
+from pipeline.ingest.raw import (RawTable, file_digest, read_csv_text, require_columns, time_columns,
+                                 time_text)
+
+
+def read(paths: list, spec: dict) -> RawTable:
+    frames, files = [], []
+    needed = [spec["station_column"], *time_columns(spec["time"]), *spec["columns"]]
+    for path in paths:
+        table, blank_lines = read_csv_text(path, spec)
+        require_columns(table, needed, path, spec["header_line"])
+        frame = pd.DataFrame({"file": str(path), "line": table["line"],
+                              "station_raw": table[spec["station_column"]].str.strip(),
+                              "time_raw": time_text(table, spec["time"])})
+        for raw_name, canonical in spec["columns"].items():
+            frame[canonical] = table[raw_name].to_numpy()
+        frames.append(frame)
+        files.append({"path": str(path), "rows": len(frame), "blank_lines": blank_lines,
+                      "sha256": file_digest(path)})
+    return RawTable(pd.concat(frames, ignore_index=True), long=False, files=files)
