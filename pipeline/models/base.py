@@ -8,8 +8,10 @@ Contract (sklearn-like): `__init__(seed=0, **params)` only checks the parameter 
 unchanged (`self.seed`, `self.params`); values are validated in `fit` (Params.__post_init__).
 `fit(train, val=None, penalty=None, trainer=None)` returns self; learned state ends in `_`:
 `history_`, `snapshot_steps_`, `best_step_`, `stop_reason_`, `n_parameters_`, `fit_seconds_`.
-`predict(X)` returns float32 (n, H) in scaled units. `state_dict()` returns {"meta": {...}, "weights":
-{...}} and `load_state_dict()` restores a model that predicts identically, also into a fresh instance.
+`predict(X)` returns float32 (n, H) in scaled units. `state_dict()` returns a FLAT dict of arrays
+(torch tensors for torch families, numpy arrays otherwise) holding the weights plus `_meta.lookback`,
+`_meta.n_features`, `_meta.horizon`, `_meta.target_index` (0-d int64); `load_state_dict()` restores a
+model that predicts identically, also into a fresh instance built with the same params.
 """
 
 from __future__ import annotations
@@ -25,8 +27,19 @@ from pipeline.errors import InputError
 from pipeline.train_loop import TrainerConfig, check_window_set, predict_network, train_network
 
 
+META_PREFIX = "_meta."  # state_dict keys that hold shapes, not weights
+META_KEYS = ("lookback", "n_features", "horizon", "target_index")
+
+
 class NotFittedError(RuntimeError):
     """predict/state_dict called before fit or load_state_dict."""
+
+
+def as_numpy(value) -> np.ndarray:
+    """A copy as a numpy array, whether the stored value is a torch tensor or array-like."""
+    if isinstance(value, torch.Tensor):
+        return value.detach().cpu().numpy().copy()
+    return np.array(value)
 
 
 def check_positive_ints(params: Any, *names: str) -> None:
@@ -89,24 +102,26 @@ class ForecastModel:
     def _finish_fit(self) -> None:
         self.fit_seconds_ = time.perf_counter() - self._fit_started
 
-    def _meta(self) -> dict:
+    def _meta(self) -> dict[str, np.ndarray]:
+        """Shape facts needed to rebuild the model, as 0-d int64 arrays so the state stays flat."""
         self._check_fitted()
-        return {"family": self.family, "lookback": self.lookback_, "n_features": self.n_features_,
-                "horizon": self.horizon_, "target_index": self.target_index_}
+        values = (self.lookback_, self.n_features_, self.horizon_, self.target_index_)
+        return {f"{META_PREFIX}{name}": np.array(v, dtype=np.int64) for name, v in zip(META_KEYS, values)}
 
     def _load_meta(self, state: dict) -> dict:
-        meta = state.get("meta", {})
-        if meta.get("family") != self.family:
-            raise InputError(f"state of family {meta.get('family')!r} cannot load into {self.family!r}",
-                             field="state_dict.meta.family")
-        self.lookback_, self.n_features_ = int(meta["lookback"]), int(meta["n_features"])
-        self.horizon_, self.target_index_ = int(meta["horizon"]), int(meta["target_index"])
+        """Restore the shape facts from a flat state; returns the remaining (weight) entries."""
+        missing = [name for name in META_KEYS if f"{META_PREFIX}{name}" not in state]
+        if missing:
+            raise InputError(f"state of family {self.family!r} lacks {META_PREFIX}{missing[0]}",
+                             field="state_dict")
+        self.lookback_, self.n_features_, self.horizon_, self.target_index_ = (
+            int(as_numpy(state[f"{META_PREFIX}{name}"])) for name in META_KEYS)
         self.hparams_ = self.Params(**self.params)
         for attr, default in (("history_", []), ("snapshot_steps_", []), ("best_step_", None),
                               ("stop_reason_", "loaded"), ("fit_seconds_", 0.0)):
             if not hasattr(self, attr):
                 setattr(self, attr, default)
-        return state["weights"]
+        return {k: v for k, v in state.items() if not k.startswith(META_PREFIX)}
 
     def _check_fitted(self) -> None:
         if not hasattr(self, "horizon_"):
@@ -150,11 +165,15 @@ class ClosedFormModel(ForecastModel):
         return np.asarray(self._predict_closed_form(X), dtype=np.float32).reshape(len(X), self.horizon_)
 
     def state_dict(self) -> dict:
-        return {"meta": self._meta(), "weights": {k: np.array(v) for k, v in self._weights().items()}}
+        return {**{k: np.array(v) for k, v in self._weights().items()}, **self._meta()}
 
     def load_state_dict(self, state: dict) -> "ClosedFormModel":
-        weights = self._load_meta(state)
-        self._set_weights({k: np.array(v) for k, v in weights.items()})
+        weights = {k: as_numpy(v) for k, v in self._load_meta(state).items()}
+        try:
+            self._set_weights(weights)
+        except KeyError as exc:
+            raise InputError(f"state lacks {exc.args[0]!r} for family {self.family!r}",
+                             field="state_dict") from None
         self.n_parameters_ = sum(int(np.size(v)) for v in weights.values())
         return self
 
@@ -222,12 +241,18 @@ class TorchForecaster(ForecastModel):
 
     def state_dict(self) -> dict:
         weights = {k: v.detach().clone() for k, v in self.network_.state_dict().items()}
-        return {"meta": self._meta(), "weights": weights}
+        meta = {k: torch.from_numpy(v) for k, v in self._meta().items()}
+        return {**weights, **meta}
 
     def load_state_dict(self, state: dict) -> "TorchForecaster":
         weights = self._load_meta(state)
         with torch.random.fork_rng(devices=[]):  # building the module draws init values: keep RNG
             self.network_ = self.build_network(self.lookback_, self.n_features_, self.horizon_)
-        self.network_.load_state_dict(weights)
+        try:
+            self.network_.load_state_dict({k: torch.as_tensor(np.asarray(v)) for k, v in weights.items()})
+        except RuntimeError as exc:  # wrong family or hyperparameters: keep it to one line
+            first_line = str(exc).strip().splitlines()[0]
+            raise InputError(f"does not fit family {self.family!r} with {self.params}: {first_line}",
+                             field="state_dict") from None
         self.n_parameters_ = sum(p.numel() for p in self.network_.parameters())
         return self
