@@ -1,0 +1,151 @@
+"""Penalties against published formulas and the worked values of CHECKS.md sections 1-3."""
+
+import numpy as np
+import pytest
+import torch
+
+from pipeline.errors import InputError
+from pipeline.penalties import (build_penalty, irm_gradient_autograd, irm_gradient_closed_form)
+
+
+def t(values):
+    return torch.tensor(values, dtype=torch.float64)
+
+
+def constant_risk_batches(risks):
+    """Per-environment (pred, target) pairs whose squared error is exactly the given risk."""
+    preds = [torch.zeros(4, 1, dtype=torch.float64) for _ in risks]
+    targets = [torch.full((4, 1), float(np.sqrt(r)), dtype=torch.float64) for r in risks]
+    return preds, targets
+
+
+# --- IRMv1: Arjovsky, Bottou, Gulrajani, Lopez-Paz (2019), arXiv:1907.02893; CHECKS.md section 1 ------
+@pytest.mark.parametrize("pred,target,grad,penalty,risk", [
+    ([1, 2, 3, 4], [1.5, 1.5, 2.5, 5], -1.0, 1.0, 0.4375),  # CHECKS.md s.1 [computed]
+    ([0.5, -1, 2], [1, -1, 1], 1.1666667, 1.3611111, 0.4166667),  # CHECKS.md s.1 [computed]
+])
+def test_irm_gradient_closed_form_equals_autograd_and_published_values(pred, target, grad, penalty, risk):
+    assert float(irm_gradient_closed_form(t(pred), t(target))) == pytest.approx(grad, abs=1e-6)
+    assert float(irm_gradient_autograd(t(pred), t(target)).detach()) == pytest.approx(grad, abs=1e-6)
+    for method in ("closed_form", "autograd"):
+        loss, logs = build_penalty("irm", weight=1.0, irm_gradient=method)([t(pred)], [t(target)], step=0)
+        assert logs["penalty_value"] == pytest.approx(penalty, abs=1e-6)
+        assert logs["risk/0"] == pytest.approx(risk, abs=1e-6)
+        assert float(loss) == pytest.approx(risk + penalty, abs=1e-6)  # weight 1: no rescaling
+
+
+def test_irm_closed_form_and_autograd_give_the_same_gradients_for_training():
+    generator = torch.Generator().manual_seed(0)
+    grads = {}
+    for method in ("closed_form", "autograd"):
+        preds = [torch.randn(16, 3, generator=generator, dtype=torch.float64).requires_grad_() for _ in range(3)]
+        targets = [torch.randn(16, 3, generator=generator, dtype=torch.float64) for _ in range(3)]
+        loss, _ = build_penalty("irm", weight=7.0, irm_gradient=method)(preds, targets, step=0)
+        loss.backward()
+        grads[method] = torch.cat([p.grad.flatten() for p in preds])
+        generator.manual_seed(0)  # same draws for the second method
+    torch.testing.assert_close(grads["closed_form"], grads["autograd"], rtol=1e-12, atol=1e-12)
+
+
+def test_irm_penalty_averages_over_environments():
+    # Our convention: mean over environments (the authors' released code averages [from memory]).
+    loss, logs = build_penalty("irm", weight=1.0)([t([1, 2, 3, 4]), t([0.5, -1, 2])],
+                                                  [t([1.5, 1.5, 2.5, 5]), t([1, -1, 1])], step=0)
+    assert logs["penalty_value"] == pytest.approx((1.0 + 1.3611111) / 2, abs=1e-6)
+    assert float(loss) == pytest.approx((0.4375 + 0.4166667) / 2 + (1.0 + 1.3611111) / 2, abs=1e-6)
+
+
+# --- V-REx: Krueger et al. (2021), ICML; CHECKS.md section 2 ---------------------------------------------
+def test_vrex_uses_the_population_variance_of_the_risks():
+    preds, targets = constant_risk_batches([0.2, 0.5, 0.8])
+    loss, logs = build_penalty("vrex", weight=10.0, rescale_heavy=False)(preds, targets, step=0)
+    assert logs["penalty_value"] == pytest.approx(0.06, abs=1e-12)  # Var_pop, CHECKS.md s.2 [computed]
+    assert logs["penalty_value"] == pytest.approx(np.var([0.2, 0.5, 0.8]), abs=1e-12)  # numpy ddof=0
+    assert logs["penalty_value"] != pytest.approx(0.09, abs=1e-3)  # NOT the sample variance (torch.var)
+    assert float(loss) == pytest.approx(0.5 + 10 * 0.06, abs=1e-12)  # mean of risks + beta * Var_pop
+    paper_sum_form = sum(logs[f"risk/{e}"] for e in range(3)) + logs["penalty_weight"] * logs["penalty_value"]
+    assert paper_sum_form == pytest.approx(2.1, abs=1e-12)  # CHECKS.md s.2: beta=10 with Var_pop -> 2.1
+
+
+def test_vrex_two_environments_equals_quarter_squared_difference():
+    preds, targets = constant_risk_batches([0.3, 0.7])
+    _, logs = build_penalty("vrex", weight=1.0)(preds, targets, step=0)
+    assert logs["penalty_value"] == pytest.approx((0.7 - 0.3) ** 2 / 4, abs=1e-12)  # CHECKS.md s.2
+
+
+def test_heavy_weight_divides_the_loss_by_the_weight():
+    # As in the IRMv1 reference implementation [from memory]: weight > 1 -> loss / weight.
+    preds, targets = constant_risk_batches([0.2, 0.5, 0.8])
+    loss, logs = build_penalty("vrex", weight=10.0)(preds, targets, step=0)
+    assert logs["loss_scale"] == pytest.approx(0.1)
+    assert float(loss) == pytest.approx((0.5 + 10 * 0.06) / 10, abs=1e-12)
+    _, light = build_penalty("vrex", weight=0.5)(preds, targets, step=0)
+    assert light["loss_scale"] == 1.0
+
+
+# --- Group DRO: Sagawa, Koh, Hashimoto, Liang (2020), ICLR, arXiv:1911.08731; CHECKS.md section 3 ---------
+@pytest.mark.parametrize("eta,q,loss_value", [
+    (0.01, (0.332334, 0.333332, 0.334334), 0.500600),  # CHECKS.md s.3 [computed]
+    (1.0, (0.239694, 0.323554, 0.436752), 0.559117),  # CHECKS.md s.3 [computed]
+])
+def test_groupdro_one_step(eta, q, loss_value):
+    preds, targets = constant_risk_batches([0.2, 0.5, 0.8])
+    loss, logs = build_penalty("groupdro", weight=1.0, eta=eta)(preds, targets, step=0)
+    np.testing.assert_allclose([logs[f"q/{g}"] for g in range(3)], q, atol=1e-6)
+    assert float(loss) == pytest.approx(loss_value, abs=1e-6)  # weight 1 = Sagawa et al.'s objective
+
+
+def test_groupdro_state_persists_across_steps_and_resets():
+    risks = [0.2, 0.5, 0.8]
+    preds, targets = constant_risk_batches(risks)
+    penalty = build_penalty("groupdro", weight=1.0, eta=1.0)
+    penalty(preds, targets, step=0)
+    _, logs = penalty(preds, targets, step=1)
+    q = [logs[f"q/{g}"] for g in range(3)]
+    np.testing.assert_allclose(q, torch.softmax(2 * t(risks), 0).numpy(), atol=1e-12)
+    np.testing.assert_allclose(q, (0.162807, 0.296654, 0.540539), atol=1e-6)  # CHECKS.md s.3 [computed]
+    penalty.reset()
+    _, logs = penalty(preds, targets, step=2)
+    np.testing.assert_allclose([logs[f"q/{g}"] for g in range(3)], (0.239694, 0.323554, 0.436752), atol=1e-6)
+
+
+def test_groupdro_weights_stay_uniform_during_warmup():
+    preds, targets = constant_risk_batches([0.2, 0.5, 0.8])
+    penalty = build_penalty("groupdro", weight=1.0, warmup_steps=2, eta=1.0)
+    for step in (0, 1):
+        loss, logs = penalty(preds, targets, step=step)
+        assert [logs[f"q/{g}"] for g in range(3)] == pytest.approx([1 / 3] * 3)
+        assert float(loss) == pytest.approx(0.5)  # plain mean risk while warming up
+    _, logs = penalty(preds, targets, step=2)
+    np.testing.assert_allclose([logs[f"q/{g}"] for g in range(3)], (0.239694, 0.323554, 0.436752), atol=1e-6)
+
+
+# --- schedule, ERM and errors ------------------------------------------------------------------------------
+def test_warmup_schedule_and_optimizer_reset_switch():
+    penalty = build_penalty("irm", weight=5.0, warmup_steps=10)
+    assert [penalty.effective_weight(s) for s in (0, 9, 10, 500)] == [0.0, 0.0, 5.0, 5.0]
+    assert [s for s in range(30) if penalty.resets_optimizer_at(s)] == [10]
+    soft = build_penalty("vrex", weight=5.0, warmup_steps=10, warmup_weight=1.0)
+    assert [soft.effective_weight(s) for s in (9, 10)] == [1.0, 5.0]
+    assert not any(build_penalty("irm", weight=5.0).resets_optimizer_at(s) for s in range(30))
+    assert not any(build_penalty("irm", weight=5.0, warmup_steps=10, reset_optimizer=False)
+                   .resets_optimizer_at(s) for s in range(30))
+
+
+def test_erm_is_the_mean_of_environment_risks_whatever_the_weight():
+    preds, targets = constant_risk_batches([0.2, 0.5, 0.8])
+    loss, logs = build_penalty("erm", weight=3.0, rescale_heavy=False)(preds, targets, step=0)
+    assert float(loss) == pytest.approx(0.5) and logs["penalty_value"] == 0.0
+
+
+@pytest.mark.parametrize("kwargs,match", [
+    ({"name": "coral"}, "unknown penalty 'coral'"),
+    ({"name": "irm", "weight": -1.0}, "penalty.weight"),
+    ({"name": "irm", "warmup_steps": -2}, "penalty.warmup_steps"),
+    ({"name": "groupdro", "eta": 0.0}, "penalty.eta"),
+    ({"name": "vrex", "eta": 0.1}, "unexpected keyword argument 'eta'"),
+    ({"name": "irm", "irm_gradient": "finite_differences"}, "penalty.irm_gradient"),
+])
+def test_bad_penalty_settings_raise_input_error(kwargs, match):
+    with pytest.raises(InputError, match=match):
+        build_penalty(**kwargs)
