@@ -161,7 +161,7 @@ def _kept_variables(frames, city_of, record, candidates, target, train_span):
 
 
 def _cut_windows(features, target_raw, hours, cfg: ForecastConfig, skipped: dict):
-    """Windows of one station in one block: (X float64 (n,L,F), y_raw (n,H), origin (n,))."""
+    """Windows of one station in one block: (X (n,L,F), raw y (n,H), origin (n,)); counts skips."""
     lookback, horizon = cfg.lookback_hours, cfg.horizon_hours
     starts = np.arange(0, max(len(target_raw) - lookback - horizon + 1, 0), cfg.stride_hours)
     # prefix sums of "row has a NaN" give the NaN count of any window in O(1)
@@ -236,7 +236,8 @@ def build_windows(split_record: dict, tables: dict, cfg: ForecastConfig | dict |
 
     def window_set(parts) -> WindowSet:
         """parts: list of (station_id, env name, (features, raw target, hours))."""
-        pieces = [(s, env, _cut_windows(scaler.transform(f), t, h, cfg, skipped))
+        # float32 before cutting: windows repeat every row up to L times, so halve the memory early
+        pieces = [(s, env, _cut_windows(scaler.transform(f).astype(np.float32), t, h, cfg, skipped))
                   for s, env, (f, t, h) in parts]
         n_features, L, H = len(names), cfg.lookback_hours, cfg.horizon_hours
         X = np.concatenate([p[2][0] for p in pieces] + [np.empty((0, L, n_features))]).astype(np.float32)
