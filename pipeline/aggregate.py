@@ -1,0 +1,218 @@
+"""Aggregation: run records + MLflow -> the grid tables (I/O shell around pipeline.grid_stats).
+
+Reads the run records results/runs/<split_id>/<model>/<penalty>/<seed>.json, the MLflow runs they name
+(via each record's tracking_uri) and each run's predictions artifact
+(predictions/target_predictions.parquet). Writes, in the results folder:
+- grid.parquet: one row per current run: identity, every logged metric (`<rule>.<name>` and the
+  un-prefixed primary ones), every tag (`tag.<name>`) and param (`param.<name>`);
+- grid.csv: the summary per split x model x penalty for every selection rule that was logged
+  (pipeline.grid_stats.summarise), the Diebold-Mariano columns joined in;
+- grid_dm.csv: the Diebold-Mariano + HLN tests of each penalty against its ERM twin, per rule;
+- grid_meta.json: metric, rules, Friedman/Nemenyi per rule, skipped runs and why.
+Config keys obeyed (handed over by the rule): report.metric, report.bootstrap_samples.
+
+A record whose run is missing, unfinished, in another experiment or whose headline metrics differ from
+the logged ones is an InputError naming the run id and the record file. A record whose run carries the
+`superseded_by` tag is skipped and counted (the grid uses current runs only).
+"""
+
+from __future__ import annotations
+
+import json
+import math
+import tempfile
+from pathlib import Path
+from urllib.parse import unquote, urlparse
+
+import numpy as np
+import pandas as pd
+
+from pipeline import grid_stats, tracking
+from pipeline.errors import InputError
+
+RECORD_KEYS = ("run_id", "tracking_uri", "split_id", "sources", "target", "model", "family", "penalty", "seed")
+PREDICTIONS_ARTIFACT = "predictions/target_predictions.parquet"
+
+
+def read_record(path: Path | str) -> dict:
+    path = Path(path)
+    try:
+        record = json.loads(path.read_text())
+    except (OSError, json.JSONDecodeError) as error:
+        raise InputError(f"cannot read run record: {error}", file=str(path)) from None
+    missing = [key for key in RECORD_KEYS if key not in record]
+    if missing:
+        raise InputError(f"run record lacks keys {missing}", file=str(path), field=missing[0])
+    return record
+
+
+def _store_exists(uri: str, record_path: str) -> None:
+    """MLflow would silently create an empty SQLite store: refuse a store file that is not there."""
+    if uri.startswith("sqlite:///"):
+        db_file = Path(uri[len("sqlite:///"):])
+        if not db_file.exists():
+            raise InputError(f"tracking store {db_file} does not exist", file=record_path, field="tracking_uri")
+
+
+def _same(recorded, logged) -> bool:
+    if recorded is None or logged is None:
+        return recorded is None and logged is None
+    recorded, logged = float(recorded), float(logged)
+    if math.isnan(recorded) or math.isnan(logged):
+        return math.isnan(recorded) and math.isnan(logged)
+    return math.isclose(recorded, logged, rel_tol=1e-9, abs_tol=1e-12)
+
+
+def check_run(record: dict, run, record_path: str) -> None:
+    """The record and its MLflow run must agree: finished, same experiment, same headline metrics."""
+    run_id = record["run_id"]
+    if run.info.status != "FINISHED":
+        raise InputError(f"MLflow run {run_id} has status {run.info.status}, not FINISHED",
+                         file=record_path, field="run_id")
+    if record.get("experiment_id") not in (None, run.info.experiment_id):
+        raise InputError(f"MLflow run {run_id} belongs to experiment {run.info.experiment_id}, "
+                         f"the record says {record['experiment_id']}", file=record_path, field="experiment_id")
+    for name, recorded in sorted((record.get("metrics") or {}).items()):
+        logged = run.data.metrics.get(name)
+        if not _same(recorded, logged):
+            raise InputError(f"MLflow run {run_id}: metric {name} is {logged} in MLflow but {recorded} "
+                             f"in the record", file=record_path, field=f"metrics.{name}")
+    for key in ("split_id", "model", "penalty"):
+        tag = run.data.tags.get(key)
+        if tag is not None and tag != str(record[key]):
+            raise InputError(f"MLflow run {run_id}: tag {key}={tag} but the record says {record[key]}",
+                             file=record_path, field=key)
+
+
+def fetch_run(client, record: dict, record_path: str):
+    from mlflow.exceptions import MlflowException
+
+    try:
+        return client.get_run(record["run_id"])
+    except MlflowException:
+        raise InputError(f"MLflow run {record['run_id']} not found in {record['tracking_uri']}",
+                         file=record_path, field="run_id") from None
+
+
+def run_row(record: dict, run, record_path: str) -> dict:
+    row = {"run_id": record["run_id"], "record": str(record_path), "experiment": record.get("experiment"),
+           "split_id": record["split_id"], "sources": "+".join(record["sources"]), "target": record["target"],
+           "model": record["model"], "family": record["family"], "penalty": record["penalty"],
+           "seed": int(record["seed"]), "selection_rule": record.get("selection_rule"),
+           "tracking_uri": record["tracking_uri"], "artifact_uri": run.info.artifact_uri, "start_time": run.info.start_time}
+    row.update({name: float(value) for name, value in run.data.metrics.items()})
+    row.update({f"tag.{name}": value for name, value in run.data.tags.items() if not name.startswith("mlflow.")})
+    row.update({f"param.{name}": value for name, value in run.data.params.items()})
+    return row
+
+
+def collect_runs(record_paths: list[Path | str]) -> tuple[pd.DataFrame, dict]:
+    """One row per current run (cross-checked against MLflow) and the skipped runs {reason: [record]}."""
+    clients: dict[str, object] = {}
+    rows, skipped = [], {}
+    for path in map(str, record_paths):
+        record = read_record(path)
+        uri = record["tracking_uri"]
+        if uri not in clients:
+            _store_exists(uri, path)
+            clients[uri] = tracking.client_for(uri)
+        run = fetch_run(clients[uri], record, path)
+        if tracking.SUPERSEDED_TAG in run.data.tags:
+            skipped.setdefault("superseded", []).append(path)
+            continue
+        check_run(record, run, path)
+        rows.append(run_row(record, run, path))
+    if not rows:
+        raise InputError(f"no current run among {len(record_paths)} run records", field="runs")
+    runs = pd.DataFrame(rows).sort_values(["split_id", "model", "penalty", "seed"], ignore_index=True)
+    return runs, skipped
+
+
+def predictions_of(run_id: str, artifact_uri: str, tracking_uri: str, record_path: str) -> pd.DataFrame:
+    """A run's predictions table: read in place for a local artifact store, downloaded otherwise."""
+    parsed = urlparse(artifact_uri)
+    if parsed.scheme in ("", "file"):
+        path = Path(unquote(parsed.path)) / PREDICTIONS_ARTIFACT
+        if not path.exists():
+            raise InputError(f"MLflow run {run_id} has no artifact {PREDICTIONS_ARTIFACT} ({path})",
+                             file=record_path, field="artifacts")
+        return pd.read_parquet(path)
+    from mlflow.exceptions import MlflowException
+
+    with tempfile.TemporaryDirectory() as folder:
+        try:
+            local = tracking.client_for(tracking_uri).download_artifacts(run_id, PREDICTIONS_ARTIFACT, folder)
+        except (MlflowException, OSError):
+            raise InputError(f"MLflow run {run_id} has no artifact {PREDICTIONS_ARTIFACT}",
+                             file=record_path, field="artifacts") from None
+        return pd.read_parquet(local)
+
+
+def dm_tests(runs: pd.DataFrame, rules: list[str], load=predictions_of) -> pd.DataFrame:
+    """Diebold-Mariano + HLN of every penalty against its ERM twin (same split and model), per rule."""
+    losses: dict[str, dict[str, pd.Series]] = {}
+
+    def losses_of(row) -> dict[str, pd.Series]:
+        if row.run_id not in losses:
+            frame = load(row.run_id, row.artifact_uri, row.tracking_uri, row.record)
+            horizon = sum(col.startswith("y_h") for col in frame.columns)
+            losses[row.run_id] = {rule: grid_stats.window_losses(frame, rule) for rule in rules}
+            losses[row.run_id]["_horizon"] = horizon
+        return losses[row.run_id]
+
+    rows = []
+    for (split_id, model), group in runs.groupby(["split_id", "model"], sort=True):
+        erm = list(group[group["penalty"] == grid_stats.BASELINE_PENALTY].itertuples())
+        others = group[~group["penalty"].isin([grid_stats.BASELINE_PENALTY, grid_stats.NOT_APPLICABLE])]
+        if not erm or others.empty:
+            continue
+        for penalty, penalised in others.groupby("penalty", sort=True):
+            penalised_rows = list(penalised.itertuples())
+            horizon = losses_of(erm[0])["_horizon"]
+            for rule in rules:
+                result = grid_stats.paired_dm([losses_of(r)[rule] for r in penalised_rows],
+                                              [losses_of(r)[rule] for r in erm], horizon)
+                rows.append({"split_id": split_id, "model": model, "penalty": penalty,
+                             "selection_rule": rule, **result})
+    columns = ["split_id", "model", "penalty", "selection_rule", "dm_stat", "dm_hln", "dm_p", "dm_fallback",
+               "dm_n", "dm_h", "dm_mean_diff"]
+    return pd.DataFrame(rows, columns=columns)
+
+
+def build_grid(runs: pd.DataFrame, dm: pd.DataFrame, metric: str, n_boot: int) -> tuple[pd.DataFrame, dict]:
+    """The summary table (every available rule) and the Friedman/Nemenyi result per rule."""
+    summaries, friedman = [], {}
+    for rule in grid_stats.available_rules(runs):
+        summary = grid_stats.summarise(runs, metric, rule, n_boot=n_boot)
+        friedman[rule] = grid_stats.friedman_over_splits(summary)
+        summaries.append(summary)
+    summary = pd.concat(summaries, ignore_index=True)
+    summary = summary.merge(dm, on=["split_id", "model", "penalty", "selection_rule"], how="left")
+    return summary, friedman
+
+
+def aggregate(record_paths: list[Path | str], out_dir: Path | str, metric: str = "mae",
+              n_boot: int = 2000, load=predictions_of) -> dict:
+    """Whole aggregation step; returns the meta dict also written to grid_meta.json."""
+    out_dir = Path(out_dir)
+    out_dir.mkdir(parents=True, exist_ok=True)
+    runs, skipped = collect_runs(record_paths)
+    rules = grid_stats.available_rules(runs)
+    dm = dm_tests(runs, rules, load=load)
+    summary, friedman = build_grid(runs, dm, metric, n_boot)
+    runs.to_parquet(out_dir / "grid.parquet", index=False)
+    summary.to_csv(out_dir / "grid.csv", index=False)
+    dm.to_csv(out_dir / "grid_dm.csv", index=False)
+    meta = {"metric": metric, "rules": rules, "n_records": len(record_paths), "n_runs": int(len(runs)),
+            "experiment": sorted(runs["experiment"].dropna().unique().tolist()),
+            "tracking_uris": sorted(runs["tracking_uri"].unique().tolist()),
+            "skipped": {reason: {"count": len(paths), "records": paths} for reason, paths in skipped.items()},
+            "friedman": friedman, "bootstrap_samples": n_boot}
+    (out_dir / "grid_meta.json").write_text(json.dumps(meta, indent=1, sort_keys=True, default=_json_default))
+    return meta
+
+
+def _json_default(value):
+    if isinstance(value, (np.floating, np.integer)):
+        return value.item()
+    raise TypeError(f"cannot serialise {type(value).__name__}")

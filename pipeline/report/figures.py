@@ -1,0 +1,202 @@
+"""Figures of the report, drawn with matplotlib (Agg backend, no display) and returned as Figures.
+
+Reads tables handed over by pipeline.report.html (grid summary, run table, Friedman result, shift
+table); writes nothing (`png_base64` turns a figure into an embeddable string). Config keys obeyed
+(passed in): report.figure_dpi. Every figure built from one selection rule carries
+pipeline.selection.label(rule) in its title, so target-oracle figures always read "upper bound".
+"""
+
+from __future__ import annotations
+
+import base64
+import io
+
+import matplotlib
+
+matplotlib.use("Agg")  # no display, no network: the report is built in batch jobs
+import matplotlib.pyplot as plt  # noqa: E402
+import numpy as np  # noqa: E402
+import pandas as pd  # noqa: E402
+
+from pipeline import grid_stats, selection  # noqa: E402
+
+BEST_MARK = "★"  # marks the best cell of a split in addition to its outline (never colour alone)
+plt.rcParams.update({"font.size": 9, "axes.titlesize": 10, "figure.titlesize": 11, "axes.spines.top": False,
+                     "axes.spines.right": False})
+
+
+def png_base64(fig, dpi: int = 100) -> str:
+    buffer = io.BytesIO()
+    fig.savefig(buffer, format="png", dpi=dpi, bbox_inches="tight")
+    plt.close(fig)
+    return base64.b64encode(buffer.getvalue()).decode("ascii")
+
+
+def _title(text: str, rule: str) -> str:
+    return f"{text}\nselection: {selection.label(rule)}"
+
+
+def _ordered_combos(summary: pd.DataFrame) -> list[str]:
+    """Columns ordered by model, then ERM / n/a before the penalties, so twins sit side by side."""
+    order = summary[["model", "penalty", "combo"]].drop_duplicates()
+    order = order.assign(key=order["penalty"].map(lambda p: (p not in ("erm", "na"), p)))
+    return order.sort_values(["model", "key"])["combo"].tolist()
+
+
+def grid_heatmap(summary: pd.DataFrame, rule: str):
+    """Rows source -> target, columns model x penalty; colour = gain vs ERM; numbers = mean metric."""
+    combos = _ordered_combos(summary)
+    splits = sorted(summary["split"].unique())
+    gain = summary.assign(gain=grid_stats.gain_vs_erm(summary) * 100.0)
+    values = gain.pivot_table(index="split", columns="combo", values="mean", aggfunc="first").reindex(splits)
+    colour = gain.pivot_table(index="split", columns="combo", values="gain", aggfunc="first", dropna=False)
+    colour = colour.reindex(index=splits, columns=combos)
+    best = gain[gain["best_in_split"]].groupby("split")["combo"].apply(set)
+    limit = max(1.0, float(np.nanmax(np.abs(colour.to_numpy()))) if np.isfinite(colour.to_numpy()).any() else 1.0)
+    fig, ax = plt.subplots(figsize=(max(6.0, 1.25 * len(combos) + 2.5), 0.62 * len(splits) + 2.4))
+    cmap = plt.get_cmap("RdBu").copy()
+    cmap.set_bad("#eeeeee")
+    image = ax.imshow(np.ma.masked_invalid(colour.to_numpy(np.float64)), cmap=cmap, vmin=-limit, vmax=limit,
+                      aspect="auto")
+    metric = summary["metric"].iloc[0]
+    for i, split in enumerate(splits):
+        for j, combo in enumerate(combos):
+            mean = values.at[split, combo] if combo in values.columns else np.nan
+            change = colour.iat[i, j]
+            text = "–" if not np.isfinite(mean) else f"{mean:.3g}"
+            if np.isfinite(change):
+                text += f"\n{change:+.1f}%"
+            is_best = combo in best.get(split, set())
+            if is_best:
+                text = f"{BEST_MARK} {text}"
+                ax.add_patch(plt.Rectangle((j - 0.5, i - 0.5), 1, 1, fill=False, lw=2.2, ec="black"))
+            ax.text(j, i, text, ha="center", va="center", fontsize=8, fontweight="bold" if is_best else "normal")
+    ax.set_xticks(range(len(combos)), combos, rotation=30, ha="right")
+    ax.set_yticks(range(len(splits)), splits)
+    ax.set_title(_title(f"Target {metric} by split and model+penalty ({grid_stats.direction_text(metric)}); "
+                        f"{BEST_MARK} = best in split", rule))
+    bar = fig.colorbar(image, ax=ax, fraction=0.04, pad=0.02)
+    bar.set_label("gain vs ERM twin, % (blue = better, grey = no twin)")
+    fig.tight_layout()
+    return fig
+
+
+def cd_chart(friedman: dict, rule: str):
+    """Mean ranks (1 = best) with the Nemenyi critical difference drawn from the best combination."""
+    ranks = friedman["mean_ranks"]
+    names, values = list(ranks), np.array(list(ranks.values()))
+    cd = friedman["cd"]
+    fig, ax = plt.subplots(figsize=(7.5, 0.38 * len(names) + 1.9))
+    positions = np.arange(len(names))[::-1]
+    best = values.min()
+    ax.axvspan(best, best + cd, color="#c6dbef", alpha=0.7, label=f"within CD = {cd:.2f} of the best")
+    within = values <= best + cd
+    ax.scatter(values, positions, s=40, c=np.where(within, "#08519c", "#969696"), zorder=3)
+    for name, value, y in zip(names, values, positions):
+        ax.text(value + 0.05, y + 0.18, f"{value:.2f}", fontsize=8)
+    ax.set_yticks(positions, names)
+    ax.set_xlim(0.5, len(names) + 0.5)
+    ax.set_xlabel("mean rank over splits (1 = best)")
+    ax.legend(loc="lower right", fontsize=8, frameon=False)
+    ax.set_title(_title(f"Mean ranks, Friedman p = {friedman['p_value']:.3g} "
+                        f"({friedman['n_splits']} splits x {friedman['k']} combinations)", rule))
+    fig.tight_layout()
+    return fig
+
+
+def horizon_columns(runs: pd.DataFrame, rule: str) -> list[str]:
+    prefix = f"{rule}.target_mae_h"
+    return sorted((col for col in runs.columns if col.startswith(prefix)), key=lambda c: int(c[len(prefix):]))
+
+
+def horizon_curves(runs: pd.DataFrame, rule: str):
+    """Target MAE per horizon step, averaged over seeds then splits, one line per model+penalty;
+    one panel per target city."""
+    columns = horizon_columns(runs, rule)
+    steps = [int(col.rsplit("_h", 1)[1]) for col in columns]
+    table = runs.assign(combo=[grid_stats.combo_label(m, p) for m, p in zip(runs["model"], runs["penalty"])])
+    targets = sorted(table["target"].unique())
+    cols = min(3, len(targets))
+    rows = int(np.ceil(len(targets) / cols))
+    fig, axes = plt.subplots(rows, cols, figsize=(4.2 * cols, 3.0 * rows + 0.8), squeeze=False, sharey=True)
+    for ax, target in zip(axes.ravel(), targets):
+        per_split = table[table["target"] == target].groupby(["combo", "split_id"])[columns].mean()
+        for combo, curve in per_split.groupby(level="combo"):
+            style = "--" if combo.endswith("+erm") else "-"
+            ax.plot(steps, curve.mean().to_numpy(), style, lw=1.4, label=combo)
+        ax.set_title(f"target {target}")
+        ax.set_xlabel("horizon (hours ahead)")
+        ax.grid(alpha=0.3)
+    for ax in axes.ravel()[len(targets):]:
+        ax.set_visible(False)
+    axes[0, 0].set_ylabel("MAE (target units)")
+    handles, labels = axes[0, 0].get_legend_handles_labels()
+    fig.legend(handles, labels, loc="lower center", ncol=min(5, len(labels)), fontsize=8, frameon=False)
+    fig.suptitle(_title("Target MAE by forecast horizon (dashed = ERM)", rule))
+    fig.tight_layout(rect=(0, 0.1, 1, 1))
+    return fig
+
+
+EXCEEDANCE_SCORES = ("pod", "far", "csi", "ets")
+
+
+def exceedance_bars(runs: pd.DataFrame, rule: str, threshold: str | None = None):
+    """POD, FAR, CSI, ETS of each model+penalty, averaged over seeds and splits (NaN-aware)."""
+    columns = [f"{rule}.target_{score}" for score in EXCEEDANCE_SCORES if f"{rule}.target_{score}" in runs.columns]
+    table = runs.assign(combo=[grid_stats.combo_label(m, p) for m, p in zip(runs["model"], runs["penalty"])])
+    means = table.groupby(["combo", "split_id"])[columns].mean().groupby(level="combo").mean()
+    fig, ax = plt.subplots(figsize=(max(6.5, 0.9 * len(means) + 2.5), 3.6))
+    width = 0.8 / max(1, len(columns))
+    for index, column in enumerate(columns):
+        score = column.rsplit("_", 1)[1]
+        arrow = "↓" if score == "far" else "↑"
+        ax.bar(np.arange(len(means)) + index * width, means[column].to_numpy(), width,
+               label=f"{score.upper()} {arrow}", hatch=["", "//", "..", "xx"][index % 4], edgecolor="white")
+    ax.set_xticks(np.arange(len(means)) + width * (len(columns) - 1) / 2, means.index, rotation=30, ha="right")
+    ax.set_ylim(0, 1)
+    ax.legend(ncol=len(columns), fontsize=8, frameon=False, loc="upper right")
+    event = f" (event: target > {threshold})" if threshold else ""
+    ax.set_title(_title(f"Exceedance scores{event}; ↑ higher is better, ↓ lower is better", rule))
+    fig.tight_layout()
+    return fig
+
+
+def selection_comparison(summary_all: pd.DataFrame):
+    """Mean metric of each model+penalty under every logged selection rule (oracle = upper bound)."""
+    metric = summary_all["metric"].iloc[0]
+    per_rule = summary_all.groupby(["combo", "selection_rule"])["mean"].mean().unstack("selection_rule")
+    rules = [rule for rule in grid_stats.RULES if rule in per_rule.columns]
+    fig, ax = plt.subplots(figsize=(max(6.5, 0.9 * len(per_rule) + 2.5), 3.8))
+    width = 0.8 / max(1, len(rules))
+    for index, rule in enumerate(rules):
+        ax.bar(np.arange(len(per_rule)) + index * width, per_rule[rule].to_numpy(), width,
+               label=selection.label(rule), hatch="//" if selection.uses_target_data(rule) else "",
+               edgecolor="white")
+    ax.set_xticks(np.arange(len(per_rule)) + width * (len(rules) - 1) / 2, per_rule.index, rotation=30, ha="right")
+    ax.set_ylabel(f"mean {metric} over splits")
+    ax.legend(fontsize=8, frameon=False)
+    ax.set_title(f"Target {metric} under each selection rule; selection: "
+                 f"{', '.join(selection.label(rule) for rule in rules)}")
+    fig.tight_layout()
+    return fig
+
+
+def shift_figure(shift: pd.DataFrame, points: pd.DataFrame, rule: str, rho: float, p_value: float):
+    """Left: energy distance vs geographic distance per city pair. Right: split error vs its shift."""
+    fig, (left, right) = plt.subplots(1, 2, figsize=(10, 3.8))
+    left.scatter(shift["geo_km"], shift["energy_distance"], color="#3182bd")
+    for row in shift.itertuples():
+        left.annotate(f"{row.city_a}–{row.city_b}", (row.geo_km, row.energy_distance), fontsize=7,
+                      xytext=(3, 3), textcoords="offset points")
+    left.set_xlabel("distance between city centroids (km)")
+    left.set_ylabel("energy distance (standardised features)")
+    left.set_title("Feature shift vs geographic distance")
+    if not points.empty:
+        right.scatter(points["shift"], points["mean"], color="#e6550d")
+        for row in points.itertuples():
+            right.annotate(row.split, (row.shift, row.mean), fontsize=7, xytext=(3, 3), textcoords="offset points")
+    right.set_xlabel("mean source–target energy distance")
+    right.set_ylabel(f"target {points['metric'].iloc[0] if not points.empty else 'error'} (best combination)")
+    right.set_title(_title(f"Target error vs shift (Spearman ρ = {rho:.2f}, p = {p_value:.2g})", rule))
+    fig.tight_layout()
+    return fig

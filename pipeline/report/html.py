@@ -1,0 +1,223 @@
+"""Assemble results/report.html: one self-contained page, figures embedded as base64 PNG, no network.
+
+Reads (paths handed over by the `render_report` rule or a caller): results/grid.parquet, grid.csv,
+grid_meta.json, results/shift.csv (optional), data/qc/<city>.json and results/splits/<split_id>.json.
+Writes the HTML file. Config keys obeyed (the report slice): report.title, report.selection,
+report.figure_dpi, report.top_rows (rows of the summary table shown per split, best first).
+Every figure and table that shows numbers of one selection rule names it with
+pipeline.selection.label, so anything from target-oracle reads "upper bound".
+"""
+
+from __future__ import annotations
+
+import datetime as dt
+import html
+import json
+from pathlib import Path
+
+import numpy as np
+import pandas as pd
+
+from pipeline import grid_stats, selection
+from pipeline.commands.demo import CAUTION  # one wording of the caution for the CLI and the report
+from pipeline.report import figures, shift_data
+from pipeline.report.style import CSS
+
+E = html.escape
+
+
+def _figure(fig, dpi: int, caption: str, rule: str | None) -> str:
+    data = figures.png_base64(fig, dpi)
+    attr = f' data-selection="{E(rule)}"' if rule else ""
+    return (f'<figure{attr}><img alt="{E(caption)}" src="data:image/png;base64,{data}">'
+            f"<figcaption>{E(caption)}</figcaption></figure>")
+
+
+def _table(frame: pd.DataFrame, caption: str, rule: str | None = None, classes: str = "") -> str:
+    attr = f' data-selection="{E(rule)}"' if rule else ""
+    head = "".join(f"<th>{E(str(col))}</th>" for col in frame.columns)
+    body = "".join("<tr>" + "".join(f"<td>{E(_fmt(value))}</td>" for value in row) + "</tr>"
+                   for row in frame.itertuples(index=False))
+    return (f'<table class="{classes}"{attr}><caption>{E(caption)}</caption><thead><tr>{head}</tr></thead>'
+            f"<tbody>{body}</tbody></table>")
+
+
+def _fmt(value) -> str:
+    if isinstance(value, (float, np.floating)):
+        if not np.isfinite(value):
+            return "–"
+        return f"{value:.4g}"
+    return str(value)
+
+
+def _rule_caption(text: str, rule: str) -> str:
+    return f"{text} — selection: {selection.label(rule)}"
+
+
+def setup_section(meta: dict, runs: pd.DataFrame, qc: dict[str, dict], splits: list[dict]) -> str:
+    skipped = "; ".join(f"{info['count']} {reason}" for reason, info in meta.get("skipped", {}).items()) or "none"
+    facts = [("experiment", ", ".join(meta.get("experiment", []))),
+             ("tracking store", ", ".join(meta.get("tracking_uris", []))),
+             ("runs in the grid", f"{meta['n_runs']} of {meta['n_records']} run records (skipped: {skipped})"),
+             ("metric", meta["metric"]),
+             ("selection rules logged", ", ".join(selection.label(rule) for rule in meta["rules"])),
+             ("models", ", ".join(sorted(runs["model"].unique()))),
+             ("penalties", ", ".join(grid_stats.penalty_display(p) for p in sorted(runs["penalty"].unique()))),
+             ("seeds", ", ".join(map(str, sorted(runs["seed"].unique()))))]
+    items = "".join(f"<dt>{E(k)}</dt><dd>{E(v)}</dd>" for k, v in facts)
+    split_rows = pd.DataFrame([{"split": grid_stats.split_label(s["sources"], s["target"]), "scheme": s.get("scheme"),
+                                "environment": s.get("environment"),
+                                "train": " / ".join(s.get("time_blocks", {}).get("train", [])),
+                                "test": " / ".join(s.get("time_blocks", {}).get("test", [])),
+                                "split_id": s["split_id"]} for s in splits])
+    qc_rows = pd.DataFrame([{"city": city, "stations": len(report.get("gaps", {})),
+                             "rows read": report.get("rows_read"), "rows kept": report.get("rows_kept"),
+                             "dropped": ", ".join(f"{reason} {n}" for reason, n in
+                                                  sorted(report.get("rows_dropped", {}).items()) if n) or "none"}
+                            for city, report in sorted(qc.items())])
+    parts = [f'<section id="setup"><h2>Setup</h2><dl class="facts">{items}</dl>']
+    if not split_rows.empty:
+        parts.append(_table(split_rows, "Splits (time blocks: UTC, start inclusive / end exclusive)"))
+    if not qc_rows.empty:
+        parts.append(_table(qc_rows, "Data coverage and quality control per city (from data/qc/*.json)"))
+    return "".join(parts) + "</section>"
+
+
+def summary_table(summary: pd.DataFrame, top_rows: int) -> pd.DataFrame:
+    table = summary.sort_values(["split", "rank"]).groupby("split", sort=True).head(top_rows)
+    wtl = [f"{w:.0f}/{t:.0f}/{l:.0f}" if np.isfinite(w) else "–"
+           for w, t, l in zip(table["vs_erm_wins"], table["vs_erm_ties"], table["vs_erm_losses"])]
+    dm = [("–" if not np.isfinite(p) else f"{p:.3g}{'†' if fb is True else ''}")
+          for p, fb in zip(table.get("dm_p", pd.Series(np.nan, index=table.index)),
+                           table.get("dm_fallback", pd.Series(False, index=table.index)))]
+    return pd.DataFrame({"split": table["split"], "best": np.where(table["best_in_split"], figures.BEST_MARK, ""),
+                         "model+penalty": table["combo"], "mean": table["mean"], "std": table["std"],
+                         "n seeds": table["n_seeds"],
+                         "95% CI": [f"[{lo:.3g}, {hi:.3g}]" for lo, hi in zip(table["ci_low"], table["ci_high"])],
+                         "rank": table["rank"], "mean rank": table["mean_rank"],
+                         "vs ERM": [f"{c * 100:+.1f}%" if np.isfinite(c) else "–" for c in table["vs_erm_change"]],
+                         "W/T/L vs ERM": wtl, "DM p": dm})
+
+
+def grid_section(summary_all: pd.DataFrame, meta: dict, rule: str, dpi: int, top_rows: int) -> str:
+    parts = ['<section id="grid"><h2>The grid</h2>',
+             "<p>Cells: mean of the metric over seeds; colour: relative change against the ERM run of the same "
+             f"split and model (blue = better); {figures.BEST_MARK} and a frame mark the best cell of each split. "
+             "DM p: Diebold-Mariano test with the Harvey-Leybourne-Newbold correction on paired per-window "
+             "absolute errors against the ERM twin (two-sided; † = variance estimate not positive, h = 1 "
+             "fallback).</p>"]
+    ordered = [rule] + [r for r in meta["rules"] if r != rule]
+    for each in ordered:
+        summary = summary_all[summary_all["selection_rule"] == each]
+        if summary.empty:
+            continue
+        parts.append(f"<h3>{E(selection.label(each))}</h3>")
+        parts.append(_figure(figures.grid_heatmap(summary, each), dpi,
+                             _rule_caption(f"Grid heatmap of target {meta['metric']}", each), each))
+        parts.append(_table(summary_table(summary, top_rows),
+                            _rule_caption(f"Summary per split (best {top_rows} per split)", each), each, "grid"))
+    return "".join(parts) + "</section>"
+
+
+def ranks_section(summary_all: pd.DataFrame, meta: dict, rule: str, dpi: int) -> str:
+    parts = ['<section id="ranks"><h2>Ranks and critical difference</h2>']
+    for each in meta["rules"]:
+        result = meta["friedman"].get(each, {})
+        if not result.get("available"):
+            parts.append(f'<p data-selection="{E(each)}">Friedman test not available under '
+                         f"{E(selection.label(each))}: {E(result.get('reason', 'no result'))}.</p>")
+            continue
+        if each == rule or len(meta["rules"]) == 1:
+            parts.append(_figure(figures.cd_chart(result, each), dpi,
+                                 _rule_caption("Mean ranks and Nemenyi critical difference (alpha 0.05)", each), each))
+        dropped = ", ".join(result["dropped_combos"]) or "none"
+        parts.append(f'<p data-selection="{E(each)}"><strong>{E(selection.label(each))}</strong>: Friedman '
+                     f"chi² = {result['chi2']:.3g}, p = {result['p_value']:.3g} over {result['n_splits']} splits "
+                     f"and {result['k']} combinations; Nemenyi CD = {result['cd']:.3g}. Combinations left out "
+                     f"(incomplete blocks): {E(dropped)}.</p>")
+    parts.append(f'<p class="note">{E(grid_stats.MULTIPLE_COMPARISON_CAVEAT)}</p>')
+    if len(meta["rules"]) > 1:
+        parts.append(_figure(figures.selection_comparison(summary_all), dpi,
+                             "Target metric under each selection rule (target-oracle: upper bound, selected "
+                             "with target data)", "target-oracle" if "target-oracle" in meta["rules"] else None))
+    return "".join(parts) + "</section>"
+
+
+def curves_section(runs: pd.DataFrame, rule: str, dpi: int, threshold: str | None) -> str:
+    parts = ['<section id="horizon"><h2>Error by horizon and exceedance scores</h2>']
+    if figures.horizon_columns(runs, rule):
+        parts.append(_figure(figures.horizon_curves(runs, rule), dpi,
+                             _rule_caption("Target MAE per forecast hour", rule), rule))
+    if any(col.startswith(f"{rule}.target_csi") for col in runs.columns):
+        parts.append(_figure(figures.exceedance_bars(runs, rule, threshold), dpi,
+                             _rule_caption("Exceedance scores (POD, FAR, CSI, ETS)", rule), rule))
+    return "".join(parts) + "</section>"
+
+
+def shift_section(shift: pd.DataFrame | None, summary: pd.DataFrame, rule: str, dpi: int) -> str:
+    parts = ['<section id="shift"><h2>Shift diagnostics</h2>']
+    if shift is None or shift.empty:
+        return "".join(parts) + "<p>No shift table (fewer than two cities).</p></section>"
+    points, rho, p_value = shift_data.error_vs_shift(shift, summary)
+    parts.append("<p>Energy distance and mean per-variable Wasserstein-1 distance between cities on features "
+                 "standardised over all cities, next to the distance between city centroids. Right panel: each "
+                 "split's target error (mean over model+penalty combinations) against the mean shift between "
+                 f"its sources and its target; Spearman rank correlation over {len(points)} splits"
+                 f" ({points.attrs.get('excluded', 0)} within-city splits left out).</p>")
+    parts.append(_figure(figures.shift_figure(shift, points, rule, rho, p_value), dpi,
+                         _rule_caption("Shift diagnostics", rule), rule))
+    parts.append(_table(shift[["city_a", "city_b", "energy_distance", "mean_wasserstein", "geo_km",
+                               "n_rows_a", "n_rows_b"]], "Pairwise city shift (standardised features)"))
+    return "".join(parts) + "</section>"
+
+
+def provenance_section(runs: pd.DataFrame, meta: dict, rule: str) -> str:
+    column = grid_stats.metric_column(runs.columns, meta["metric"], rule)
+    table = pd.DataFrame({"split": [grid_stats.split_label(s, t) for s, t in zip(runs["sources"], runs["target"])],
+                          "model": runs["model"], "penalty": runs["penalty"].map(grid_stats.penalty_display),
+                          "seed": runs["seed"], column: runs[column], "run_id": runs["run_id"],
+                          "code": runs.get("tag.code_digest", ""), "commit": runs.get("tag.git.commit", "")})
+    table["commit"] = table["commit"].astype(str).str[:10]
+    return ('<section id="provenance"><h2>Provenance</h2><p>Every number above is a mean over the runs below; '
+            "<code>shiftgrid show RUN_ID</code> prints everything recorded about one run and "
+            "<code>shiftgrid reproduce RUN_ID</code> re-trains it.</p>"
+            + _table(table, _rule_caption("Runs in the grid", rule), rule, "provenance") + "</section>")
+
+
+def load_inputs(grid_dir: Path, qc_paths, split_paths, shift_path):
+    runs = pd.read_parquet(grid_dir / "grid.parquet")
+    summary = pd.read_csv(grid_dir / "grid.csv", keep_default_na=True)
+    meta = json.loads((grid_dir / "grid_meta.json").read_text())
+    qc = {Path(p).stem: json.loads(Path(p).read_text()) for p in qc_paths}
+    splits = [json.loads(Path(p).read_text()) for p in split_paths]
+    shift = pd.read_csv(shift_path) if shift_path and Path(shift_path).exists() else None
+    return runs, summary, meta, qc, splits, shift
+
+
+def render_report(grid_dir: Path | str, out_path: Path | str, report_cfg: dict, qc_paths=(), split_paths=(),
+                  shift_path: Path | str | None = None) -> str:
+    """Build the page and write it to `out_path`; returns the HTML text."""
+    runs, summary_all, meta, qc, splits, shift = load_inputs(Path(grid_dir), qc_paths, split_paths, shift_path)
+    rule = report_cfg.get("selection", "source-val")
+    rule = rule if rule in meta["rules"] else meta["rules"][0]
+    dpi, top_rows = int(report_cfg.get("figure_dpi", 100)), int(report_cfg.get("top_rows", 12))
+    threshold = runs.get("param.metrics.exceedance_threshold")
+    threshold = str(threshold.dropna().iloc[0]) if threshold is not None and threshold.notna().any() else None
+    summary = summary_all[summary_all["selection_rule"] == rule]
+    title = report_cfg.get("title", "shiftgrid comparison")
+    body = [f"<header><h1>{E(title)}</h1><p class='meta'>metric: {E(meta['metric'])} · headline selection: "
+            f"{E(selection.label(rule))} · generated {dt.datetime.now(dt.timezone.utc):%Y-%m-%d %H:%M} UTC</p>"
+            f'<p class="caution" role="note">{E(CAUTION)}</p></header>',
+            '<nav><a href="#setup">Setup</a><a href="#grid">Grid</a><a href="#ranks">Ranks</a>'
+            '<a href="#horizon">Horizons</a><a href="#shift">Shift</a><a href="#provenance">Provenance</a></nav>',
+            setup_section(meta, runs, qc, splits), grid_section(summary_all, meta, rule, dpi, top_rows),
+            ranks_section(summary_all, meta, rule, dpi), curves_section(runs, rule, dpi, threshold),
+            shift_section(shift, summary, rule, dpi), provenance_section(runs, meta, rule),
+            f'<footer><p class="caution">{E(CAUTION)}</p></footer>']
+    page = (f'<!DOCTYPE html><html lang="en"><head><meta charset="utf-8"><title>{E(title)}</title>'
+            f'<meta name="viewport" content="width=device-width, initial-scale=1"><style>{CSS}</style></head>'
+            f"<body><main>{''.join(body)}</main></body></html>")
+    out_path = Path(out_path)
+    out_path.parent.mkdir(parents=True, exist_ok=True)
+    out_path.write_text(page, encoding="utf-8")
+    return page

@@ -1,0 +1,125 @@
+"""A hand-made grid for the aggregation, report and grid-command tests: a temporary MLflow store with a
+handful of runs whose metrics are chosen so ranks, means and tallies have known answers.
+
+Three leave-one-city-out splits over invented cities (vell, orra, quist), model `lin` with erm and irm
+(seeds 0 and 1) and the `persistence` baseline (penalty na, seed 0): 15 runs.
+"""
+
+from __future__ import annotations
+
+import json
+from pathlib import Path
+
+import numpy as np
+import pandas as pd
+
+SPLITS = {  # split_id -> (sources, target)
+    "loco-orra+quist-to-vell-aaaaaa": (["orra", "quist"], "vell"),
+    "loco-quist+vell-to-orra-bbbbbb": (["quist", "vell"], "orra"),
+    "loco-orra+vell-to-quist-cccccc": (["orra", "vell"], "quist"),
+}
+SPLIT_IDS = list(SPLITS)
+# source-val target_mae per split x (model, penalty) -> per seed; target-oracle is 0.1 lower everywhere
+TARGET_MAE = {
+    SPLIT_IDS[0]: {("lin", "erm"): [1.0, 1.2], ("lin", "irm"): [0.9, 1.1], ("persistence", "na"): [1.5]},
+    SPLIT_IDS[1]: {("lin", "erm"): [2.0, 2.0], ("lin", "irm"): [2.2, 2.4], ("persistence", "na"): [1.8]},
+    SPLIT_IDS[2]: {("lin", "erm"): [1.0, 1.0], ("lin", "irm"): [0.5, 0.7], ("persistence", "na"): [3.0]},
+}
+HORIZON = 3
+RULES = ("source-val", "target-oracle")
+CITIES = ("orra", "quist", "vell")
+
+
+def metrics_for(mae: float) -> dict[str, float]:
+    metrics = {}
+    for rule, shift in (("source-val", 0.0), ("target-oracle", -0.1)):
+        value = mae + shift
+        metrics.update({f"{rule}.target_mae": value, f"{rule}.target_rmse": value * 1.3,
+                        f"{rule}.target_csi": 1.0 / (1.0 + value), f"{rule}.target_pod": 0.8 / (1.0 + value),
+                        f"{rule}.target_far": value / 10, f"{rule}.target_ets": 0.5 / (1.0 + value),
+                        f"{rule}.source_mae": value / 2})
+        metrics.update({f"{rule}.target_mae_h{h:02d}": value * (0.8 + 0.1 * h) for h in range(1, HORIZON + 1)})
+    metrics.update({key.split(".", 1)[1]: v for key, v in metrics.items() if key.startswith("source-val.")})
+    metrics["fit_seconds"] = 1.0
+    return metrics
+
+
+def predictions(mae: float, seed: int) -> pd.DataFrame:
+    """Windows of 2 stations x 40 hourly origins whose absolute error averages about `mae`."""
+    rng = np.random.default_rng(seed + int(mae * 1000))
+    origins = pd.date_range("2024-03-01", periods=40, freq="h", tz="UTC")
+    frames = []
+    for rule, shift in (("source-val", 0.0), ("target-oracle", -0.1)):
+        for station in ("s1", "s2"):
+            frame = pd.DataFrame({"station_id": station, "origin": origins, "selection": rule})
+            for h in range(1, HORIZON + 1):
+                y = rng.normal(20, 5, len(origins))
+                frame[f"y_h{h:02d}"] = y.astype("float32")
+                error = (mae + shift) * rng.choice([-1.0, 1.0], len(origins)) * rng.uniform(0.5, 1.5, len(origins))
+                frame[f"p_h{h:02d}"] = (y + error).astype("float32")
+            frames.append(frame)
+    return pd.concat(frames, ignore_index=True)
+
+
+def build_grid_store(root: Path) -> tuple[list[Path], str]:
+    """Log every run to a fresh SQLite store under `root` and write the run records; returns (records, uri)."""
+    from pipeline import tracking
+
+    results = root / "results"
+    results.mkdir(parents=True, exist_ok=True)
+    uri = tracking.resolve_tracking_uri(None, results)
+    experiment_id = tracking.setup_store(uri, "gridtest", tracking.artifact_location(results))
+    client = tracking.client_for(uri)
+    records = []
+    for split_id, cells in TARGET_MAE.items():
+        sources, target = SPLITS[split_id]
+        for (model, penalty), values in cells.items():
+            for seed, mae in enumerate(values):
+                work = root / "work" / split_id / model / penalty / str(seed)
+                work.mkdir(parents=True)
+                predictions(mae, seed).to_parquet(work / "target_predictions.parquet", index=False)
+                metrics = metrics_for(mae)
+                tags = {"split_id": split_id, "model": model, "penalty": penalty, "seed": str(seed),
+                        "sources": "+".join(sources), "target": target, "code_digest": "c0ffee",
+                        "git.commit": "0123456789abcdef", "selection_label": "source-val"}
+                run_id = tracking.log_run(client, experiment_id, run_name=f"{split_id}/{model}/{penalty}/{seed}",
+                                          params={"metrics.exceedance_threshold": "35.0"}, metrics=metrics,
+                                          curves={}, tags=tags,
+                                          artifacts={"predictions": work / "target_predictions.parquet"})
+                record = {"run_id": run_id, "experiment": "gridtest", "experiment_id": experiment_id,
+                          "tracking_uri": uri, "split_id": split_id, "sources": sources, "target": target,
+                          "model": model, "family": "linear" if model == "lin" else "persistence",
+                          "penalty": penalty, "seed": seed, "selection_rule": "source-val",
+                          "metrics": {k: metrics[k] for k in ("target_mae", "target_csi", "source_mae")},
+                          "supersedes": []}
+                path = results / "runs" / split_id / model / penalty / f"{seed}.json"
+                path.parent.mkdir(parents=True, exist_ok=True)
+                path.write_text(json.dumps(record))
+                records.append(path)
+    return records, uri
+
+
+def write_side_inputs(root: Path) -> tuple[list[Path], list[Path]]:
+    """QC reports and split records as ingestion and build_split would write them (only what the report reads)."""
+    qc_paths, split_paths = [], []
+    for city in CITIES:
+        path = root / "data" / "qc" / f"{city}.json"
+        path.parent.mkdir(parents=True, exist_ok=True)
+        path.write_text(json.dumps({"rows_read": 1000, "rows_kept": 990, "rows_dropped": {"duplicate": 10},
+                                    "gaps": {f"{city}_01": {}, f"{city}_02": {}}}))
+        qc_paths.append(path)
+    for split_id, (sources, target) in SPLITS.items():
+        path = root / "results" / "splits" / f"{split_id}.json"
+        path.parent.mkdir(parents=True, exist_ok=True)
+        path.write_text(json.dumps({"split_id": split_id, "scheme": "loco", "sources": sources, "target": target,
+                                    "environment": "city", "time_blocks": {"train": ["2024-01-01", "2024-02-01"],
+                                                                           "test": ["2024-03-01", "2024-03-03"]}}))
+        split_paths.append(path)
+    return qc_paths, split_paths
+
+
+def shift_table() -> pd.DataFrame:
+    return pd.DataFrame({"city_a": ["orra", "orra", "quist"], "city_b": ["quist", "vell", "vell"],
+                         "energy_distance": [0.2, 0.5, 0.9], "mean_wasserstein": [0.1, 0.3, 0.4],
+                         "geo_km": [30.0, 55.0, 70.0], "n_rows_a": [100, 100, 100], "n_rows_b": [100, 100, 100],
+                         "variables": ["pm25,temp_c"] * 3})
