@@ -1,0 +1,150 @@
+"""Aggregation on a hand-made MLflow store with known answers (tests/grid_fixture.py)."""
+
+import json
+
+import numpy as np
+import pandas as pd
+import pytest
+from scipy import stats as sps
+
+from grid_fixture import SPLIT_IDS, build_grid_store
+from pipeline import grid_stats, tracking
+from pipeline.aggregate import aggregate, collect_runs
+from pipeline.errors import InputError
+from pipeline.stats import diebold_mariano
+
+
+@pytest.fixture(scope="module")
+def grid(tmp_path_factory):
+    root = tmp_path_factory.mktemp("grid")
+    records, uri = build_grid_store(root)
+    meta = aggregate(records, root / "results", metric="mae", n_boot=500)
+    summary = pd.read_csv(root / "results" / "grid.csv")
+    return {"root": root, "records": records, "uri": uri, "meta": meta, "summary": summary,
+            "runs": pd.read_parquet(root / "results" / "grid.parquet")}
+
+
+def cell(summary, split_id, combo, rule="source-val"):
+    rows = summary[(summary.split_id == split_id) & (summary.combo == combo) & (summary.selection_rule == rule)]
+    assert len(rows) == 1
+    return rows.iloc[0]
+
+
+def test_one_row_per_run_with_metrics_and_tags(grid):
+    runs = grid["runs"]
+    assert len(runs) == 15 and runs["run_id"].is_unique
+    assert {"source-val.target_mae", "target-oracle.target_mae_h03", "tag.code_digest", "param.metrics."
+            "exceedance_threshold"} <= set(runs.columns)
+    assert grid["meta"]["rules"] == ["source-val", "target-oracle"]
+
+
+def test_means_spread_and_ranks_have_the_known_answers(grid):
+    summary = grid["summary"]
+    erm = cell(summary, SPLIT_IDS[0], "lin+erm")
+    assert erm["mean"] == pytest.approx(1.1) and erm["std"] == pytest.approx(np.std([1.0, 1.2], ddof=1))
+    assert erm["n_seeds"] == 2 and erm["ci_low"] >= 1.0 - 1e-12 and erm["ci_high"] <= 1.2 + 1e-12
+    assert cell(summary, SPLIT_IDS[0], "persistence+n/a")["n_seeds"] == 1
+    # ranks inside each split, lower MAE = rank 1
+    assert [cell(summary, SPLIT_IDS[0], c)["rank"] for c in ("lin+irm", "lin+erm", "persistence+n/a")] == [1, 2, 3]
+    assert [cell(summary, SPLIT_IDS[1], c)["rank"] for c in ("persistence+n/a", "lin+erm", "lin+irm")] == [1, 2, 3]
+    assert cell(summary, SPLIT_IDS[2], "lin+irm")["mean_rank"] == pytest.approx(5 / 3)
+    assert cell(summary, SPLIT_IDS[2], "persistence+n/a")["mean_rank"] == pytest.approx(7 / 3)
+    # the oracle is 0.1 lower everywhere and labelled as an upper bound
+    oracle = cell(summary, SPLIT_IDS[0], "lin+erm", "target-oracle")
+    assert oracle["mean"] == pytest.approx(1.0) and "upper bound" in oracle["selection_label"]
+
+
+def test_penalty_against_erm_twin(grid):
+    summary = grid["summary"]
+    changes = [cell(summary, split, "lin+irm")["vs_erm_change"] for split in SPLIT_IDS]
+    assert changes == pytest.approx([(1.0 - 1.1) / 1.1, (2.3 - 2.0) / 2.0, (0.6 - 1.0) / 1.0])
+    irm = cell(summary, SPLIT_IDS[0], "lin+irm")
+    assert (irm["vs_erm_wins"], irm["vs_erm_ties"], irm["vs_erm_losses"]) == (2, 0, 1)
+    assert np.isnan(cell(summary, SPLIT_IDS[0], "lin+erm")["vs_erm_change"])
+
+
+def test_diebold_mariano_recomputed_from_the_artifacts(grid):
+    runs = grid["runs"]
+
+    def losses(model, penalty):
+        frames = []
+        for row in runs[(runs.split_id == SPLIT_IDS[2]) & (runs.model == model) & (runs.penalty == penalty)].itertuples():
+            frame = pd.read_parquet(f"{row.artifact_uri[len('file://'):]}/predictions/target_predictions.parquet")
+            frame = frame[frame.selection == "source-val"]
+            errors = np.mean([np.abs(frame[f"y_h0{h}"] - frame[f"p_h0{h}"]) for h in (1, 2, 3)], axis=0)
+            frames.append(pd.Series(errors, index=[frame.station_id, frame.origin]))
+        return pd.concat(frames, axis=1).mean(axis=1)
+
+    d = (losses("lin", "irm") - losses("lin", "erm")).groupby(level=1).mean().sort_index()
+    expected = diebold_mariano(d.to_numpy(), 3)
+    dm = pd.read_csv(grid["root"] / "results" / "grid_dm.csv")
+    row = dm[(dm.split_id == SPLIT_IDS[2]) & (dm.selection_rule == "source-val")].iloc[0]
+    assert row["dm_n"] == 40 and row["dm_h"] == 3
+    assert row["dm_hln"] == pytest.approx(expected.hln_statistic) and row["dm_p"] == pytest.approx(expected.p_value)
+    assert row["dm_hln"] < 0  # irm's errors are built smaller on this split
+    assert cell(grid["summary"], SPLIT_IDS[2], "lin+irm")["dm_p"] == pytest.approx(expected.p_value)
+
+
+def test_friedman_and_nemenyi_over_splits(grid):
+    result = grid["meta"]["friedman"]["source-val"]
+    table = pd.DataFrame({split: {combo: mean for combo, mean in grid["summary"].query(
+        "split_id == @split and selection_rule == 'source-val'")[["combo", "mean"]].itertuples(index=False)}
+        for split in SPLIT_IDS}).T
+    reference = sps.friedmanchisquare(*[table[c] for c in table.columns])  # scipy as the outside reference
+    assert result["chi2"] == pytest.approx(reference.statistic) and result["chi2"] == pytest.approx(2 / 3)
+    assert result["p_value"] == pytest.approx(reference.pvalue)
+    # Demsar (2006) Table 5: q_0.05 = 2.343 for k = 3; CD = q sqrt(k(k+1)/(6N)), N = 3
+    assert result["cd"] == pytest.approx(2.343 * np.sqrt(3 * 4 / 18), abs=2e-3)
+    assert "not corrected for multiple comparisons" in result["caveat"].lower()
+
+
+def test_higher_is_better_metric_ranks_the_largest_first(grid):
+    summary = grid_stats.summarise(grid["runs"], "csi", "source-val", n_boot=50)
+    best = summary[summary.split_id == SPLIT_IDS[0]].sort_values("rank").iloc[0]
+    assert best["combo"] == "lin+irm" and best["direction"] == "higher is better"
+    assert summary.loc[summary["combo"] == "lin+irm", "vs_erm_wins"].iloc[0] == 2
+
+
+def test_unknown_metric_names_what_was_logged(grid):
+    with pytest.raises(InputError, match="available: .*target_mae"):
+        grid_stats.summarise(grid["runs"], "nonsense", "source-val")
+
+
+def test_missing_mlflow_run_is_a_clear_error(grid, tmp_path):
+    record = json.loads(grid["records"][0].read_text())
+    record["run_id"] = "0" * 32
+    bad = tmp_path / "0.json"
+    bad.write_text(json.dumps(record))
+    with pytest.raises(InputError, match=rf"{bad}.*MLflow run 0{{32}} not found"):
+        collect_runs([grid["records"][1], bad])
+
+
+def test_metric_mismatch_is_an_error_naming_the_run(grid, tmp_path):
+    record = json.loads(grid["records"][0].read_text())
+    record["metrics"]["target_mae"] += 0.5
+    bad = tmp_path / "0.json"
+    bad.write_text(json.dumps(record))
+    with pytest.raises(InputError, match=rf"{bad}: metrics.target_mae: MLflow run {record['run_id']}"):
+        collect_runs([bad])
+
+
+def test_missing_store_is_an_error_not_a_new_store(grid, tmp_path):
+    record = json.loads(grid["records"][0].read_text())
+    record["tracking_uri"] = f"sqlite:///{tmp_path}/absent.db"
+    bad = tmp_path / "0.json"
+    bad.write_text(json.dumps(record))
+    with pytest.raises(InputError, match="does not exist"):
+        collect_runs([bad])
+    assert not (tmp_path / "absent.db").exists()
+
+
+def test_superseded_runs_are_skipped_and_counted(grid):
+    client = tracking.client_for(grid["uri"])
+    run_id = json.loads(grid["records"][0].read_text())["run_id"]
+    client.set_tag(run_id, tracking.SUPERSEDED_TAG, "newer")
+    try:
+        runs, skipped = collect_runs(grid["records"])
+    finally:
+        client.delete_tag(run_id, tracking.SUPERSEDED_TAG)
+    assert len(runs) == 14 and run_id not in set(runs["run_id"])
+    assert skipped == {"superseded": [str(grid["records"][0])]}
