@@ -16,7 +16,7 @@ import re
 import numpy as np
 import pandas as pd
 
-_OFFSET_SUFFIX = re.compile(r"(Z|[+-]\d{2}:?\d{2})$")
+_OFFSET_SUFFIX = re.compile(r"(?:Z|[+-]\d{2}:?\d{2})$")
 
 
 def parse_text(text: pd.Series, time_spec: dict) -> pd.Series:
