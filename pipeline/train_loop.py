@@ -12,7 +12,9 @@ What it does, in order:
    environment, asks the penalty for the loss, clips the gradient norm and takes one Adam step;
 3. every `eval_every` steps (and at the last step) computes the MSE on every validation set, overall and
    per environment, stores a snapshot of the weights and a history entry, and stops early when
-   `val/source/all` has not improved for `patience` evaluations.
+   `val/source/all` has not improved for `patience` evaluations;
+4. a non-finite loss stops the fit (stop_reason "non_finite_loss"); the state at that step is still
+   evaluated and snapshotted, so every fit leaves at least one snapshot.
 """
 
 from __future__ import annotations
@@ -231,6 +233,13 @@ def train_network(build_network, train: WindowSetLike, val: dict[str, WindowSetL
                         if evals_without_gain >= cfg.patience:
                             stop_reason = "early_stopping"
                             break
+
+        if step not in snapshots:  # stopped on a non-finite loss between evaluations: keep the state
+            entry = {"step": step, "penalty_weight": penalty.effective_weight(step)}
+            entry.update({k: float(np.mean(v)) for k, v in since_eval.items()})
+            entry.update(evaluate(network, val))
+            history.append(entry)
+            snapshots[step] = copy_state(network)
 
     result = TrainResult(history=history, snapshots=snapshots, best_step=best_step, final_step=step,
                          stop_reason=stop_reason, fit_seconds=time.perf_counter() - started,

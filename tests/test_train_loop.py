@@ -117,6 +117,18 @@ def test_early_stopping_on_a_plateau():
     assert sorted(result.snapshots) == [5, 10, 15, 20]
 
 
+class Exploding(ConstantForecast):
+    def forward(self, X):
+        return super().forward(X) + float("inf")
+
+
+def test_a_non_finite_loss_stops_the_fit_and_still_leaves_a_snapshot():
+    _, result = train_network(Exploding, make_windows(), val={"source": make_windows(seed=1)},
+                              trainer=TrainerConfig(max_steps=50, eval_every=5))
+    assert result.stop_reason == "non_finite_loss" and result.final_step == 0
+    assert sorted(result.snapshots) == [0] and [e["step"] for e in result.history] == [0]
+
+
 def test_no_early_stopping_without_a_source_set():
     _, result = train_network(ConstantForecast, make_windows(), val={"target": make_windows(seed=1)},
                               trainer=TrainerConfig(max_steps=30, eval_every=5, patience=1))
