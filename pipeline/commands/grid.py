@@ -80,20 +80,21 @@ def format_table(summary: pd.DataFrame) -> str:
     """Fixed-width text, one block per split, lines under 100 characters."""
     metric, rule = summary["metric"].iloc[0], summary["selection_rule"].iloc[0]
     lines = [f"metric: {metric} ({grid_stats.direction_text(metric)}); selection: {selection.label(rule)}",
-             f"{BEST} = best in split; vs ERM = relative change of the mean against the ERM twin; "
-             "W/T/L over splits; DM p: Diebold-Mariano (HLN), + = h=1 fallback"]
-    header = f"  {'':1} {'model':<16} {'penalty':<9} {'mean':>9} {'std':>8} {'n':>2} {'95% CI':>19} " \
+             f"{BEST} = best in split; n = seeds; mrank = mean rank over splits",
+             "vs ERM = change of the mean against the ERM twin; W/T/L over splits;",
+             "DM p = Diebold-Mariano test with HLN correction against the ERM twin, + = h=1 fallback"]
+    header = f"  {'':1} {'model':<14} {'penalty':<8} {'mean':>8} {'std':>7} {'n':>2} {'95% CI':>17} " \
              f"{'rank':>4} {'mrank':>5} {'vs ERM':>7} {'W/T/L':>6} {'DM p':>8}"
     for split, group in summary.groupby("split", sort=True):
-        lines += ["", f"{split}  [{group['split_id'].iloc[0]}]", header]
+        lines += ["", f"{split}  [{group['split_id'].iloc[0]}]"[:100], header]
         for row in group.itertuples():
             ci = f"[{_num(row.ci_low)}, {_num(row.ci_high)}]"
             change = f"{row.vs_erm_change * 100:+.1f}%" if np.isfinite(row.vs_erm_change) else "-"
             wtl = (f"{row.vs_erm_wins:.0f}/{row.vs_erm_ties:.0f}/{row.vs_erm_losses:.0f}"
                    if np.isfinite(row.vs_erm_wins) else "-")
             dm = _num(row.dm_p) + ("+" if row.dm_fallback is True else "")
-            lines.append(f"  {row.best:1} {row.model[:16]:<16} {row.penalty[:9]:<9} {_num(row.mean, '.4g'):>9} "
-                         f"{_num(row.std):>8} {row.n_seeds:>2} {ci[:19]:>19} {row.rank:>4.1f} {row.mean_rank:>5.2f} "
+            lines.append(f"  {row.best:1} {row.model[:14]:<14} {row.penalty[:8]:<8} {_num(row.mean, '.4g'):>8} "
+                         f"{_num(row.std):>7} {row.n_seeds:>2} {ci[:17]:>17} {row.rank:>4.1f} {row.mean_rank:>5.2f} "
                          f"{change:>7} {wtl:>6} {dm:>8}")
     return "\n".join(lines)
 
@@ -142,11 +143,11 @@ def top_of_grid(results_dir: Path, cfg) -> str:
     """A few lines for the end of `make demo`: combinations by mean rank, best cell per split, Friedman."""
     metric, rule = cfg.report.metric, cfg.report.selection
     summary = grid_table(Path(results_dir), metric, rule, int(cfg.report.bootstrap_samples))
-    board = summary.groupby("combo").agg(mean_rank=("mean_rank", "first"), mean=("mean", "mean"))
+    board = summary.groupby("combo").agg(mean_rank=("mean_rank", "first"), average=("mean", "mean"))
     board = board.sort_values("mean_rank").head(int(cfg.report.top_rows))
     lines = [f"top of the grid — {summary['metric'].iloc[0]} ({grid_stats.direction_text(metric)}), "
              f"selection: {selection.label(rule)}", f"  {'model+penalty':<28} {'mean rank':>9} {'mean':>10}"]
-    lines += [f"  {name[:28]:<28} {row.mean_rank:>9.2f} {row.mean:>10.4g}" for name, row in board.iterrows()]
+    lines += [f"  {name[:28]:<28} {row.mean_rank:>9.2f} {row.average:>10.4g}" for name, row in board.iterrows()]
     lines.append("best per split:")
     for split, group in summary[summary["best_in_split"]].groupby("split", sort=True):
         lines.append(f"  {BEST} {split}: {', '.join(group['combo'])} ({_num(group['mean'].iloc[0], '.4g')})")

@@ -54,8 +54,7 @@ def grid_heatmap(summary: pd.DataFrame, rule: str):
     best = gain[gain["best_in_split"]].groupby("split")["combo"].apply(set)
     limit = max(1.0, float(np.nanmax(np.abs(colour.to_numpy()))) if np.isfinite(colour.to_numpy()).any() else 1.0)
     fig, ax = plt.subplots(figsize=(max(6.0, 1.25 * len(combos) + 2.5), 0.62 * len(splits) + 2.4))
-    cmap = plt.get_cmap("RdBu").copy()
-    cmap.set_bad("#eeeeee")
+    cmap = plt.get_cmap("RdBu").with_extremes(bad="#eeeeee")
     image = ax.imshow(np.ma.masked_invalid(colour.to_numpy(np.float64)), cmap=cmap, vmin=-limit, vmax=limit,
                       aspect="auto")
     metric = summary["metric"].iloc[0]

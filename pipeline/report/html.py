@@ -138,8 +138,9 @@ def ranks_section(summary_all: pd.DataFrame, meta: dict, rule: str, dpi: int) ->
     parts.append(f'<p class="note">{E(grid_stats.MULTIPLE_COMPARISON_CAVEAT)}</p>')
     if len(meta["rules"]) > 1:
         parts.append(_figure(figures.selection_comparison(summary_all), dpi,
-                             "Target metric under each selection rule (target-oracle: upper bound, selected "
-                             "with target data)", "target-oracle" if "target-oracle" in meta["rules"] else None))
+                             "Target metric under each selection rule: "
+                             + "; ".join(selection.label(r) for r in meta["rules"]),
+                             "target-oracle" if "target-oracle" in meta["rules"] else None))
     return "".join(parts) + "</section>"
 
 
@@ -186,7 +187,7 @@ def provenance_section(runs: pd.DataFrame, meta: dict, rule: str) -> str:
 
 def load_inputs(grid_dir: Path, qc_paths, split_paths, shift_path):
     runs = pd.read_parquet(grid_dir / "grid.parquet")
-    summary = pd.read_csv(grid_dir / "grid.csv", keep_default_na=True)
+    summary = pd.read_csv(grid_dir / "grid.csv", keep_default_na=False, na_values=["", "nan", "NaN"])
     meta = json.loads((grid_dir / "grid_meta.json").read_text())
     qc = {Path(p).stem: json.loads(Path(p).read_text()) for p in qc_paths}
     splits = [json.loads(Path(p).read_text()) for p in split_paths]

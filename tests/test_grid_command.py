@@ -1,0 +1,80 @@
+"""`shiftgrid grid` formats and filters, and `top_of_grid`, on the hand-made grid (no MLflow at read time)."""
+
+import io
+import json
+from contextlib import redirect_stdout
+from types import SimpleNamespace
+
+import pandas as pd
+import pytest
+
+from grid_fixture import SPLIT_IDS, build_grid_store
+from pipeline.aggregate import aggregate
+from pipeline.cli import main
+from pipeline.commands.grid import top_of_grid
+
+
+@pytest.fixture(scope="module")
+def results(tmp_path_factory):
+    root = tmp_path_factory.mktemp("cmd")
+    records, _ = build_grid_store(root)
+    aggregate(records, root / "results", metric="mae", n_boot=100)
+    return root / "results"
+
+
+def grid(results, *args) -> tuple[int, str]:
+    out = io.StringIO()
+    with redirect_stdout(out):
+        status = main(["--root", str(results.parent), "grid", "--results", str(results), *args])
+    return status, out.getvalue()
+
+
+def test_table_fits_100_columns_and_marks_the_best_cell_with_a_symbol(results):
+    status, text = grid(results)
+    assert status == 0 and max(map(len, text.splitlines())) <= 100
+    best = [line for line in text.splitlines() if line.startswith("  * ")]
+    assert len(best) == 3  # one per split
+    assert any("persistence" in line for line in best) and sum("irm" in line for line in best) == 2
+    assert "-9.1%" in text and "2/0/1" in text  # lin+irm vs ERM on the first split; its W/T/L
+
+
+def test_csv_and_json_carry_the_same_rows(results):
+    _, csv_text = grid(results, "--format", "csv")
+    _, json_text = grid(results, "--format", "json")
+    table = pd.read_csv(io.StringIO(csv_text))
+    rows = json.loads(json_text)
+    assert len(table) == len(rows) == 9
+    assert table["mean"].tolist() == pytest.approx([row["mean"] for row in rows])
+    assert set(table["selection_rule"]) == {"source-val"}
+
+
+def test_markdown_is_a_pipe_table_with_the_rule(results):
+    _, text = grid(results, "--format", "markdown")
+    lines = text.splitlines()
+    assert lines[0].startswith("Selection: source-val") and lines[3].startswith("|---")
+    assert len([line for line in lines if line.startswith("| ")]) == 10  # header + 9 rows
+
+
+def test_filters_metric_and_selection(results):
+    _, text = grid(results, "--format", "csv", "--target", "vell", "--penalty", "irm,n/a")
+    table = pd.read_csv(io.StringIO(text), keep_default_na=False)  # "n/a" is a penalty label here
+    assert set(table["split_id"]) == {SPLIT_IDS[0]} and set(table["penalty"]) == {"irm", "n/a"}
+    _, text = grid(results, "--selection", "target-oracle", "--metric", "rmse")
+    assert "upper bound" in text.splitlines()[0] and "target_rmse" in text.splitlines()[0]
+    _, text = grid(results, "--format", "json", "--metric", "csi")
+    assert json.loads(text)[0]["rank"] == 1.0 and json.loads(text)[0]["mean"] == pytest.approx((1 / 1.9 + 1 / 2.1) / 2)
+
+
+def test_bad_filter_is_a_one_line_error(results, capsys):
+    status, _ = grid(results, "--model", "nosuchmodel")
+    assert status == 2
+    assert "no run has model ['nosuchmodel']" in capsys.readouterr().err
+
+
+def test_top_of_grid_lists_combinations_by_mean_rank(results):
+    cfg = SimpleNamespace(report=SimpleNamespace(metric="mae", selection="source-val", bootstrap_samples=50,
+                                                 top_rows=2))
+    text = top_of_grid(results, cfg)
+    lines = text.splitlines()
+    assert lines[2].split()[0] == "lin+irm" and lines[3].split()[0] == "lin+erm" and "persistence" not in lines[4]
+    assert "Friedman p = " in text

@@ -1,0 +1,99 @@
+"""The HTML report on the hand-made grid: self-contained, cautious, oracle always labelled."""
+
+import base64
+import re
+import struct
+
+import matplotlib.pyplot as plt
+import pandas as pd
+import pytest
+
+from grid_fixture import build_grid_store, shift_table, write_side_inputs
+from pipeline import selection
+from pipeline.aggregate import aggregate
+from pipeline.commands.demo import CAUTION
+from pipeline.report import figures
+from pipeline.report.html import render_report
+
+ORACLE_LABEL = selection.label("target-oracle")
+
+
+@pytest.fixture(scope="module")
+def report(tmp_path_factory):
+    root = tmp_path_factory.mktemp("report")
+    records, _ = build_grid_store(root)
+    aggregate(records, root / "results", metric="mae", n_boot=200)
+    qc_paths, split_paths = write_side_inputs(root)
+    shift_table().to_csv(root / "results" / "shift.csv", index=False)
+    out = root / "results" / "report.html"
+    page = render_report(root / "results", out, {"selection": "source-val", "figure_dpi": 60, "top_rows": 5,
+                                                  "title": "grid test"}, qc_paths, split_paths,
+                         root / "results" / "shift.csv")
+    return {"root": root, "page": page, "path": out}
+
+
+def test_report_carries_the_caution_twice_and_the_title(report):
+    assert report["path"].read_text(encoding="utf-8") == report["page"]
+    assert report["page"].count(CAUTION) == 2 and "<title>grid test</title>" in report["page"]
+
+
+def test_report_references_nothing_outside_itself(report):
+    page = report["page"]
+    text = re.sub(r"base64,[A-Za-z0-9+/=]+", "base64,", page)  # image bytes may spell anything
+    assert "http" not in text.lower() and "www." not in text
+    sources = re.findall(r'src="([^"]*)"', page)
+    assert sources and all(src.startswith("data:image/png;base64,") for src in sources)
+    assert all(href.startswith("#") for href in re.findall(r'href="([^"]*)"', page))
+    assert "url(" not in text and "@import" not in text
+    assert not re.search(r"<(link|script|iframe)\b", page)
+
+
+def test_every_embedded_image_is_a_png_of_nonzero_size(report):
+    for data in re.findall(r'src="data:image/png;base64,([^"]+)"', report["page"]):
+        raw = base64.b64decode(data)
+        assert raw[:8] == b"\x89PNG\r\n\x1a\n"
+        width, height = struct.unpack(">II", raw[16:24])  # IHDR chunk (PNG specification)
+        assert width > 50 and height > 50
+
+
+def test_sections_are_all_there(report):
+    for anchor in ("setup", "grid", "ranks", "horizon", "shift", "provenance"):
+        assert f'id="{anchor}"' in report["page"]
+    assert "Friedman" in report["page"] and "critical difference" in report["page"]
+
+
+def test_every_number_is_traceable_to_run_ids(report):
+    runs = pd.read_parquet(report["root"] / "results" / "grid.parquet")
+    provenance = report["page"].split('id="provenance"')[1]
+    assert all(run_id in provenance for run_id in runs["run_id"])
+
+
+def test_oracle_never_appears_without_its_upper_bound_label(report):
+    page = report["page"]
+    blocks = re.findall(r'<(figure|table|p) data-selection="target-oracle".*?</\1>', page, flags=re.S)
+    full = re.findall(r'<(?:figure|table|p) data-selection="target-oracle".*?</(?:figure|table|p)>', page, flags=re.S)
+    assert len(blocks) >= 3
+    for block in full:
+        assert "upper bound" in block
+    # any mention of the oracle rule name in text comes with the label
+    text = re.sub(r'data-selection="target-oracle"', "", re.sub(r"base64,[^\"]+", "", page))
+    for match in re.finditer("target-oracle", text):
+        assert text[match.start():match.start() + len(ORACLE_LABEL)] == ORACLE_LABEL
+
+
+def _all_titles(fig) -> str:
+    texts = [fig._suptitle.get_text() if fig._suptitle else ""] + [ax.get_title() for ax in fig.axes]
+    plt.close(fig)
+    return " ".join(texts)
+
+
+def test_oracle_figure_titles_say_upper_bound(report):
+    runs = pd.read_parquet(report["root"] / "results" / "grid.parquet")
+    summary = pd.read_csv(report["root"] / "results" / "grid.csv")
+    oracle = summary[summary.selection_rule == "target-oracle"]
+    assert "upper bound" in _all_titles(figures.grid_heatmap(oracle, "target-oracle"))
+    assert "upper bound" in _all_titles(figures.horizon_curves(runs, "target-oracle"))
+    assert "upper bound" in _all_titles(figures.exceedance_bars(runs, "target-oracle"))
+    assert "upper bound" in _all_titles(figures.selection_comparison(summary))
+    assert "upper bound" not in _all_titles(figures.grid_heatmap(summary[summary.selection_rule == "source-val"],
+                                                                 "source-val"))
