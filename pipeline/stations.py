@@ -45,8 +45,9 @@ def validate_stations(table: pd.DataFrame, file: str) -> pd.DataFrame:
         raise InputError("no stations", file=file)
     seen: dict[str, int] = {}
     lats, lons, elevations = [], [], []
-    for position, row in enumerate(table.itertuples(index=False)):
-        line = _line(position)
+    lines = table["_line"].tolist() if "_line" in table else [_line(p) for p in range(len(table))]
+    table = table.drop(columns="_line", errors="ignore")
+    for line, row in zip(lines, table.itertuples(index=False)):
         station_id, city = str(row.station_id).strip(), str(row.city).strip()
         if not STATION_ID_PATTERN.match(station_id):
             raise InputError(f"'{station_id}' must match {STATION_ID_PATTERN.pattern} "
@@ -88,7 +89,10 @@ def load_stations(path) -> pd.DataFrame:
     except (pd.errors.ParserError, UnicodeDecodeError, pd.errors.EmptyDataError) as error:
         raise InputError(f"not a readable CSV table ({str(error).splitlines()[0]})", file=file) from None
     table.columns = [str(c).strip() for c in table.columns]
-    return validate_stations(table, file)
+    # Blank lines are skipped but still counted, so reported line numbers match the editor's.
+    table["_line"] = [_line(p) for p in range(len(table))]
+    blank = (table.drop(columns="_line").apply(lambda c: c.str.strip() == "")).all(axis=1)
+    return validate_stations(table[~blank].reset_index(drop=True), file)
 
 
 def stations_of_city(stations: pd.DataFrame, city: str) -> pd.DataFrame:

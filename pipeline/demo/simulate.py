@@ -89,11 +89,11 @@ def simulate(stations: pd.DataFrame, start: str, days: int, seed: int,
     """{city: table of station_id, time (UTC) and every canonical variable, canonical units}."""
     times = pd.date_range(pd.Timestamp(start, tz="UTC"), periods=days * 24, freq="h")
     hours = len(times)
-    doy = times.dayofyear.to_numpy(float) + times.hour.to_numpy() / 24.0
+    doy = times.day_of_year.to_numpy(float) + times.hour.to_numpy() / 24.0
     season = -np.cos(2 * np.pi * (doy - 20.0) / 365.25)  # -1 mid-January, +1 mid-July
     summer = (1.0 + season) / 2.0
     civil = times.tz_convert(CIVIL_TIME_ZONE)
-    traffic_shape = _traffic_shape(civil.hour.to_numpy(float), civil.weekday.to_numpy())
+    traffic_shape = _traffic_shape(civil.hour.to_numpy(float), civil.day_of_week.to_numpy())
     daytime_heating = np.where((civil.hour >= 6) & (civil.hour <= 22), 1.0, 0.6)
     regional = np.random.default_rng([seed, 0])
     reg_temp = _ar1(regional, 0.97, 0.6, hours)
@@ -142,7 +142,7 @@ def _simulate_city(city, position, group, times, doy, summer, traffic_shape, day
     day_index = (np.arange(hours) // 24)
     day_factor = np.exp(_ar1(rng, 0.6, 0.12, day_index[-1] + 1))[day_index]
     activity = traffic_shape * day_factor * (1.0 + 0.05 * rng.normal(size=hours))  # the true traffic
-    industry = np.where(times.weekday == 6, 0.6, 1.0)
+    industry = np.where(times.day_of_week == 6, 0.6, 1.0)
 
     multipliers = np.array([SITE_ACTIVITY[t] for t in group["site_type"]])  # (n, 3)
     drivers = {"traffic": profile.traffic_level * multipliers[:, 0][None, :] * activity[:, None],

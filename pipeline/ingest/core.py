@@ -48,7 +48,7 @@ def _convert_wide(kept: pd.DataFrame, spec: dict, temperature: float):
 def _convert_long(kept: pd.DataFrame, spec: dict, temperature: float):
     """Convert per (variable, unit) group, then pivot to one row per station and hour."""
     unit_text = kept["unit_raw"].where(kept["unit_raw"] != "",
-                                       kept["variable"].map(spec["units"]).fillna(""))
+                                       kept["variable"].map(lambda v: spec["units"].get(v, "")))
     numbers = np.full(len(kept), np.nan)
     flags = np.zeros(len(kept), dtype="int8")
     conversions: dict[str, list] = {}
@@ -111,7 +111,8 @@ def ingest_city(city: str, fmt: dict, raw_dir, stations: pd.DataFrame,
     def active():
         return reason == ""
 
-    frame["station_id"] = frame["station_raw"].map(spec["station_map"]).fillna(frame["station_raw"])
+    codes = {code: spec["station_map"].get(code, code) for code in frame["station_raw"].unique()}
+    frame["station_id"] = frame["station_raw"].map(codes)
     unknown = ~frame["station_id"].isin(known).to_numpy()
     reason[unknown] = "unknown_station"
     series_keys = ["station_id"]
