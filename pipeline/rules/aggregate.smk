@@ -6,8 +6,8 @@
 def report_slice_json(keys=None):
     from pipeline.config import canonical_json, to_container
 
-    report = to_container(PLAN.cfg.report)
-    return canonical_json({k: v for k, v in report.items() if keys is None or k in keys})
+    options = to_container(PLAN.cfg.report)  # (`report` is a Snakemake keyword: not a variable name here)
+    return canonical_json({k: v for k, v in options.items() if keys is None or k in keys})
 
 
 rule aggregate_grid:
