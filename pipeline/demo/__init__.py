@@ -86,7 +86,7 @@ def generate_demo(raw_dir, stations: pd.DataFrame, cities_formats: dict, start: 
                 stale.unlink()
         for relative, text in files.items():
             write_text_atomic(text, raw / relative)
-        profile = profile_of(city, sorted(known).index(city))
+        profile = profile_of(city, position)  # same position simulate() gave the city
         summary["cities"][city] = {"layout": spec["layout"], "files": sorted(files),
                                    "aux_link": profile.aux_link, **injected}
     return summary
