@@ -21,7 +21,7 @@ TRAINING_CORE = ("train.py", "train_job.py", "train_loop.py", "penalties.py", "w
                  "tracking.py", "models/__init__.py", "models/base.py")
 INGEST_CORE = ("ingest", "units.py", "stations.py", "variables.py")
 SPLIT_CORE = ("splits.py", "geo.py")
-AGGREGATE_CORE = ("aggregate.py", "stats.py", "metrics.py", "shift.py", "report")
+AGGREGATE_CORE = ("aggregate.py", "grid_stats.py", "stats.py", "metrics.py", "shift.py", "report")
 STAGE_CODE = {"ingest": INGEST_CORE, "splits": SPLIT_CORE, "aggregate": AGGREGATE_CORE}
 
 KEY_PACKAGES = ("shiftgrid", "torch", "numpy", "pandas", "pyarrow", "scikit-learn", "scipy", "statsmodels",

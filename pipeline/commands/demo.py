@@ -23,16 +23,32 @@ def add_arguments(parser) -> None:
     parser.add_argument("--run", action="store_true", help="then run the whole DAG and print a summary")
 
 
-def write_dumps(overrides: list[str], root: Path, days: int | None) -> dict:
+def _invented_scenario(cfg, root: Path, generator: dict, days: int | None) -> dict:
     from pipeline.demo import generate_demo
 
-    cfg = compose_config(expand_sweep_overrides(overrides), root)
-    generator = to_container(cfg.data.generator)
-    if not generator:
-        raise InputError(f"data set {cfg.data.name!r} has no generator; it is real data", field="data.generator")
     stations = load_stations(root / cfg.data.stations)
     return generate_demo(root / cfg.data.raw_dir, stations, to_container(cfg.data.cities), generator["start"],
-                         days or generator["days"], generator["seed"])
+                         days or generator["days"], generator["seed"], cfg.data.reference_temperature_c)
+
+
+def _airports(cfg, root: Path, generator: dict, days: int | None) -> dict:
+    from pipeline.demo.airports import write_airports_dump
+
+    return {"written": str(write_airports_dump(root / cfg.data.raw_dir)), "days": "all (real data)"}
+
+
+# data.generator.kind -> writer(cfg, root, generator settings, days) -> summary
+GENERATORS = {"demo": _invented_scenario, "airports": _airports}
+
+
+def write_dumps(overrides: list[str], root: Path, days: int | None) -> dict:
+    cfg = compose_config(expand_sweep_overrides(overrides), root)
+    generator = to_container(cfg.data.generator) or {}
+    kind = generator.get("kind", "demo")
+    if kind not in GENERATORS:
+        raise InputError(f"unknown generator kind {kind!r}; known: {', '.join(GENERATORS)}",
+                         field="data.generator.kind")
+    return GENERATORS[kind](cfg, root, generator, days)
 
 
 def qc_summary(qc_dir: Path) -> list[str]:

@@ -12,7 +12,7 @@ Public API:
                *, config_file=None) -> qc dict   # ingest_city + atomic writes
 """
 
-from pipeline.ingest.core import DROP_REASONS, READERS, ingest_city, run_ingest
+from pipeline.ingest.core import DROP_REASONS, READERS, ingest_city, raw_files, run_ingest
 from pipeline.ingest.formats import LAYOUTS, validate_format
 
-__all__ = ["ingest_city", "run_ingest", "validate_format", "LAYOUTS", "DROP_REASONS", "READERS"]
+__all__ = ["ingest_city", "raw_files", "run_ingest", "validate_format", "LAYOUTS", "DROP_REASONS", "READERS"]

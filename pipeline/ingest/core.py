@@ -35,6 +35,17 @@ def _matching_files(raw_dir, pattern: str) -> list[Path]:
     return paths
 
 
+def raw_files(raw_dir, fmt: dict) -> list[str]:
+    """The raw files a city's format names, for the rule's input list.
+
+    With no match it returns the pattern itself, so Snakemake reports one clear missing input instead of
+    running an ingest job with nothing to read.
+    """
+    pattern = fmt["files"]
+    paths = sorted(str(p) for p in Path(raw_dir).glob(pattern) if p.is_file())
+    return paths or [str(Path(raw_dir) / pattern)]
+
+
 def _convert_wide(kept: pd.DataFrame, spec: dict, temperature: float):
     values, conversions = {}, {}
     for canonical in spec["columns"].values():
