@@ -96,6 +96,11 @@ def plan_workflow(overrides: str | list | None = None, root: Path | str = ".") -
         raise InputError(f"cities in the station table have no dump format: {', '.join(missing)}",
                          file=str(cfg.data.stations), field="city")
     split_cfg = to_container(cfg.split)
+    if split_cfg.get("cities"):  # the study is restricted to these cities: ingest and diagnose only them
+        unknown = sorted(set(split_cfg["cities"]) - set(cities))
+        if unknown:
+            raise InputError(f"unknown cities: {', '.join(unknown)}", file="config", field="split.cities")
+        cities = sorted(split_cfg["cities"])
     splits = {item["split_id"]: item for item in
               plan_splits(split_cfg, stations[stations["city"].isin(cities)],
                           cfg.forecast.lookback_hours, cfg.forecast.horizon_hours)}

@@ -29,7 +29,7 @@ rule train_model:
     benchmark:
         f"{RESULTS}/benchmarks/train_model/{{split_id}}/{{model}}/{{penalty}}.tsv"
     wildcard_constraints:
-        penalty=r"(?!na$)[a-z][a-z0-9_]*",
+        penalty=r"(?!na/)[a-z][a-z0-9_]*",  # "na" belongs to fit_baseline
     threads: 1
     params:
         job=job_params,
