@@ -16,7 +16,7 @@ $(STAMP): pyproject.toml
 	touch $(STAMP)
 
 demo: $(STAMP)
-	$(BIN)/shiftgrid demo --run
+	$(BIN)/shiftgrid demo --run experiment=demo
 
 test: $(STAMP)
 	$(BIN)/python -m pytest -q
