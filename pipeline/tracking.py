@@ -74,7 +74,7 @@ def log_run(client, experiment_id_: str, *, run_name: str, params: dict[str, str
             metrics: dict[str, float], curves: dict[str, list[tuple[int, float]]], tags: dict[str, str],
             artifacts: dict[str, Path]) -> str:
     """Create, fill and finish one run with batched calls (one HTTP request per batch on a server)."""
-    from mlflow.entities import Metric, Param, RunTag
+    from mlflow.entities import Metric, Param
 
     run = client.create_run(experiment_id_, run_name=run_name, tags={k: str(v) for k, v in tags.items()})
     run_id = run.info.run_id

@@ -10,31 +10,16 @@ and MLflow connection are paid once per job, not per run (STACK-NOTES).
 from __future__ import annotations
 
 import dataclasses
-import json
-import os
-import tempfile
 import time
-from pathlib import Path
 
 import numpy as np
 import pandas as pd
 
 from pipeline import selection
-from pipeline.config import NOT_APPLICABLE
 from pipeline.metrics import forecast_scores, mse
 from pipeline.models import build_model
 from pipeline.penalties import build_penalty
 from pipeline.train_loop import TrainerConfig
-from pipeline.windows import ForecastConfig, build_windows
-
-
-def write_json_atomic(path: Path | str, payload: dict) -> None:
-    path = Path(path)
-    path.parent.mkdir(parents=True, exist_ok=True)
-    with tempfile.NamedTemporaryFile("w", dir=path.parent, suffix=".tmp", delete=False) as handle:
-        json.dump(payload, handle, indent=2, sort_keys=True, default=str)
-        temporary = handle.name
-    os.replace(temporary, path)
 
 
 def subset(window_set, mask: np.ndarray):

@@ -17,8 +17,8 @@ import pandas as pd
 import yaml
 
 from pipeline import provenance, selection, tracking
-from pipeline.train import (history_curves, predictions_frame, run_seed, state_for_saving, station_city_map,
-                            write_json_atomic)
+from pipeline.atomic import write_json_atomic
+from pipeline.train import history_curves, predictions_frame, run_seed, state_for_saving, station_city_map
 from pipeline.windows import ForecastConfig, build_windows
 
 HEADLINE = ("target_mae", "target_rmse", "target_mse", "target_mase", "target_csi", "source_mae", "gap_mae",
@@ -93,6 +93,6 @@ def run_train_job(split_path: Path | str, job: dict, seeds: list[int], record_pa
                   "target": split["target"], "model": job["model_name"], "family": job["model"]["family"],
                   "penalty": job["penalty_name"], "seed": seed, "selection_rule": outcome["primary"],
                   "metrics": {k: outcome["metrics"].get(k) for k in HEADLINE}, "supersedes": superseded}
-        write_json_atomic(record_path, record)
+        write_json_atomic(record, record_path)
         records.append(record)
     return records

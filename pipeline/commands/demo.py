@@ -37,8 +37,14 @@ def _airports(cfg, root: Path, generator: dict, days: int | None) -> dict:
     return {"written": str(write_airports_dump(root / cfg.data.raw_dir)), "days": "all (real data)"}
 
 
+def _sem(cfg, root: Path, generator: dict, days: int | None) -> dict:
+    from pipeline.demo.sem import write_sem_dump
+
+    return write_sem_dump(root / cfg.data.raw_dir, load_stations(root / cfg.data.stations), generator, days)
+
+
 # data.generator.kind -> writer(cfg, root, generator settings, days) -> summary
-GENERATORS = {"demo": _invented_scenario, "airports": _airports}
+GENERATORS = {"demo": _invented_scenario, "airports": _airports, "sem": _sem}
 
 
 def write_dumps(overrides: list[str], root: Path, days: int | None) -> dict:

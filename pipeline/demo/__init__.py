@@ -54,7 +54,7 @@ import pandas as pd
 from pipeline.demo.deliver import render_city
 from pipeline.demo.simulate import DEMO_PROFILES, profile_of, simulate
 from pipeline.errors import InputError
-from pipeline.ingest.atomic import write_text_atomic
+from pipeline.atomic import write_text_atomic
 from pipeline.ingest.formats import validate_format
 
 

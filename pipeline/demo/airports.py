@@ -15,7 +15,7 @@ from pathlib import Path
 import pandas as pd
 
 from pipeline.errors import InputError
-from pipeline.ingest.atomic import write_text_atomic
+from pipeline.atomic import write_text_atomic
 
 AIRPORT_STATIONS = {"EWR": "ewr", "JFK": "jfk", "LGA": "lga"}
 CITY = "nyc"

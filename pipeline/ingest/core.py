@@ -15,7 +15,7 @@ import pandas as pd
 
 from pipeline.errors import InputError
 from pipeline.ingest import jsonl, long_csv, qc, timeparse, wide_csv
-from pipeline.ingest.atomic import write_json_atomic, write_parquet_atomic
+from pipeline.atomic import write_json_atomic, write_parquet_atomic
 from pipeline.ingest.formats import validate_format
 from pipeline.ingest.values import parse_numbers, to_canonical
 from pipeline.stations import load_stations, stations_of_city

@@ -33,7 +33,7 @@ def write_parquet_atomic(frame: pd.DataFrame, path) -> Path:
 def write_json_atomic(data: dict, path) -> Path:
     def write(temporary):
         with open(temporary, "w", encoding="utf-8") as handle:
-            json.dump(data, handle, indent=2, sort_keys=False)
+            json.dump(data, handle, indent=2, sort_keys=True, default=str)
             handle.write("\n")
     return _atomic(path, write)
 
