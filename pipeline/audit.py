@@ -181,7 +181,10 @@ def format_show(info: dict, all_metrics: bool = False) -> str:
               f"  id          {split['split_id']}  (scheme {split['scheme']}, environments: {split['environment']})",
               f"  sources     {', '.join(split['sources'] or [])}",
               f"  target      {split['target']}"]
-    for block, (start, end) in (split.get("time_blocks") or {}).items():
+    blocks = split.get("time_blocks") or {}
+    for block in sorted(blocks, key=lambda name: ("train", "val", "test").index(name) if name in
+                        ("train", "val", "test") else 3):
+        start, end = blocks[block]
         lines.append(f"  {block:<11} {start} .. {end} (end exclusive)")
     lines.append(f"  gap hours   {split['gap_hours']}; target train fraction {split['target_train_fraction']}")
     lines += ["", "model",

@@ -1,0 +1,109 @@
+"""`shiftgrid runs [--target T] [--source S] [--model M] [--penalty P] [--seed N] [--since DATE]
+[--current | --superseded] [--format table|csv|json] [--tracking-uri URI] [OVERRIDES...]`.
+
+Reads the MLflow store of the composed config (results_dir, tracking.uri, tracking.experiment) and lists
+its runs, newest first: table readable at 100 columns (run ID prefix; `show` accepts it), CSV or JSON
+with full IDs. Writes nothing.
+"""
+
+import json
+from datetime import datetime, timezone
+
+from pipeline import audit, tracking
+from pipeline.errors import InputError
+
+FORMATS = ("table", "csv", "json")
+COLUMNS = ("run_id", "started", "split_id", "sources", "target", "model", "penalty", "seed", "state",
+           "superseded_by", "target_mae")
+
+
+def add_arguments(parser) -> None:
+    parser.add_argument("overrides", nargs="*", help="Hydra overrides locating the store, e.g. experiment=demo")
+    parser.add_argument("--tracking-uri", help="MLflow tracking URI (default: the config's store)")
+    parser.add_argument("--experiment", help="MLflow experiment (default: tracking.experiment)")
+    for name in ("target", "source", "model", "penalty"):
+        parser.add_argument(f"--{name}", help=f"only runs with this {name} (n/a for baselines' penalty)")
+    parser.add_argument("--seed", type=int)
+    parser.add_argument("--since", help="only runs started on or after this date (YYYY-MM-DD, UTC)")
+    state = parser.add_mutually_exclusive_group()
+    state.add_argument("--current", action="store_true", help="only runs the grid uses")
+    state.add_argument("--superseded", action="store_true", help="only runs replaced by a re-run")
+    parser.add_argument("--format", choices=FORMATS, default="table")
+
+
+def _since_millis(text: str) -> int:
+    try:
+        moment = datetime.strptime(text, "%Y-%m-%d").replace(tzinfo=timezone.utc)
+    except ValueError:
+        raise InputError(f"expected a date YYYY-MM-DD, got {text!r}", field="--since") from None
+    return int(moment.timestamp() * 1000)
+
+
+def _quoted(value: str) -> str:
+    if "'" in value:
+        raise InputError(f"quote character in {value!r}", field="filter")
+    return f"'{value}'"
+
+
+def search(client, experiment_id: str, args) -> list[dict]:
+    clauses = [f"tags.{name} = {_quoted(value)}" for name, value in
+               (("target", args.target), ("model", args.model),
+                ("penalty", "na" if args.penalty == "n/a" else args.penalty),
+                ("seed", None if args.seed is None else str(args.seed))) if value]
+    if args.since:
+        clauses.append(f"attributes.start_time >= {_since_millis(args.since)}")
+    runs = audit._all_runs(client, [experiment_id]) if not clauses else []
+    if clauses:
+        token = None
+        while True:
+            page = client.search_runs([experiment_id], " and ".join(clauses), max_results=1000, page_token=token)
+            runs.extend(page)
+            token = page.token
+            if not token:
+                break
+    rows = []
+    for found in runs:
+        tags = found.data.tags
+        sources = tags.get("sources", "").split("+")
+        successor = tags.get(tracking.SUPERSEDED_TAG)
+        if (args.source and args.source not in sources) or (args.current and successor) or \
+                (args.superseded and not successor):
+            continue
+        rows.append({"run_id": found.info.run_id, "started": audit.when(found.info.start_time)[:16],
+                     "split_id": tags.get("split_id"), "sources": tags.get("sources"), "target": tags.get("target"),
+                     "model": tags.get("model"), "penalty": "n/a" if tags.get("penalty") == "na" else tags.get("penalty"),
+                     "seed": tags.get("seed"), "state": "superseded" if successor else "current",
+                     "superseded_by": successor or "", "target_mae": found.data.metrics.get("target_mae"),
+                     "_start": found.info.start_time or 0})
+    rows.sort(key=lambda row: (-row["_start"], row["run_id"]))
+    return [{k: v for k, v in row.items() if k != "_start"} for row in rows]
+
+
+def format_table(rows: list[dict]) -> str:
+    lines = [f"{'run':<12} {'started (UTC)':<16} {'sources -> target':<24} {'model':<12} {'penalty':<8} "
+             f"{'seed':>4} {'state':<10} {'mae':>6}"]
+    for row in rows:
+        route = f"{row['sources']} -> {row['target']}"
+        mae = f"{row['target_mae']:.3g}" if row["target_mae"] is not None else "-"
+        lines.append(f"{row['run_id'][:12]:<12} {row['started']:<16} {route[:24]:<24} {str(row['model'])[:12]:<12} "
+                     f"{str(row['penalty'])[:8]:<8} {str(row['seed']):>4} {row['state']:<10} {mae:>6}")
+    lines.append(f"{len(rows)} runs (`shiftgrid show RUN` accepts the 12-character prefix)")
+    return "\n".join(lines)
+
+
+def run(args) -> int:
+    uri, cfg = audit.tracking_uri_for(args.root, args.overrides, args.tracking_uri)
+    client = audit.open_store(uri)
+    name = args.experiment or cfg.tracking.experiment
+    experiment = client.get_experiment_by_name(name)
+    if experiment is None:
+        raise InputError(f"no MLflow experiment {name!r} in {uri}", field="--experiment")
+    rows = search(client, experiment.experiment_id, args)
+    if args.format == "json":
+        print(json.dumps(rows, indent=1))
+    elif args.format == "csv":
+        import pandas as pd
+        print(pd.DataFrame(rows, columns=list(COLUMNS)).to_csv(index=False).rstrip("\n"))
+    else:
+        print(format_table(rows))
+    return 0
