@@ -42,7 +42,7 @@ def job_environment() -> dict[str, str]:
 def run_pipeline(overrides: list[str], *, root: Path | str = ".", profile: str = "local",
                  extra: list[str] | None = None, quiet: bool = False) -> int:
     """Phase 1: ingestion only. Phase 2: everything else. Returns Snakemake's exit status."""
-    flags = ["--quiet", "progress"] if quiet else []
+    flags = ["--quiet", "rules", "host", "reason"] if quiet else []  # keep the progress lines
     for phase in (["--until", "ingest_city"], []):
         command = snakemake_command(overrides, root=root, profile=profile, extra=[*phase, *flags, *(extra or [])])
         status = subprocess.call(command, env=job_environment(), cwd=root)
