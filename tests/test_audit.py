@@ -1,0 +1,150 @@
+"""Unit tests of the audit helpers: dry-run parsing, bitwise comparison, digests, bad input (exit 2, one line).
+
+The DAG-based checks of `show`, `reproduce`, `runs` and `status` on real runs are in tests/test_reruns.py
+(they share its tiny base run).
+"""
+
+import json
+import struct
+from pathlib import Path
+
+import pytest
+import torch
+
+from pipeline import audit, outdated
+from pipeline.cli import main
+from pipeline.reproduce import check_data, compare_metrics, compare_weights
+from pipeline.errors import InputError
+
+REPO = Path(__file__).resolve().parents[1]
+
+DRY_RUN = """Building DAG of jobs...
+[Wed Dec  2 02:16:43 2026]
+rule fit_baseline:
+    input: data/clean/a.parquet, results/splits/pairs-a-to-b-123abc.json
+    output: results/runs/pairs-a-to-b-123abc/ridge/na/0.json
+    jobid: 10
+    reason: Params have changed since last execution: before: 'x' now: 'y'
+    wildcards: split_id=pairs-a-to-b-123abc, model=ridge
+    resources: tmpdir=/tmp
+[Wed Dec  2 02:16:43 2026]
+localrule render_report:
+    input: results/grid.parquet
+    output: results/report.html
+    reason: Input files updated by another job: results/grid.parquet
+    resources: tmpdir=/tmp
+[Wed Dec  2 02:16:43 2026]
+rule all:
+    input: results/grid.csv, results/report.html
+    jobid: 0
+    reason: Input files updated by another job: results/grid.csv, results/report.html
+Job stats:
+job               count
+--------------  -------
+fit_baseline          1
+render_report         1
+all                   1
+total                 3
+"""
+
+
+def test_parse_dry_run_reads_rule_wildcards_reason_and_leaves_out_all():
+    jobs = outdated.parse_dry_run(DRY_RUN)
+    assert [j.rule for j in jobs] == ["fit_baseline", "render_report"]
+    assert jobs[0].wildcards == {"split_id": "pairs-a-to-b-123abc", "model": "ridge"}
+    assert jobs[0].output == ["results/runs/pairs-a-to-b-123abc/ridge/na/0.json"]
+    assert jobs[0].reason.startswith("Params have changed")
+    assert outdated.count_by_rule(jobs) == {"fit_baseline": 1, "render_report": 1}
+
+
+def test_format_status_nothing_to_do():
+    assert outdated.format_status([], []) == "up to date: nothing to run"
+
+
+def test_stored_params_and_slice_change_name_the_changed_section(tmp_path):
+    output = "results/runs/x/ridge/na/0.json"
+    meta_dir = tmp_path / ".snakemake" / "metadata"
+    meta_dir.mkdir(parents=True)
+    import base64
+    before = json.dumps({"model_name": "ridge", "model": {"alpha": 1.0}, "trainer": {"lr": 0.1}}, sort_keys=True)
+    (meta_dir / base64.urlsafe_b64encode(output.encode()).decode()).write_text(
+        json.dumps({"params": [repr(before), repr("abc123")]}))
+    old = outdated.stored_params(outdated.stored_metadata(tmp_path, output))
+    assert old == [before, "abc123"]
+    now = json.dumps({"model_name": "ridge", "model": {"alpha": 2.0}, "trainer": {"lr": 0.1}}, sort_keys=True)
+    assert outdated._job_slice_change(old, now) == ["model"]
+
+
+def test_raw_content_changed_compares_stored_sha256(tmp_path):
+    import hashlib
+    raw = tmp_path / "dump.csv"
+    raw.write_text("a,b\n1,2\n")
+    meta = {"input_checksums": {"dump.csv": "sha256:" + hashlib.sha256(raw.read_bytes()).hexdigest()}}
+    assert outdated.raw_content_changed(meta, tmp_path) == []
+    raw.write_text("a,b\n1,2\n3,4\n")
+    assert outdated.raw_content_changed(meta, tmp_path) == ["dump.csv"]
+
+
+def test_compare_metrics_is_bitwise_and_skips_timing():
+    a = {"target_mae": 1.0, "fit_seconds": 3.0, "x": float("nan")}
+    assert compare_metrics(a, {"target_mae": 1.0, "fit_seconds": 9.0, "x": float("nan")}) == []
+    next_up = struct.unpack("<d", struct.pack("<q", struct.unpack("<q", struct.pack("<d", 1.0))[0] + 1))[0]
+    differences = compare_metrics(a, {"target_mae": next_up, "fit_seconds": 3.0, "x": float("nan")})
+    assert len(differences) == 1 and "target_mae" in differences[0]  # one ulp apart is a difference
+    assert "only in the original" in compare_metrics({"y": 1.0}, {})[0]
+
+
+def test_compare_weights_exact(tmp_path):
+    state = {"w": torch.arange(6, dtype=torch.float32).reshape(2, 3), "b": torch.zeros(3)}
+    torch.save(state, tmp_path / "a.pt")
+    torch.save({k: v.clone() for k, v in state.items()}, tmp_path / "b.pt")
+    assert compare_weights(tmp_path / "a.pt", tmp_path / "b.pt") == []
+    changed = {k: v.clone() for k, v in state.items()}
+    changed["w"][0, 0] = torch.nextafter(torch.tensor(0.0), torch.tensor(1.0))
+    torch.save(changed, tmp_path / "c.pt")
+    assert compare_weights(tmp_path / "a.pt", tmp_path / "c.pt") == ["weights w: differ (largest absolute difference 1.4e-45)"]
+
+
+def test_digests_then_now_and_refusal(tmp_path):
+    clean = tmp_path / "data" / "clean"
+    clean.mkdir(parents=True)
+    (clean / "a.parquet").write_bytes(b"one")
+    then = audit.digests_then({"data_digest.a": audit.provenance.file_digest(clean / "a.parquet"),
+                               "data_digest.b": "0" * 64, "model": "x"})
+    assert list(then) == ["a", "b"]
+    now = audit.digests_now(list(then), tmp_path, "data/clean")
+    assert now["b"] is None and audit.changed_cities(then, now) == ["b"]
+    with pytest.raises(InputError, match="--force"):
+        check_data(then, now, "r1", force=False)
+    assert check_data(then, now, "r1", force=True) == ["b"]
+
+
+def test_find_record_by_run_id(tmp_path):
+    folder = tmp_path / "runs" / "s" / "m" / "erm"
+    folder.mkdir(parents=True)
+    (folder / "0.json").write_text(json.dumps({"run_id": "new", "supersedes": ["old"]}))
+    assert audit.find_record(tmp_path, "new")[1]["run_id"] == "new"
+    assert audit.find_record(tmp_path, "old")[0] == folder / "0.json"
+    assert audit.find_record(tmp_path, "other") == (None, None)
+
+
+@pytest.mark.parametrize("command", [["show", "abc"], ["reproduce", "abc"], ["runs"]])
+def test_missing_store_is_one_line_exit_2(command, tmp_path, capsys):
+    missing = f"sqlite:///{tmp_path / 'none.db'}"
+    assert main(["--root", str(REPO), *command, "--tracking-uri", missing]) == 2
+    err = capsys.readouterr().err
+    assert err.count("\n") == 1 and "does not exist" in err
+    assert not (tmp_path / "none.db").exists()  # no empty store created
+
+
+def test_unknown_run_id_is_one_line_exit_2(tmp_path, capsys):
+    from pipeline.tracking import setup_store
+
+    uri = f"sqlite:///{tmp_path / 'mlflow.db'}"
+    setup_store(uri, "e", (tmp_path / "art").as_uri())
+    capsys.readouterr()  # MLflow's own schema-creation log lines are not ours
+    assert main(["--root", str(REPO), "show", "0123456789abcdef", "--tracking-uri", uri]) == 2
+    err = capsys.readouterr().err
+    assert err.count("\n") == 1 and "no MLflow run" in err
+    assert main(["--root", str(REPO), "runs", "--tracking-uri", uri, "--experiment", "e", "--since", "yesterday"]) == 2
+    assert "YYYY-MM-DD" in capsys.readouterr().err
