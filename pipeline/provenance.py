@@ -64,8 +64,8 @@ def training_code_digest(family: str) -> str:
     return source_digest([*TRAINING_CORE, family_module_file(family)])
 
 
-def git_state(root: Path | str = ".") -> dict:
-    """Commit and dirty flag of the working tree; 'unknown' outside a git checkout."""
+def git_state(root: Path | str = PACKAGE_DIR.parent) -> dict:
+    """Commit and dirty flag of the checkout holding the package code; "unknown" outside git."""
     def run(*args: str) -> str:
         return subprocess.run(["git", *args], cwd=root, capture_output=True, text=True, timeout=10,
                               check=True).stdout.strip()
