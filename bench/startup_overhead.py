@@ -1,7 +1,7 @@
 """Share of a sweep's training wall time spent on process start-up and bookkeeping.
 
 Run after `make demo` (or any `shiftgrid run`): `python bench/startup_overhead.py [results_dir]`.
-Reads the Snakemake benchmark files of every train_model / fit_baseline job (wall seconds of the whole
+Reads the Snakemake benchmark files of every train_model / fit_baselines job (wall seconds of the whole
 job process) and, from MLflow, each run's `compute_seconds` (fits, refits, evaluation) and
 `prepare_seconds` (reading Parquet and building windows, once per job). Overhead = job wall time minus
 that work: interpreter start, imports, MLflow connection, logging, artifacts. Prints the ratio; the goal
@@ -31,11 +31,14 @@ def job_compute(results: Path) -> dict[str, float]:
     clients = {}
     for record_path in (results / "runs").rglob("*.json"):
         record = json.loads(record_path.read_text())
+        if record.get("reused"):  # reused from an earlier job: no work was done for it in this one
+            continue
         client = clients.setdefault(record["tracking_uri"], client_for(record["tracking_uri"]))
         metrics = client.get_run(record["run_id"]).data.metrics
-        rule = "fit_baseline" if record["penalty"] == "na" else "train_model"
-        suffix = "" if rule == "fit_baseline" else f"/{record['penalty']}"
-        job = f"{rule}/{record['split_id']}/{record['model']}{suffix}"
+        if record["penalty"] == "na":
+            job = f"fit_baselines/{record['split_id']}"
+        else:
+            job = f"train_model/{record['split_id']}/{record['model']}"
         compute[job] = compute.get(job, 0.0) + metrics.get("compute_seconds", 0.0)
         prepare[job] = max(prepare.get(job, 0.0), metrics.get("prepare_seconds", 0.0))
     return {job: compute[job] + prepare[job] for job in compute}

@@ -19,7 +19,9 @@ from collections import Counter, defaultdict
 from dataclasses import dataclass, field
 from pathlib import Path
 
-TRAINING_RULES = ("train_model", "fit_baseline")
+from pipeline.workflow import BASELINES
+
+TRAINING_RULES = ("train_model", "fit_baselines")
 AGGREGATION_RULES = ("aggregate_grid", "diagnose_shift", "render_report")
 _HEADER = re.compile(r"^(?:local)?rule (\w+):\s*$")
 _FIELD = re.compile(r"^\s+(\w+): (.*)$")
@@ -97,14 +99,26 @@ def raw_content_changed(meta: dict | None, root: Path | str) -> list[str]:
     return changed
 
 
-def _job_slice_change(old: list, new_json: str) -> list[str]:
-    """Top-level sections of the job slice that differ (model, penalty, trainer, ...)."""
-    new = json.loads(new_json)
+def _unit_key(unit: dict) -> tuple:
+    return unit["job"]["model_name"], unit["job"]["penalty_name"], unit["seed"]
+
+
+def unit_changes(old: list, new_json: str) -> list[tuple[str, str, str]]:
+    """(model, penalty, section) for every unit whose config slice section differs from the last run."""
+    new = {_unit_key(u): u["job"] for u in json.loads(new_json)}
+    before = None
     for value in old:
-        if isinstance(value, str) and value.startswith("{") and '"model_name"' in value:
-            before = json.loads(value)
-            return sorted(k for k in set(before) | set(new) if before.get(k) != new.get(k))
-    return ["job settings"]
+        if isinstance(value, str) and value.startswith("[") and '"model_name"' in value:
+            before = {_unit_key(u): u["job"] for u in json.loads(value)}
+    if before is None:
+        return [("?", "?", "job settings")]
+    changes = set()
+    for key, job in new.items():
+        previous = before.get(key)
+        sections = ["new run"] if previous is None else [k for k in set(job) | set(previous)
+                                                        if job.get(k) != previous.get(k)]
+        changes.update((key[0], key[1], section) for section in sections)
+    return sorted(changes)
 
 
 def _clean_city(path: str) -> str | None:
@@ -135,24 +149,23 @@ def explain(jobs: list[PlannedJob], plan, root: Path | str) -> list[str]:
     for job in jobs:
         key = tuple(job.output)
         if job.rule in TRAINING_RULES:
-            split_id, model = job.wildcards.get("split_id"), job.wildcards.get("model")
-            penalty = job.wildcards.get("penalty", "na")
-            planned = plan.jobs.get((split_id, model, penalty))
-            family = json.loads(planned.params_json)["model"]["family"] if planned else "?"
+            split_id, model = job.wildcards.get("split_id"), job.wildcards.get("model", BASELINES)
+            planned = plan.jobs.get((split_id, model))
+            families = sorted({u["job"]["model"]["family"] for u in planned.units}) if planned else ["?"]
             cities = plan.split_cities(split_id) if split_id in plan.splits else []
             if split_id in new_splits:
                 reasons["new splits"].add(key)
                 continue
             if "Missing output" in job.reason:
-                reasons[f"never trained: model {model}, penalty {penalty}"].add(key)
+                reasons[f"never trained: model {model}"].add(key)
                 continue
             if "Params have changed" in job.reason and planned is not None:
                 old = stored_params(stored_metadata(root, job.output[0]))
                 if planned.code_digest not in old:
-                    reasons[f"code of {family} (or the shared training code) changed"].add(key)
+                    reasons[f"code of {', '.join(families)} (or the shared training code) changed"].add(key)
                 if planned.params_json not in old:
-                    for section in _job_slice_change(old, planned.params_json):
-                        label = {"model": f"hyperparameters of model {model} changed",
+                    for unit_model, penalty, section in unit_changes(old, planned.params_json):
+                        label = {"model": f"hyperparameters of model {unit_model} changed",
                                  "penalty": f"settings of penalty {penalty} changed"}.get(
                             section, f"{section} settings changed")
                         reasons[label].add(key)

@@ -60,8 +60,9 @@ def family_module_file(family: str) -> str:
     return str(Path(module.__file__).resolve().relative_to(PACKAGE_DIR))
 
 
-def training_code_digest(family: str) -> str:
-    return source_digest([*TRAINING_CORE, family_module_file(family)])
+def training_code_digest(families: list[str]) -> str:
+    """Digest of the shared training code plus the files defining these families."""
+    return source_digest([*TRAINING_CORE, *(family_module_file(f) for f in families)])
 
 
 def git_state(root: Path | str = PACKAGE_DIR.parent) -> dict:

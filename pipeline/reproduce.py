@@ -15,7 +15,7 @@ import struct
 import tempfile
 from pathlib import Path
 
-from pipeline import audit, provenance, tracking
+from pipeline import audit, provenance
 from pipeline.errors import InputError
 
 SCRATCH_SUFFIX = "-reproduce"
@@ -58,14 +58,15 @@ def retrain(client, run, uri: str, root: Path | str, clean_dir: str, force: bool
     if missing:
         raise InputError("clean table is missing; run ingestion first", file=missing[0])
     name, _ = scratch_experiment(client, run.info.experiment_id)
-    code_now = provenance.training_code_digest(job["model"]["family"])
+    code_now = provenance.training_code_digest([job["model"]["family"]])
     with tempfile.TemporaryDirectory() as workdir:
         split_path = Path(workdir) / "split.json"
         split_path.write_text(json.dumps(split))
-        records = run_train_job(split_path, job, [int(tags["seed"])], [Path(workdir) / "record.json"], uri, name,
-                                code_now, clean_paths=clean_paths, supersede=False)
+        records = run_train_job(split_path, [{"job": job, "seed": int(tags["seed"])}],
+                                [Path(workdir) / "record.json"], uri, name, code_now, clean_paths=clean_paths,
+                                supersede=False, reuse=False)
     return {"record": records[0], "experiment": name, "changed_data": changed,
-            "code_then": tags.get("code_digest"), "code_now": code_now}
+            "code_then": tags.get("family_code_digest", tags.get("code_digest")), "code_now": code_now}
 
 
 def _bits(value: float) -> bytes:

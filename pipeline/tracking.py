@@ -92,6 +92,14 @@ def log_run(client, experiment_id_: str, *, run_name: str, params: dict[str, str
     return run_id
 
 
+def find_current_run(client, experiment_id_: str, unit_digest: str):
+    """A finished, not superseded run logged with this unit digest, or None."""
+    runs = client.search_runs([experiment_id_], filter_string=f"tags.unit_digest = '{unit_digest}'",
+                              max_results=50)
+    current = [r for r in runs if r.info.status == "FINISHED" and SUPERSEDED_TAG not in r.data.tags]
+    return current[0] if current else None
+
+
 def supersede_previous(client, experiment_id_: str, identity: dict[str, str], new_run_id: str) -> list[str]:
     """Tag earlier current runs of the same split/model/penalty/seed as superseded (never deleted)."""
     clauses = [f"tags.{key} = '{identity[key]}'" for key in RUN_IDENTITY_TAGS]

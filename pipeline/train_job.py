@@ -8,6 +8,7 @@ pipeline.config.job_slice plus the tracking URI/experiment handed over by the ru
 
 from __future__ import annotations
 
+import hashlib
 import json
 import tempfile
 import time
@@ -17,6 +18,7 @@ import pandas as pd
 import yaml
 
 from pipeline import provenance, selection, tracking
+from pipeline.config import canonical_json
 from pipeline.atomic import write_json_atomic
 from pipeline.train import history_curves, predictions_frame, run_seed, state_for_saving, station_city_map
 from pipeline.windows import ForecastConfig, build_windows
@@ -37,6 +39,7 @@ def tags_for(split: dict, job: dict, seed: int, code_digest: str) -> dict[str, s
             "target": split["target"], "environment": split["environment"], "model": job["model_name"],
             "family": job["model"]["family"], "penalty": job["penalty_name"], "seed": str(seed),
             "selection_rule": job["selection"]["rule"], "code_digest": code_digest,
+            "family_code_digest": provenance.training_code_digest([job["model"]["family"]]),
             "package_digest": provenance.source_digest(["."])}
     tags.update({f"data_digest.{city}": digest for city, digest in split["input_digests"].items()})
     tags.update({f"git.{k}": v for k, v in provenance.git_state().items()})
@@ -59,40 +62,75 @@ def _artifacts(workdir: Path, job: dict, split: dict, outcome: dict, windows) ->
     return {"config": config_file, "predictions": predictions, "model": weights, "curve": curve}
 
 
-def run_train_job(split_path: Path | str, job: dict, seeds: list[int], record_paths: list[Path | str],
-                  tracking_uri: str, experiment: str, code_digest: str, clean_paths: dict | None = None,
-                  supersede: bool = True) -> list[dict]:
-    """Train every seed; returns the run records (also written to record_paths, one per seed)."""
-    started = time.perf_counter()
-    split, tables = load_inputs(split_path, clean_paths)
-    windows = build_windows(split, tables, ForecastConfig(**job["forecast"]))
-    prepare_seconds = time.perf_counter() - started  # data reading and windowing: real work, once per job
-    station_city = station_city_map(tables)
-    client = tracking.client_for(tracking_uri)
-    experiment_id = tracking.experiment_id(client, experiment)
+def unit_digest(job: dict, seed: int, split: dict) -> str:
+    """Everything a run's result depends on: its config slice, seed, the code of its family and of the
+    shared training path, and the split with its data digests. Equal digests mean a retrain would
+    reproduce the logged run (same machine)."""
+    basis = {"job": job, "seed": seed, "code": provenance.training_code_digest([job["model"]["family"]]),
+             "split": {k: v for k, v in split.items() if k != "inputs"}}
+    return hashlib.sha256(canonical_json(basis).encode()).hexdigest()[:20]
+
+
+def make_record(run_id: str, experiment: str, experiment_id: str, tracking_uri: str, split: dict, job: dict,
+                seed: int, primary_rule: str, metrics: dict, superseded: list[str], reused: bool) -> dict:
+    return {"run_id": run_id, "experiment": experiment, "experiment_id": experiment_id,
+            "tracking_uri": tracking_uri, "split_id": split["split_id"], "sources": split["sources"],
+            "target": split["target"], "model": job["model_name"], "family": job["model"]["family"],
+            "penalty": job["penalty_name"], "seed": seed, "selection_rule": primary_rule,
+            "metrics": {k: metrics.get(k) for k in HEADLINE}, "supersedes": superseded, "reused": reused}
+
+
+def _train_and_log(client, experiment_id: str, unit: dict, split: dict, windows, station_city: dict,
+                   code_digest: str, digest: str, prepare_seconds: float):
+    job, seed = unit["job"], unit["seed"]
+    outcome = run_seed(job, seed, windows, split, station_city)
+    outcome["metrics"]["prepare_seconds"] = prepare_seconds
+    tags = tags_for(split, job, seed, code_digest)
+    tags.update({"selection_label": selection.label(outcome["primary"]), "unit_digest": digest})
     params = tracking.flatten({k: v for k, v in job.items() if k != "model_name"})
     params.update({"n_train_windows": str(len(windows.train.y)), "n_test_windows": str(len(windows.test_target.y))})
+    with tempfile.TemporaryDirectory() as workdir:
+        artifacts = _artifacts(Path(workdir), job, split, outcome, windows)
+        run_name = f"{split['split_id']}/{job['model_name']}/{job['penalty_name']}/{seed}"
+        run_id = tracking.log_run(client, experiment_id, run_name=run_name, params=params,
+                                  metrics=outcome["metrics"], curves=history_curves(outcome["model"].history_),
+                                  tags=tags, artifacts=artifacts)
+    return run_id, outcome["primary"], outcome["metrics"], {k: tags[k] for k in tracking.RUN_IDENTITY_TAGS}
+
+
+def run_train_job(split_path: Path | str, units: list[dict], record_paths: list[Path | str],
+                  tracking_uri: str, experiment: str, code_digest: str, clean_paths: dict | None = None,
+                  supersede: bool = True, reuse: bool = True) -> list[dict]:
+    """Produce every unit's run ({"job": config slice, "seed"}); write one run record per unit.
+
+    With `reuse`, a unit whose digest matches a current finished run is not retrained: its record points
+    at that run. This keeps re-runs minimal inside a job that Snakemake re-runs as a whole (e.g. the
+    split's baselines job after one baseline's hyperparameter changed).
+    """
+    started = time.perf_counter()
+    split, tables = load_inputs(split_path, clean_paths)
+    client = tracking.client_for(tracking_uri)
+    experiment_id = tracking.experiment_id(client, experiment)
+    windows = station_city = prepare_seconds = None
     records = []
-    for seed, record_path in zip(seeds, record_paths):
-        outcome = run_seed(job, seed, windows, split, station_city)
-        outcome["metrics"]["prepare_seconds"] = prepare_seconds
-        tags = tags_for(split, job, seed, code_digest)
-        tags["selection_label"] = selection.label(outcome["primary"])
-        with tempfile.TemporaryDirectory() as workdir:
-            artifacts = _artifacts(Path(workdir), job, split, outcome, windows)
-            run_name = f"{split['split_id']}/{job['model_name']}/{job['penalty_name']}/{seed}"
-            run_id = tracking.log_run(client, experiment_id, run_name=run_name, params=params,
-                                      metrics=outcome["metrics"], curves=history_curves(outcome["model"].history_),
-                                      tags=tags, artifacts=artifacts)
-        superseded = []
-        if supersede:
-            identity = {k: tags[k] for k in tracking.RUN_IDENTITY_TAGS}
-            superseded = tracking.supersede_previous(client, experiment_id, identity, run_id)
-        record = {"run_id": run_id, "experiment": experiment, "experiment_id": experiment_id,
-                  "tracking_uri": tracking_uri, "split_id": split["split_id"], "sources": split["sources"],
-                  "target": split["target"], "model": job["model_name"], "family": job["model"]["family"],
-                  "penalty": job["penalty_name"], "seed": seed, "selection_rule": outcome["primary"],
-                  "metrics": {k: outcome["metrics"].get(k) for k in HEADLINE}, "supersedes": superseded}
+    for unit, record_path in zip(units, record_paths):
+        job, seed = unit["job"], unit["seed"]
+        digest = unit_digest(job, seed, split)
+        found = tracking.find_current_run(client, experiment_id, digest) if reuse else None
+        if found is not None:
+            record = make_record(found.info.run_id, experiment, experiment_id, tracking_uri, split, job, seed,
+                                 found.data.tags.get("selection_rule", job["selection"]["rule"]),
+                                 found.data.metrics, [], reused=True)
+        else:
+            if windows is None:  # built once, and only when something is trained
+                windows = build_windows(split, tables, ForecastConfig(**job["forecast"]))
+                station_city = station_city_map(tables)
+                prepare_seconds = time.perf_counter() - started  # reading and windowing: real work
+            run_id, primary, metrics, identity = _train_and_log(
+                client, experiment_id, unit, split, windows, station_city, code_digest, digest, prepare_seconds)
+            superseded = tracking.supersede_previous(client, experiment_id, identity, run_id) if supersede else []
+            record = make_record(run_id, experiment, experiment_id, tracking_uri, split, job, seed, primary,
+                                 metrics, superseded, reused=False)
         write_json_atomic(record, record_path)
         records.append(record)
     return records

@@ -23,14 +23,21 @@ from pipeline.stations import load_stations
 from pipeline.tracking import resolve_tracking_uri
 
 
+BASELINES = "baselines"  # job key of the one job per split that fits every closed-form family
+
+
 @dataclass
 class TrainJob:
+    """One Snakemake job: a split x gradient-trained model (every penalty and seed), or a split's
+    closed-form baselines. Units are the runs it produces, in the order of the rule's outputs."""
     split_id: str
-    model: str
-    penalty: str
-    seeds: list[int]
-    params_json: str
+    model: str  # sweep model name, or BASELINES
+    units: list[dict]  # {"model", "penalty", "seed", "job": config slice}
     code_digest: str
+
+    @property
+    def params_json(self) -> str:
+        return canonical_json([{"job": u["job"], "seed": u["seed"]} for u in self.units])
 
 
 @dataclass
@@ -40,7 +47,9 @@ class WorkflowPlan:
     root: Path
     cities: list[str]
     splits: dict[str, dict]
-    jobs: dict[tuple[str, str, str], TrainJob] = field(default_factory=dict)
+    jobs: dict[tuple[str, str], TrainJob] = field(default_factory=dict)
+    trainable_models: list[str] = field(default_factory=list)
+    baseline_models: list[str] = field(default_factory=list)
 
     @property
     def results_dir(self) -> str:
@@ -57,11 +66,11 @@ class WorkflowPlan:
         split = self.splits[split_id]
         return sorted(set(split["sources"]) | {split["target"]})
 
-    def run_record(self, job: TrainJob, seed: int) -> str:
-        return f"{self.results_dir}/runs/{job.split_id}/{job.model}/{job.penalty}/{seed}.json"
+    def run_record(self, split_id: str, unit: dict) -> str:
+        return f"{self.results_dir}/runs/{split_id}/{unit['model']}/{unit['penalty']}/{unit['seed']}.json"
 
     def all_run_records(self) -> list[str]:
-        return [self.run_record(job, seed) for job in self.jobs.values() for seed in job.seeds]
+        return [self.run_record(job.split_id, unit) for job in self.jobs.values() for unit in job.units]
 
     def stage_digest(self, stage: str) -> str:
         """Digest of the code one stage runs (ingest, splits, aggregate), passed as a rule param."""
@@ -105,18 +114,30 @@ def plan_workflow(overrides: str | list | None = None, root: Path | str = ".") -
               plan_splits(split_cfg, stations[stations["city"].isin(cities)],
                           cfg.forecast.lookback_hours, cfg.forecast.horizon_hours)}
     plan = WorkflowPlan(cfg=cfg, overrides=overrides, root=root, cities=cities, splits=splits)
+    baseline_units, baseline_families = [], []
     for model_name in cfg.sweep.models:
-        pair_cfg = compose_config([*overrides, f"model={model_name}"], root)
-        trainable = _is_trainable(to_container(pair_cfg.model))
-        penalties = list(cfg.sweep.penalties) if trainable else [NOT_APPLICABLE]
-        seeds = list(cfg.sweep.seeds) if trainable else [0]
-        digest = provenance.training_code_digest(pair_cfg.model.family)
-        for penalty_name in penalties:
-            if penalty_name != NOT_APPLICABLE:
-                pair_cfg = compose_config([*overrides, f"model={model_name}", f"penalty={penalty_name}"], root)
-                validate(pair_cfg)
-            params_json = canonical_json(job_slice(pair_cfg, model_name, penalty_name))
-            for split_id in splits:
-                plan.jobs[(split_id, model_name, penalty_name)] = TrainJob(
-                    split_id, model_name, penalty_name, seeds, params_json, digest)
+        model_cfg = compose_config([*overrides, f"model={model_name}"], root)
+        family = model_cfg.model.family
+        if not _is_trainable(to_container(model_cfg.model)):
+            # Closed-form families take well under a second: one job per split fits them all, so the
+            # ~4 s of process start-up is paid once, not once per family (bench/startup_overhead.py).
+            plan.baseline_models.append(model_name)
+            baseline_families.append(family)
+            baseline_units.append({"model": model_name, "penalty": NOT_APPLICABLE, "seed": 0,
+                                   "job": job_slice(model_cfg, model_name, NOT_APPLICABLE)})
+            continue
+        plan.trainable_models.append(model_name)
+        units = []
+        for penalty_name in cfg.sweep.penalties:
+            pair_cfg = compose_config([*overrides, f"model={model_name}", f"penalty={penalty_name}"], root)
+            validate(pair_cfg)
+            units += [{"model": model_name, "penalty": penalty_name, "seed": seed,
+                       "job": job_slice(pair_cfg, model_name, penalty_name)} for seed in cfg.sweep.seeds]
+        digest = provenance.training_code_digest([family])
+        for split_id in splits:
+            plan.jobs[(split_id, model_name)] = TrainJob(split_id, model_name, units, digest)
+    if baseline_units:
+        digest = provenance.training_code_digest(baseline_families)
+        for split_id in splits:
+            plan.jobs[(split_id, BASELINES)] = TrainJob(split_id, BASELINES, baseline_units, digest)
     return plan

@@ -20,7 +20,7 @@ REPO = Path(__file__).resolve().parents[1]
 
 DRY_RUN = """Building DAG of jobs...
 [Wed Dec  2 02:16:43 2026]
-rule fit_baseline:
+rule fit_baselines:
     input: data/clean/a.parquet, results/splits/pairs-a-to-b-123abc.json
     output: results/runs/pairs-a-to-b-123abc/ridge/na/0.json
     jobid: 10
@@ -41,7 +41,7 @@ rule all:
 Job stats:
 job               count
 --------------  -------
-fit_baseline          1
+fit_baselines          1
 render_report         1
 all                   1
 total                 3
@@ -50,11 +50,11 @@ total                 3
 
 def test_parse_dry_run_reads_rule_wildcards_reason_and_leaves_out_all():
     jobs = outdated.parse_dry_run(DRY_RUN)
-    assert [j.rule for j in jobs] == ["fit_baseline", "render_report"]
+    assert [j.rule for j in jobs] == ["fit_baselines", "render_report"]
     assert jobs[0].wildcards == {"split_id": "pairs-a-to-b-123abc", "model": "ridge"}
     assert jobs[0].output == ["results/runs/pairs-a-to-b-123abc/ridge/na/0.json"]
     assert jobs[0].reason.startswith("Params have changed")
-    assert outdated.count_by_rule(jobs) == {"fit_baseline": 1, "render_report": 1}
+    assert outdated.count_by_rule(jobs) == {"fit_baselines": 1, "render_report": 1}
 
 
 def test_format_status_nothing_to_do():
@@ -66,13 +66,15 @@ def test_stored_params_and_slice_change_name_the_changed_section(tmp_path):
     meta_dir = tmp_path / ".snakemake" / "metadata"
     meta_dir.mkdir(parents=True)
     import base64
-    before = json.dumps({"model_name": "ridge", "model": {"alpha": 1.0}, "trainer": {"lr": 0.1}}, sort_keys=True)
+    def units(alpha):
+        job = {"model_name": "ridge", "penalty_name": "na", "model": {"alpha": alpha}, "trainer": {"lr": 0.1}}
+        return json.dumps([{"job": job, "seed": 0}], sort_keys=True)
+    before = units(1.0)
     (meta_dir / base64.urlsafe_b64encode(output.encode()).decode()).write_text(
         json.dumps({"params": [repr(before), repr("abc123")]}))
     old = outdated.stored_params(outdated.stored_metadata(tmp_path, output))
     assert old == [before, "abc123"]
-    now = json.dumps({"model_name": "ridge", "model": {"alpha": 2.0}, "trainer": {"lr": 0.1}}, sort_keys=True)
-    assert outdated._job_slice_change(old, now) == ["model"]
+    assert outdated.unit_changes(old, units(2.0)) == [("ridge", "na", "model")]
 
 
 def test_raw_content_changed_compares_stored_sha256(tmp_path):

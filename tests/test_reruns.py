@@ -34,7 +34,7 @@ EXPERIMENT = {
     "report": {"bootstrap_samples": 200},
     "tracking": {"experiment": "shiftgrid-rerun"},
 }
-TRAINING = ("train_model", "fit_baseline")
+TRAINING = ("train_model", "fit_baselines")
 
 
 def write_experiment(project: Path, name: str, content: dict) -> None:
@@ -88,9 +88,9 @@ def scheduled(project: Path, overrides: list[str] = OVERRIDES) -> tuple[dict[str
     return counts, jobs
 
 
-def training_jobs(jobs) -> set[tuple[str, str, str]]:
-    return {(j.wildcards["split_id"], j.wildcards["model"], j.wildcards.get("penalty", "na"))
-            for j in jobs if j.rule in TRAINING}
+def training_jobs(jobs) -> set[tuple[str, str]]:
+    """(split, model) of scheduled training jobs; a split's closed-form baselines share one job."""
+    return {(j.wildcards["split_id"], j.wildcards.get("model", "baselines")) for j in jobs if j.rule in TRAINING}
 
 
 def records(project: Path) -> dict[str, dict]:
@@ -138,7 +138,7 @@ def test_base_run_is_complete_and_up_to_date(base, plan):
 
 @pytest.mark.e2e
 def test_show_prints_every_section(base, plan):
-    record = records(base)[plan.run_record(plan.jobs[(split_of(plan, "arlenvik"), "linear", "irm")], 0)]
+    record = records(base)[plan.run_record(split_of(plan, "arlenvik"), {"model": "linear", "penalty": "irm", "seed": 0})]
     shown = shiftgrid(base, "show", record["run_id"], *OVERRIDES)
     assert shown.returncode == 0, shown.stderr
     out = shown.stdout
@@ -156,7 +156,7 @@ def test_show_prints_every_section(base, plan):
 @pytest.mark.e2e
 def test_reproduce_reports_identical_and_touches_no_record(base, plan):
     before = records(base)
-    record = before[plan.run_record(plan.jobs[(split_of(plan, "brumeholt"), "linear", "irm")], 0)]
+    record = before[plan.run_record(split_of(plan, "brumeholt"), {"model": "linear", "penalty": "irm", "seed": 0})]
     again = shiftgrid(base, "reproduce", record["run_id"], *OVERRIDES)
     assert again.returncode == 0, (again.stdout, again.stderr)
     assert "identical" in again.stdout and "timing metrics" in again.stdout
@@ -179,8 +179,8 @@ def test_case3_one_models_hyperparameter_reruns_only_that_model(base, plan):
         status = shiftgrid(base, "status", *OVERRIDES)
     finally:
         path.write_text(original)
-    assert counts == {"fit_baseline": 2, "aggregate_grid": 1, "render_report": 1}
-    assert {model for _, model, _ in training_jobs(jobs)} == {"ridge"}
+    assert counts == {"fit_baselines": 2, "aggregate_grid": 1, "render_report": 1}
+    assert {model for _, model in training_jobs(jobs)} == {"baselines"}  # ridge's job; the others are reused
     assert "hyperparameters of model ridge changed: 2 training jobs" in status.stdout
 
 
@@ -208,8 +208,8 @@ def test_case5_code_of_one_family_reruns_only_that_family(base, plan):
         status = shiftgrid(base, "status", *OVERRIDES)
     finally:
         module.write_bytes(original)
-    assert counts == {"fit_baseline": 2, "aggregate_grid": 1, "render_report": 1}
-    assert {model for _, model, _ in training_jobs(jobs)} == {"persistence"}
+    assert counts == {"fit_baselines": 2, "aggregate_grid": 1, "render_report": 1}
+    assert {model for _, model in training_jobs(jobs)} == {"baselines"}
     assert "code of persistence" in status.stdout
     assert scheduled(base)[0] == {}  # restored source: nothing to do again
 
@@ -221,13 +221,13 @@ def test_case6_new_city_runs_only_the_new_splits(base, plan):
     bigger["split"]["pairs"].append({"sources": ["dunmarrow"], "target": "arlenvik"})
     write_experiment(base, "rerun_plus", bigger)
     counts, jobs = scheduled(base, ["experiment=rerun_plus"])
-    assert counts == {"ingest_city": 1, "build_split": 1, "fit_baseline": 2, "train_model": 2,
+    assert counts == {"ingest_city": 1, "build_split": 1, "fit_baselines": 1, "train_model": 1,
                       "aggregate_grid": 1, "diagnose_shift": 1, "render_report": 1}
     assert [j.wildcards["city"] for j in jobs if j.rule == "ingest_city"] == ["dunmarrow"]
-    new_splits = {split for split, _, _ in training_jobs(jobs)}
+    new_splits = {split for split, _ in training_jobs(jobs)}
     assert len(new_splits) == 1 and new_splits.isdisjoint(plan.splits)
     status = shiftgrid(base, "status", "experiment=rerun_plus")
-    assert "new splits: 1 (4 training jobs)" in status.stdout
+    assert "new splits: 1 (2 training jobs)" in status.stdout
 
 
 @pytest.mark.e2e
@@ -252,7 +252,7 @@ def test_case1_new_rows_rerun_only_splits_of_that_city_and_supersede(base, plan)
     from pipeline.runner import run_pipeline
     from pipeline.tracking import client_for
 
-    touched, other = split_of(plan, "arlenvik"), split_of(plan, "brumeholt")
+    touched = split_of(plan, "arlenvik")
     dump = next((base / "data" / "raw" / "arlenvik").glob("*.csv"))
     table = pd.read_csv(dump, dtype=str)
     times = pd.to_datetime(table["local_time"])
@@ -261,11 +261,11 @@ def test_case1_new_rows_rerun_only_splits_of_that_city_and_supersede(base, plan)
     with open(dump, "a") as handle:
         last_day.to_csv(handle, header=False, index=False)
     counts, jobs = scheduled(base)
-    assert counts == {"ingest_city": 1, "build_split": 1, "fit_baseline": 2, "train_model": 2,
+    assert counts == {"ingest_city": 1, "build_split": 1, "fit_baselines": 1, "train_model": 1,
                       "aggregate_grid": 1, "diagnose_shift": 1, "render_report": 1}
-    assert {split for split, _, _ in training_jobs(jobs)} == {touched}
+    assert {split for split, _ in training_jobs(jobs)} == {touched}
     status = shiftgrid(base, "status", *OVERRIDES)
-    assert "new data for city arlenvik: 4 training jobs" in status.stdout
+    assert "new data for city arlenvik: 2 training jobs" in status.stdout
 
     before = records(base)
     env_before = dict(os.environ)
@@ -292,7 +292,7 @@ def test_case1_new_rows_rerun_only_splits_of_that_city_and_supersede(base, plan)
     listed = shiftgrid(base, "runs", *OVERRIDES, "--superseded", "--format", "json")
     assert {r["run_id"] for r in json.loads(listed.stdout)} == {r["run_id"] for r in before.values()
                                                                 if r["split_id"] == touched}
-    old_id = before[plan.run_record(plan.jobs[(touched, "linear", "erm")], 0)]["run_id"]
+    old_id = before[plan.run_record(touched, {"model": "linear", "penalty": "erm", "seed": 0})]["run_id"]
     shown = shiftgrid(base, "show", old_id, *OVERRIDES)
     assert "SUPERSEDED by run" in shown.stdout and "WARNING: the data of arlenvik changed" in shown.stdout
     refused = shiftgrid(base, "reproduce", old_id, *OVERRIDES)

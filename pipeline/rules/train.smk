@@ -1,15 +1,17 @@
-# Stage 3: one job per split x model x penalty trains every seed (start-up is paid once per job).
-# Families that are not gradient-trained run once per split, penalty "na" (shown as n/a), seed 0.
+# Stage 3: training. One job per split x gradient-trained model runs every penalty and seed of it
+# (start-up is paid once per job); one job per split fits all closed-form baselines (penalty "na",
+# shown as n/a, seed 0). Within a job, a run whose inputs are unchanged is reused from MLflow, so a
+# re-run job retrains only what changed (pipeline.train_job).
 
+PENALTIES = list(PLAN.cfg.sweep.penalties)
 SEEDS = list(PLAN.cfg.sweep.seeds)
 
 
 def job_of(wildcards):
-    penalty = getattr(wildcards, "penalty", "na")  # fit_baseline has no penalty wildcard
-    return PLAN.jobs[(wildcards.split_id, wildcards.model, penalty)]
+    return PLAN.jobs[(wildcards.split_id, getattr(wildcards, "model", "baselines"))]
 
 
-def job_params(wildcards):
+def job_units(wildcards):
     return job_of(wildcards).params_json
 
 
@@ -23,37 +25,35 @@ rule train_model:
         split=f"{RESULTS}/splits/{{split_id}}.json",
         tracking=f"{RESULTS}/tracking.json",
     output:
-        [f"{RESULTS}/runs/{{split_id}}/{{model}}/{{penalty}}/{seed}.json" for seed in SEEDS],
+        [f"{RESULTS}/runs/{{split_id}}/{{model}}/{penalty}/{seed}.json" for penalty in PENALTIES for seed in SEEDS],
     log:
-        f"{RESULTS}/logs/train_model/{{split_id}}/{{model}}/{{penalty}}.log",
+        f"{RESULTS}/logs/train_model/{{split_id}}/{{model}}.log",
     benchmark:
-        f"{RESULTS}/benchmarks/train_model/{{split_id}}/{{model}}/{{penalty}}.tsv"
-    wildcard_constraints:
-        penalty=r"(?!na/)[a-z][a-z0-9_]*",  # "na" belongs to fit_baseline
+        f"{RESULTS}/benchmarks/train_model/{{split_id}}/{{model}}.tsv"
     threads: 1
     params:
-        job=job_params,
+        units=job_units,
         code=job_code,
-        seeds=SEEDS,
     script:
         "../scripts/train_model.py"
 
 
-rule fit_baseline:
-    input:
-        unpack(clean_inputs_of_split),
-        split=f"{RESULTS}/splits/{{split_id}}.json",
-        tracking=f"{RESULTS}/tracking.json",
-    output:
-        f"{RESULTS}/runs/{{split_id}}/{{model}}/na/0.json",
-    log:
-        f"{RESULTS}/logs/fit_baseline/{{split_id}}/{{model}}.log",
-    benchmark:
-        f"{RESULTS}/benchmarks/fit_baseline/{{split_id}}/{{model}}.tsv"
-    threads: 1
-    params:
-        job=job_params,
-        code=job_code,
-        seeds=[0],
-    script:
-        "../scripts/train_model.py"
+if PLAN.baseline_models:
+
+    rule fit_baselines:
+        input:
+            unpack(clean_inputs_of_split),
+            split=f"{RESULTS}/splits/{{split_id}}.json",
+            tracking=f"{RESULTS}/tracking.json",
+        output:
+            [f"{RESULTS}/runs/{{split_id}}/{model}/na/0.json" for model in PLAN.baseline_models],
+        log:
+            f"{RESULTS}/logs/fit_baselines/{{split_id}}.log",
+        benchmark:
+            f"{RESULTS}/benchmarks/fit_baselines/{{split_id}}.tsv"
+        threads: 1
+        params:
+            units=job_units,
+            code=job_code,
+        script:
+            "../scripts/train_model.py"

@@ -1,4 +1,4 @@
-"""Rules train_model / fit_baseline: every seed of one split x model x penalty -> MLflow + run records."""
+"""Rules train_model / fit_baselines: every run of one job -> MLflow runs + run records (output order)."""
 
 import json
 
@@ -9,9 +9,9 @@ from pipeline.train_job import run_train_job
 def work(snakemake):
     tracking = json.loads(open(snakemake.input.tracking).read())
     clean_paths = {k: str(v) for k, v in snakemake.input.items() if k not in ("split", "tracking")}
-    run_train_job(snakemake.input.split, json.loads(snakemake.params.job), list(snakemake.params.seeds),
-                  list(snakemake.output), tracking["tracking_uri"], tracking["experiment"],
-                  snakemake.params.code, clean_paths=clean_paths)
+    run_train_job(snakemake.input.split, json.loads(snakemake.params.units), list(snakemake.output),
+                  tracking["tracking_uri"], tracking["experiment"], snakemake.params.code,
+                  clean_paths=clean_paths)
 
 
 run_step(snakemake, work)  # noqa: F821
