@@ -19,7 +19,7 @@ from collections import Counter, defaultdict
 from dataclasses import dataclass, field
 from pathlib import Path
 
-from pipeline.workflow import BASELINES
+from pipeline.workflow import ALL_SPLITS, BASELINES
 
 TRAINING_RULES = ("train_model", "fit_baselines")
 AGGREGATION_RULES = ("aggregate_grid", "diagnose_shift", "render_report")
@@ -149,11 +149,13 @@ def explain(jobs: list[PlannedJob], plan, root: Path | str) -> list[str]:
     for job in jobs:
         key = tuple(job.output)
         if job.rule in TRAINING_RULES:
-            split_id, model = job.wildcards.get("split_id"), job.wildcards.get("model", BASELINES)
+            split_id = job.wildcards.get("split_id", ALL_SPLITS)
+            model = job.wildcards.get("model", BASELINES)
             planned = plan.jobs.get((split_id, model))
             families = sorted({u["job"]["model"]["family"] for u in planned.units}) if planned else ["?"]
-            cities = plan.split_cities(split_id) if split_id in plan.splits else []
-            if split_id in new_splits:
+            # the baselines job covers every split: it is concerned by every city
+            cities = plan.split_cities(split_id) if split_id in plan.splits else list(plan.cities)
+            if split_id in new_splits or (split_id == ALL_SPLITS and new_splits and "Missing output" in job.reason):
                 reasons["new splits"].add(key)
                 continue
             if "Missing output" in job.reason:

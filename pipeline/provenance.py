@@ -7,6 +7,7 @@ only, changing the training loop re-runs every training job. Reads source files 
 
 from __future__ import annotations
 
+import functools
 import hashlib
 import importlib
 import subprocess
@@ -65,6 +66,7 @@ def training_code_digest(families: list[str]) -> str:
     return source_digest([*TRAINING_CORE, *(family_module_file(f) for f in families)])
 
 
+@functools.lru_cache(maxsize=None)  # one job logs several runs: ask git once
 def git_state(root: Path | str = PACKAGE_DIR.parent) -> dict:
     """Commit and dirty flag of the checkout holding the package code; "unknown" outside git."""
     def run(*args: str) -> str:
@@ -78,6 +80,7 @@ def git_state(root: Path | str = PACKAGE_DIR.parent) -> dict:
     return {"commit": commit, "dirty": str(dirty).lower()}
 
 
+@functools.lru_cache(maxsize=None)
 def package_versions() -> dict[str, str]:
     versions = {"python": sys.version.split()[0]}
     for name in KEY_PACKAGES:

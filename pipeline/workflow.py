@@ -23,21 +23,23 @@ from pipeline.stations import load_stations
 from pipeline.tracking import resolve_tracking_uri
 
 
-BASELINES = "baselines"  # job key of the one job per split that fits every closed-form family
+BASELINES = "baselines"  # model key of the one job that fits every closed-form family on every split
+ALL_SPLITS = "all"  # split key of that job
 
 
 @dataclass
 class TrainJob:
-    """One Snakemake job: a split x gradient-trained model (every penalty and seed), or a split's
-    closed-form baselines. Units are the runs it produces, in the order of the rule's outputs."""
-    split_id: str
+    """One Snakemake job: a split x gradient-trained model (every penalty and seed), or the closed-form
+    baselines of every split. Units are the runs it produces, in the order of the rule's outputs."""
+    split_id: str  # or ALL_SPLITS
     model: str  # sweep model name, or BASELINES
-    units: list[dict]  # {"model", "penalty", "seed", "job": config slice}
+    units: list[dict]  # {"split_id", "model", "penalty", "seed", "job": config slice}
     code_digest: str
 
     @property
     def params_json(self) -> str:
-        return canonical_json([{"job": u["job"], "seed": u["seed"]} for u in self.units])
+        return canonical_json([{"split_id": u["split_id"], "job": u["job"], "seed": u["seed"]}
+                               for u in self.units])
 
 
 @dataclass
@@ -69,8 +71,11 @@ class WorkflowPlan:
     def run_record(self, split_id: str, unit: dict) -> str:
         return f"{self.results_dir}/runs/{split_id}/{unit['model']}/{unit['penalty']}/{unit['seed']}.json"
 
+    def records_of(self, job: TrainJob) -> list[str]:
+        return [self.run_record(unit["split_id"], unit) for unit in job.units]
+
     def all_run_records(self) -> list[str]:
-        return [self.run_record(job.split_id, unit) for job in self.jobs.values() for unit in job.units]
+        return [path for job in self.jobs.values() for path in self.records_of(job)]
 
     def stage_digest(self, stage: str) -> str:
         """Digest of the code one stage runs (ingest, splits, aggregate), passed as a rule param."""
@@ -119,8 +124,9 @@ def plan_workflow(overrides: str | list | None = None, root: Path | str = ".") -
         model_cfg = compose_config([*overrides, f"model={model_name}"], root)
         family = model_cfg.model.family
         if not _is_trainable(to_container(model_cfg.model)):
-            # Closed-form families take well under a second: one job per split fits them all, so the
-            # ~4 s of process start-up is paid once, not once per family (bench/startup_overhead.py).
+            # Closed-form families take well under a second per split: one job fits them all on every
+            # split, so the ~4 s of process start-up is paid once (bench/startup_overhead.py); unchanged
+            # runs inside it are reused, so a re-run retrains only the splits that changed.
             plan.baseline_models.append(model_name)
             baseline_families.append(family)
             baseline_units.append({"model": model_name, "penalty": NOT_APPLICABLE, "seed": 0,
@@ -135,9 +141,10 @@ def plan_workflow(overrides: str | list | None = None, root: Path | str = ".") -
                        "job": job_slice(pair_cfg, model_name, penalty_name)} for seed in cfg.sweep.seeds]
         digest = provenance.training_code_digest([family])
         for split_id in splits:
-            plan.jobs[(split_id, model_name)] = TrainJob(split_id, model_name, units, digest)
-    if baseline_units:
-        digest = provenance.training_code_digest(baseline_families)
-        for split_id in splits:
-            plan.jobs[(split_id, BASELINES)] = TrainJob(split_id, BASELINES, baseline_units, digest)
+            plan.jobs[(split_id, model_name)] = TrainJob(split_id, model_name,
+                                                         [{"split_id": split_id, **u} for u in units], digest)
+    if baseline_units and splits:
+        units = [{"split_id": split_id, **unit} for split_id in splits for unit in baseline_units]
+        plan.jobs[(ALL_SPLITS, BASELINES)] = TrainJob(ALL_SPLITS, BASELINES, units,
+                                                      provenance.training_code_digest(baseline_families))
     return plan

@@ -105,7 +105,8 @@ def write_side_inputs(root: Path) -> tuple[list[Path], list[Path]]:
     for city in CITIES:
         path = root / "data" / "qc" / f"{city}.json"
         path.parent.mkdir(parents=True, exist_ok=True)
-        path.write_text(json.dumps({"rows_read": 1000, "rows_kept": 990, "rows_dropped": {"duplicate": 10},
+        path.write_text(json.dumps({"rows": {"read": 1000, "kept": 990, "dropped": 10,
+                                             "dropped_by_reason": {"exact_duplicate": 10}},
                                     "gaps": {f"{city}_01": {}, f"{city}_02": {}}}))
         qc_paths.append(path)
     for split_id, (sources, target) in SPLITS.items():

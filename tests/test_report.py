@@ -97,3 +97,8 @@ def test_oracle_figure_titles_say_upper_bound(report):
     assert "upper bound" in _all_titles(figures.selection_comparison(summary))
     assert "upper bound" not in _all_titles(figures.grid_heatmap(summary[summary.selection_rule == "source-val"],
                                                                  "source-val"))
+
+
+def test_qc_summary_shows_rows_read_kept_and_drop_reasons(report):
+    for shown in ("<td>1000</td>", "<td>990</td>", "exact_duplicate 10"):
+        assert shown in report["page"]

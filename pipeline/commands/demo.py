@@ -10,6 +10,7 @@ from pathlib import Path
 
 from pipeline.config import compose_config, expand_sweep_overrides, to_container
 from pipeline.errors import InputError
+from pipeline.ingest.qc import summary_row
 from pipeline.runner import run_pipeline
 from pipeline.stations import load_stations
 
@@ -60,11 +61,9 @@ def write_dumps(overrides: list[str], root: Path, days: int | None) -> dict:
 def qc_summary(qc_dir: Path) -> list[str]:
     lines = []
     for path in sorted(qc_dir.glob("*.json")):
-        qc = json.loads(path.read_text())
-        dropped = ", ".join(f"{reason} {count}" for reason, count in sorted(qc.get("rows_dropped", {}).items())
-                            if count) or "none"
-        lines.append(f"  {path.stem:<12} stations {len(qc.get('gaps', {})):>2}  rows read {qc.get('rows_read', 0):>7}"
-                     f"  kept {qc.get('rows_kept', 0):>7}  dropped: {dropped}")
+        row = summary_row(json.loads(path.read_text()))
+        lines.append(f"  {path.stem:<12} stations {row['stations']:>2}  rows read {row['rows read']:>7}  kept "
+                     f"{row['rows kept']:>7}  values flagged {row['values flagged']:>5}  dropped: {row['dropped']}")
     return lines
 
 

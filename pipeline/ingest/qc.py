@@ -69,3 +69,13 @@ def flag_counts(clean: pd.DataFrame, variables) -> dict:
 def top_codes(codes: pd.Series, limit: int = 20) -> dict:
     """The most frequent offending codes with their counts (bounded, so a bad file cannot bloat the report)."""
     return {str(k): int(v) for k, v in codes.value_counts().head(limit).items()}
+
+
+def summary_row(report: dict) -> dict:
+    """One line of a QC report for people: stations, rows read / kept, drops per reason, flagged values."""
+    rows = report["rows"]
+    dropped = ", ".join(f"{reason} {n}" for reason, n in sorted(rows["dropped_by_reason"].items()) if n)
+    flagged = sum(n for counts in report.get("values", {}).values()
+                  for flag, n in counts.items() if flag not in ("ok", "missing"))
+    return {"stations": len(report.get("gaps", {})), "rows read": rows["read"], "rows kept": rows["kept"],
+            "dropped": dropped or "none", "values flagged": flagged}

@@ -20,6 +20,7 @@ import pandas as pd
 
 from pipeline import grid_stats, selection
 from pipeline.commands.demo import CAUTION  # one wording of the caution for the CLI and the report
+from pipeline.ingest.qc import summary_row
 from pipeline.report import figures, shift_data
 from pipeline.report.style import CSS
 
@@ -70,11 +71,7 @@ def setup_section(meta: dict, runs: pd.DataFrame, qc: dict[str, dict], splits: l
                                 "train": " / ".join(s.get("time_blocks", {}).get("train", [])),
                                 "test": " / ".join(s.get("time_blocks", {}).get("test", [])),
                                 "split_id": s["split_id"]} for s in splits])
-    qc_rows = pd.DataFrame([{"city": city, "stations": len(report.get("gaps", {})),
-                             "rows read": report.get("rows_read"), "rows kept": report.get("rows_kept"),
-                             "dropped": ", ".join(f"{reason} {n}" for reason, n in
-                                                  sorted(report.get("rows_dropped", {}).items()) if n) or "none"}
-                            for city, report in sorted(qc.items())])
+    qc_rows = pd.DataFrame([{"city": city, **summary_row(report)} for city, report in sorted(qc.items())])
     parts = [f'<section id="setup"><h2>Setup</h2><dl class="facts">{items}</dl>']
     if not split_rows.empty:
         parts.append(_table(split_rows, "Splits (time blocks: UTC, start inclusive / end exclusive)"))

@@ -1,6 +1,6 @@
 # Stage 3: training. One job per split x gradient-trained model runs every penalty and seed of it
-# (start-up is paid once per job); one job per split fits all closed-form baselines (penalty "na",
-# shown as n/a, seed 0). Within a job, a run whose inputs are unchanged is reused from MLflow, so a
+# (start-up is paid once per job); one job fits the closed-form baselines (penalty "na", shown as n/a,
+# seed 0) on every split. Within a job, a run whose inputs are unchanged is reused from MLflow, so a
 # re-run job retrains only what changed (pipeline.train_job).
 
 PENALTIES = list(PLAN.cfg.sweep.penalties)
@@ -8,7 +8,7 @@ SEEDS = list(PLAN.cfg.sweep.seeds)
 
 
 def job_of(wildcards):
-    return PLAN.jobs[(wildcards.split_id, getattr(wildcards, "model", "baselines"))]
+    return PLAN.jobs[(wildcards.split_id, wildcards.model)]
 
 
 def job_units(wildcards):
@@ -38,22 +38,32 @@ rule train_model:
         "../scripts/train_model.py"
 
 
-if PLAN.baseline_models:
+def baseline_inputs(wildcards):
+    """Every split record and every clean table: the baselines job covers all splits."""
+    return {"splits": [f"{RESULTS}/splits/{split_id}.json" for split_id in PLAN.splits],
+            "clean": [PLAN.clean_path(city) for city in PLAN.cities]}
+
+
+def baselines_job(wildcards):
+    return PLAN.jobs[("all", "baselines")]
+
+
+if ("all", "baselines") in PLAN.jobs:
 
     rule fit_baselines:
         input:
-            unpack(clean_inputs_of_split),
-            split=f"{RESULTS}/splits/{{split_id}}.json",
+            unpack(baseline_inputs),
             tracking=f"{RESULTS}/tracking.json",
         output:
-            [f"{RESULTS}/runs/{{split_id}}/{model}/na/0.json" for model in PLAN.baseline_models],
+            PLAN.records_of(PLAN.jobs[("all", "baselines")]),
         log:
-            f"{RESULTS}/logs/fit_baselines/{{split_id}}.log",
+            f"{RESULTS}/logs/fit_baselines.log",
         benchmark:
-            f"{RESULTS}/benchmarks/fit_baselines/{{split_id}}.tsv"
+            f"{RESULTS}/benchmarks/fit_baselines.tsv"
         threads: 1
         params:
-            units=job_units,
-            code=job_code,
+            units=PLAN.jobs[("all", "baselines")].params_json,
+            code=PLAN.jobs[("all", "baselines")].code_digest,
+            results=RESULTS,
         script:
-            "../scripts/train_model.py"
+            "../scripts/fit_baselines.py"

@@ -1,0 +1,27 @@
+"""Rule fit_baselines: the closed-form families on every split -> MLflow runs + run records.
+
+Units are grouped by split; each split's units go through the same training job code as train_model,
+with unchanged runs reused (so new data for one city retrains only the baselines of its splits).
+"""
+
+import json
+from pathlib import Path
+
+from pipeline.scripts._step import run_step
+from pipeline.train_job import run_train_job
+
+
+def work(snakemake):
+    tracking = json.loads(open(snakemake.input.tracking).read())
+    units = json.loads(snakemake.params.units)
+    outputs = list(snakemake.output)
+    by_split: dict[str, list[int]] = {}
+    for index, unit in enumerate(units):
+        by_split.setdefault(unit["split_id"], []).append(index)
+    for split_id, indices in by_split.items():
+        split_path = Path(snakemake.params.results) / "splits" / f"{split_id}.json"
+        run_train_job(split_path, [units[i] for i in indices], [outputs[i] for i in indices],
+                      tracking["tracking_uri"], tracking["experiment"], snakemake.params.code)
+
+
+run_step(snakemake, work)  # noqa: F821
