@@ -11,10 +11,9 @@ from __future__ import annotations
 import json
 from pathlib import Path
 
-from pipeline import grid_stats, selection
-from pipeline.config import compose_config, expand_sweep_overrides
+from pipeline import selection
 from pipeline.report import shift_data
-from pipeline.stations import load_stations
+from pipeline.workflow import plan_workflow
 
 
 def add_arguments(parser) -> None:
@@ -26,10 +25,10 @@ def add_arguments(parser) -> None:
 
 def run(args) -> int:
     root = Path(args.root)
-    cfg = compose_config(expand_sweep_overrides(args.overrides), root)
+    plan = plan_workflow(args.overrides, root)  # the study's cities (split.cities restricts them)
+    cfg = plan.cfg
     stations_path = root / cfg.data.stations
-    cities = sorted(load_stations(stations_path)["city"].unique())
-    clean = {city: root / cfg.data.clean_dir / f"{city}.parquet" for city in cities}
+    clean = {city: root / plan.clean_path(city) for city in plan.cities}
     shift = shift_data.compute_shift(clean, stations_path, exclude=list(cfg.forecast.exclude_features))
     correlation = None
     grid_path = root / cfg.results_dir / "grid.parquet"
@@ -53,8 +52,7 @@ def run(args) -> int:
 
 
 def format_table(shift, correlation: dict | None) -> str:
-    lines = ["pairwise city shift on standardised features (energy distance, mean Wasserstein-1) "
-             "and centroid distance",
+    lines = ["pairwise city shift on standardised features: energy distance, mean Wasserstein-1, km",
              f"  {'city A':<14} {'city B':<14} {'energy':>8} {'wasserst.':>9} {'km':>8} {'rows A':>8} {'rows B':>8}"]
     for row in shift.sort_values("energy_distance").itertuples():
         lines.append(f"  {row.city_a[:14]:<14} {row.city_b[:14]:<14} {row.energy_distance:>8.3f} "
@@ -62,8 +60,8 @@ def format_table(shift, correlation: dict | None) -> str:
     if correlation is None:
         lines.append("no grid yet: run the pipeline to relate target error to shift")
     else:
-        lines.append(f"Spearman rho between target {correlation['metric']} ({grid_stats.direction_text(correlation['metric'])}; "
-                     f"mean over model+penalty) and mean source-target {correlation['measure']}: "
-                     f"{correlation['rho']:.3f} (p = {correlation['p_value']:.3g}, {correlation['n_splits']} splits; "
-                     f"selection: {correlation['selection']})")
+        lines.append(f"Spearman rho, target {correlation['metric']} (mean over model+penalty) vs mean "
+                     f"source-target {correlation['measure']}:")
+        lines.append(f"  {correlation['rho']:.3f} (p = {correlation['p_value']:.3g}, {correlation['n_splits']} "
+                     f"splits; selection: {correlation['selection']})")
     return "\n".join(lines)
