@@ -60,7 +60,7 @@ def format_table(shift, correlation: dict | None) -> str:
     if correlation is None:
         lines.append("no grid yet: run the pipeline to relate target error to shift")
     else:
-        lines.append(f"Spearman rho, target {correlation['metric']} (mean over model+penalty) vs mean "
+        lines.append(f"Spearman rho, {correlation['metric']} (mean over model+penalty) vs mean "
                      f"source-target {correlation['measure']}:")
         lines.append(f"  {correlation['rho']:.3f} (p = {correlation['p_value']:.3g}, {correlation['n_splits']} "
                      f"splits; selection: {correlation['selection']})")
