@@ -7,12 +7,11 @@ experiment runs the real DAG once (`shiftgrid demo` + `shiftgrid run`) the first
 
 from __future__ import annotations
 
-import shutil
-import subprocess
 import sys
 from pathlib import Path
 
-REPO = Path(__file__).resolve().parents[1]
+sys.path.insert(0, str(Path(__file__).resolve().parent))
+from project_copy import REPO, make_project, shiftgrid  # noqa: E402,F401
 # Small and fast: 28 days per station, the models that learn, one seed.
 SEM_TEST_OVERRIDES = ["data.generator.days=28", "sweep.models=[ridge,linear]", "sweep.seeds=[0]",
                       "report.bootstrap_samples=100"]
@@ -21,17 +20,6 @@ _finished: dict[str, Path] = {}
 _project: list[Path] = []
 
 
-def shiftgrid(project: Path, *args: str) -> subprocess.CompletedProcess:
-    return subprocess.run([sys.executable, "-m", "pipeline.cli", "--root", str(project), *args],
-                          capture_output=True, text=True, timeout=900)
-
-
-def make_project(folder: Path) -> Path:
-    shutil.copytree(REPO / "config", folder / "config")
-    shutil.copy(REPO / "Snakefile", folder / "Snakefile")
-    shutil.copytree(REPO / "pipeline" / "rules", folder / "pipeline" / "rules")
-    shutil.copytree(REPO / "pipeline" / "scripts", folder / "pipeline" / "scripts")
-    return folder
 
 
 def sem_results(tmp_path_factory, experiment: str) -> tuple[Path, Path]:

@@ -5,30 +5,20 @@ data/ or results/ is touched. Marked e2e: `make test` runs it; `make test-fast` 
 """
 
 import json
-import shutil
-import subprocess
 import sys
 from pathlib import Path
 
 import pytest
 
-REPO = Path(__file__).resolve().parents[1]
+sys.path.insert(0, str(Path(__file__).resolve().parent))
+from project_copy import make_project, shiftgrid  # noqa: E402
+
 OVERRIDES = ["experiment=tiny"]
 
 
 @pytest.fixture(scope="module")
 def project(tmp_path_factory) -> Path:
-    folder = tmp_path_factory.mktemp("project")
-    shutil.copytree(REPO / "config", folder / "config")
-    shutil.copy(REPO / "Snakefile", folder / "Snakefile")
-    shutil.copytree(REPO / "pipeline" / "rules", folder / "pipeline" / "rules")
-    shutil.copytree(REPO / "pipeline" / "scripts", folder / "pipeline" / "scripts")
-    return folder
-
-
-def shiftgrid(project: Path, *args: str) -> subprocess.CompletedProcess:
-    return subprocess.run([sys.executable, "-m", "pipeline.cli", "--root", str(project), *args],
-                          capture_output=True, text=True, timeout=900)
+    return make_project(tmp_path_factory.mktemp("project"))
 
 
 @pytest.fixture(scope="module")

@@ -4,34 +4,29 @@ Raw dumps are written first with `shiftgrid demo --days 2` into a temporary proj
 only needs the files to exist), then `snakemake -n` is run once per experiment.
 """
 
-import shutil
-import subprocess
 import sys
 from pathlib import Path
 
 import pytest
 
-from pipeline.runner import dry_run
-from pipeline.workflow import plan_workflow
+sys.path.insert(0, str(Path(__file__).resolve().parent))
+from project_copy import REPO, make_project, shiftgrid  # noqa: E402
 
-REPO = Path(__file__).resolve().parents[1]
+from pipeline.runner import dry_run  # noqa: E402
+from pipeline.workflow import plan_workflow  # noqa: E402
+
 EXPERIMENTS = sorted(p.stem for p in (REPO / "config" / "experiment").glob("*.yaml"))
 
 
 @pytest.fixture(scope="module")
 def project(tmp_path_factory) -> Path:
-    folder = tmp_path_factory.mktemp("dry")
-    shutil.copytree(REPO / "config", folder / "config")
-    shutil.copy(REPO / "Snakefile", folder / "Snakefile")
-    shutil.copytree(REPO / "pipeline" / "rules", folder / "pipeline" / "rules")
-    shutil.copytree(REPO / "pipeline" / "scripts", folder / "pipeline" / "scripts")
+    folder = make_project(tmp_path_factory.mktemp("dry"))
     written = set()
     for experiment in EXPERIMENTS:
         raw_dir = plan_workflow([f"experiment={experiment}"], folder).cfg.data.raw_dir
         if raw_dir in written and experiment != "airports":
             continue
-        result = subprocess.run([sys.executable, "-m", "pipeline.cli", "--root", str(folder), "demo", "--days", "2",
-                                 f"experiment={experiment}"], capture_output=True, text=True, timeout=300)
+        result = shiftgrid(folder, "demo", "--days", "2", f"experiment={experiment}", timeout=300)
         assert result.returncode == 0, result.stderr[-2000:]
         written.add(raw_dir)
     return folder

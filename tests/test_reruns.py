@@ -11,7 +11,6 @@ copy, not in the repository: the digest the Snakefile computes is then the real 
 import hashlib
 import json
 import os
-import shutil
 import subprocess
 import sys
 from pathlib import Path
@@ -19,7 +18,10 @@ from pathlib import Path
 import pandas as pd
 import pytest
 
-from pipeline.outdated import count_by_rule, parse_dry_run
+sys.path.insert(0, str(Path(__file__).resolve().parent))
+from project_copy import make_project  # noqa: E402
+
+from pipeline.outdated import count_by_rule, parse_dry_run  # noqa: E402
 
 REPO = Path(__file__).resolve().parents[1]
 OVERRIDES = ["experiment=rerun"]
@@ -106,10 +108,7 @@ def sha256(path: Path) -> str:
 
 @pytest.fixture(scope="module")
 def base(tmp_path_factory) -> Path:
-    project = tmp_path_factory.mktemp("rerun")
-    shutil.copytree(REPO / "config", project / "config")
-    shutil.copy(REPO / "Snakefile", project / "Snakefile")
-    shutil.copytree(REPO / "pipeline", project / "pipeline", ignore=shutil.ignore_patterns("__pycache__"))
+    project = make_project(tmp_path_factory.mktemp("rerun"), whole_package=True)
     write_experiment(project, "rerun", EXPERIMENT)
     written = shiftgrid(project, "demo", *OVERRIDES)
     assert written.returncode == 0, written.stderr[-3000:]
