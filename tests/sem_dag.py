@@ -11,7 +11,7 @@ import sys
 from pathlib import Path
 
 sys.path.insert(0, str(Path(__file__).resolve().parent))
-from project_copy import REPO, make_project, shiftgrid  # noqa: E402,F401
+from project_copy import REPO, make_project, shiftgrid  # noqa: E402,F401 (REPO: re-exported for the SEM tests)
 # Small and fast: 28 days per station, the models that learn, one seed.
 SEM_TEST_OVERRIDES = ["data.generator.days=28", "sweep.models=[ridge,linear]", "sweep.seeds=[0]",
                       "report.bootstrap_samples=100"]
