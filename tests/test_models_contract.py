@@ -1,7 +1,9 @@
 """One contract test for every model family (scikit-learn's habit: a generic check run against every
 estimator), plus exact values for the baselines and reference-library checks for ridge and VAR."""
 
-from dataclasses import dataclass, fields
+import sys
+from dataclasses import fields
+from pathlib import Path
 
 import numpy as np
 import pytest
@@ -13,6 +15,9 @@ from pipeline.models import MODEL_FAMILIES, NotFittedError, build_model
 from pipeline.penalties import PENALTY_NAMES, build_penalty
 from pipeline.train_loop import TrainerConfig
 
+sys.path.insert(0, str(Path(__file__).resolve().parent))
+from tiny_windows import TinyWindows  # noqa: E402
+
 torch.set_num_threads(1)
 
 FAST = TrainerConfig(max_steps=6, batch_size=16, eval_every=3, patience=8)
@@ -20,16 +25,6 @@ TRAINABLE = [name for name, cls in MODEL_FAMILIES.items() if cls.trainable]
 EXPECTED_FAMILIES = {"persistence", "seasonal_naive", "ridge", "var", "linear", "mlp", "lstm", "gru",
                      "transformer"}
 
-
-@dataclass
-class TinyWindows:
-    """Just the WindowSet attributes the models use (duck typing keeps the tests independent)."""
-
-    X: np.ndarray
-    y: np.ndarray
-    env: np.ndarray
-    env_names: list
-    target_index: int = 0
 
 
 def make_windows(n_per_env=30, lookback=24, n_features=3, horizon=4, seed=0) -> TinyWindows:

@@ -1,6 +1,7 @@
 """The shared training loop: balanced batches, bitwise determinism, early stopping, warm-up, evaluation."""
 
-from dataclasses import dataclass
+import sys
+from pathlib import Path
 
 import numpy as np
 import pytest
@@ -14,16 +15,10 @@ from pipeline.penalties import ERMPenalty, build_penalty
 from pipeline.train_loop import (EnvironmentBalancedSampler, TrainerConfig, predict_network,
                                  train_network)
 
+sys.path.insert(0, str(Path(__file__).resolve().parent))
+from tiny_windows import TinyWindows  # noqa: E402
+
 torch.set_num_threads(1)
-
-
-@dataclass
-class TinyWindows:
-    X: np.ndarray
-    y: np.ndarray
-    env: np.ndarray
-    env_names: list
-    target_index: int = 0
 
 
 def make_windows(sizes=(60, 20, 5), lookback=6, n_features=2, horizon=3, seed=0) -> TinyWindows:
