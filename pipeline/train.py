@@ -1,10 +1,10 @@
-"""One training job: every seed of one split x model x penalty, evaluated, logged to MLflow, recorded.
+"""Fitting and evaluating one run: a model of one config slice and seed on one split's windows.
 
-Reads the split record (results/splits/<split_id>.json), the clean Parquet of the split's cities and the
-job's config slice (pipeline.config.job_slice: model, penalty, trainer, selection, forecast, metrics).
-Writes one MLflow run per seed (params, metrics, tags, artifacts) and one run record per seed
-(results/runs/<split_id>/<model>/<penalty>/<seed>.json). Seeds share one process so the ~3 s of imports
-and MLflow connection are paid once per job, not per run (STACK-NOTES).
+Pure computation (no files, no MLflow): pipeline.train_job reads the inputs, calls `run_seed` for every
+unit of a job and logs the outcome. Obeys the job slice (pipeline.config.job_slice): model, penalty,
+trainer, selection (rule + also: every rule's checkpoint is evaluated), forecast, metrics.
+Metrics are computed in the target's canonical units on the target test block, plus the source test
+block per environment (worst-environment risk, in-distribution vs target gap).
 """
 
 from __future__ import annotations
