@@ -12,13 +12,13 @@ from __future__ import annotations
 
 import ast
 import base64
-import hashlib
 import json
 import re
 from collections import Counter, defaultdict
 from dataclasses import dataclass, field
 from pathlib import Path
 
+from pipeline.provenance import file_digest
 from pipeline.workflow import ALL_SPLITS, BASELINES
 
 TRAINING_RULES = ("train_model", "fit_baselines")
@@ -93,7 +93,7 @@ def raw_content_changed(meta: dict | None, root: Path | str) -> list[str]:
     changed = []
     for path, checksum in stored.items():
         file = Path(root) / path
-        now = "sha256:" + hashlib.sha256(file.read_bytes()).hexdigest() if file.exists() else None
+        now = "sha256:" + file_digest(file) if file.exists() else None
         if now != checksum:
             changed.append(path)
     return changed

@@ -21,17 +21,16 @@ import hashlib
 import itertools
 import json
 import math
-import os
-import tempfile
 from collections.abc import Mapping, Sequence
 from dataclasses import asdict, dataclass, field, fields
-from pathlib import Path
 from typing import Any, Dict, List, Optional
 
 import pandas as pd
 
+from pipeline.atomic import write_json_atomic
 from pipeline.errors import InputError
 from pipeline.geo import cluster_stations
+from pipeline.provenance import file_digest
 
 SCHEMES = ("loco", "pairs", "subsets", "within")  # also the de-duplication precedence
 ENVIRONMENT_UNITS = ("city", "station", "cluster")
@@ -321,14 +320,6 @@ def admitted_target_block(time_blocks: dict, fraction: float) -> list[str] | Non
     return [_hour(end - pd.Timedelta(hours=hours)), _hour(end)]
 
 
-def _sha256_file(path) -> str:
-    digest = hashlib.sha256()
-    with open(path, "rb") as handle:
-        for chunk in iter(lambda: handle.read(1 << 20), b""):
-            digest.update(chunk)
-    return digest.hexdigest()
-
-
 def build_split(plan_item: dict, clean_paths: dict, lookback: int, horizon: int) -> dict:
     """The plan item plus time_blocks, admitted_target_block, input_digests and inputs."""
     split_id = plan_item.get("split_id", "?")
@@ -344,7 +335,7 @@ def build_split(plan_item: dict, clean_paths: dict, lookback: int, horizon: int)
             raise InputError(f"{split_id}: no clean table given for city {city!r}", field="clean_paths")
         path = clean_paths[city]
         ranges.append(_city_time_range(path, sorted(station_ids)))
-        inputs[city], digests[city] = str(path), _sha256_file(path)
+        inputs[city], digests[city] = str(path), file_digest(path)
     start, end = max(r[0] for r in ranges), min(r[1] for r in ranges)
     time_blocks = compute_time_blocks(start, end, plan_item["blocks"], gap, lookback + horizon,
                                       what=f"{split_id} (cities {', '.join(cities)})")
@@ -355,14 +346,4 @@ def build_split(plan_item: dict, clean_paths: dict, lookback: int, horizon: int)
 
 def write_split(record: dict, path) -> None:
     """Write `record` as JSON (sorted keys) atomically: a temp file in the same folder, then os.replace."""
-    path = Path(path)
-    path.parent.mkdir(parents=True, exist_ok=True)
-    handle, temp = tempfile.mkstemp(dir=path.parent, prefix=f".{path.name}.", suffix=".tmp")
-    try:
-        with os.fdopen(handle, "w") as out:
-            json.dump(record, out, sort_keys=True, indent=2)
-            out.write("\n")
-        os.replace(temp, path)
-    except BaseException:
-        Path(temp).unlink(missing_ok=True)
-        raise
+    write_json_atomic(record, path)

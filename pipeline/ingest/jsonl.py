@@ -11,7 +11,8 @@ import json
 import pandas as pd
 
 from pipeline.errors import InputError
-from pipeline.ingest.raw import RawTable, file_digest
+from pipeline.ingest.raw import RawTable
+from pipeline.provenance import file_digest
 
 
 def _lookup(record: dict, dotted: str):

@@ -7,8 +7,14 @@ Reads the files matched by the format key `files`; writes nothing. Obeys `statio
 
 import pandas as pd
 
-from pipeline.ingest.raw import (RawTable, file_digest, read_csv_text, require_columns, time_columns,
-                                 time_text)
+from pipeline.ingest.raw import (
+    RawTable,
+    read_csv_text,
+    require_columns,
+    time_columns,
+    time_text,
+)
+from pipeline.provenance import file_digest
 
 
 def read(paths: list, spec: dict) -> RawTable:

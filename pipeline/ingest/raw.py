@@ -7,7 +7,6 @@ is flagged later instead of failing the whole file); writes nothing. Obeys the f
 Line numbers are as an editor shows them: the first line of the file is line 1.
 """
 
-import hashlib
 from dataclasses import dataclass, field
 from pathlib import Path
 
@@ -31,10 +30,6 @@ class RawTable:
     long: bool
     files: list[dict] = field(default_factory=list)
     pre_dropped: dict[str, int] = field(default_factory=dict)
-
-
-def file_digest(path: Path) -> str:
-    return hashlib.sha256(Path(path).read_bytes()).hexdigest()
 
 
 def read_csv_text(path: Path, spec: dict) -> tuple[pd.DataFrame, int]:
