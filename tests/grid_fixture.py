@@ -124,3 +124,17 @@ def shift_table() -> pd.DataFrame:
                          "energy_distance": [0.2, 0.5, 0.9], "mean_wasserstein": [0.1, 0.3, 0.4],
                          "geo_km": [30.0, 55.0, 70.0], "n_rows_a": [100, 100, 100], "n_rows_b": [100, 100, 100],
                          "variables": ["pm25,temp_c"] * 3})
+
+
+def build_report(root: Path, report_cfg: dict, n_boot: int) -> tuple[str, Path]:
+    """The whole fixture (store, grid, QC, splits, shift) rendered to root/results/report.html."""
+    from pipeline.aggregate import aggregate
+    from pipeline.report.html import render_report
+
+    records, _ = build_grid_store(root)
+    aggregate(records, root / "results", metric="mae", n_boot=n_boot)
+    qc_paths, split_paths = write_side_inputs(root)
+    shift_table().to_csv(root / "results" / "shift.csv", index=False)
+    out = root / "results" / "report.html"
+    page = render_report(root / "results", out, report_cfg, qc_paths, split_paths, root / "results" / "shift.csv")
+    return page, out

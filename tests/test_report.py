@@ -8,12 +8,10 @@ import matplotlib.pyplot as plt
 import pandas as pd
 import pytest
 
-from grid_fixture import build_grid_store, shift_table, write_side_inputs
+from grid_fixture import build_report
 from pipeline import selection
-from pipeline.aggregate import aggregate
 from pipeline.commands.demo import CAUTION
 from pipeline.report import figures
-from pipeline.report.html import render_report
 
 ORACLE_LABEL = selection.label("target-oracle")
 
@@ -21,14 +19,8 @@ ORACLE_LABEL = selection.label("target-oracle")
 @pytest.fixture(scope="module")
 def report(tmp_path_factory):
     root = tmp_path_factory.mktemp("report")
-    records, _ = build_grid_store(root)
-    aggregate(records, root / "results", metric="mae", n_boot=200)
-    qc_paths, split_paths = write_side_inputs(root)
-    shift_table().to_csv(root / "results" / "shift.csv", index=False)
-    out = root / "results" / "report.html"
-    page = render_report(root / "results", out, {"selection": "source-val", "figure_dpi": 60, "top_rows": 5,
-                                                  "title": "grid test"}, qc_paths, split_paths,
-                         root / "results" / "shift.csv")
+    page, out = build_report(root, {"selection": "source-val", "figure_dpi": 60, "top_rows": 5,
+                                    "title": "grid test"}, n_boot=200)
     return {"root": root, "page": page, "path": out}
 
 

@@ -14,9 +14,7 @@ from pathlib import Path
 
 import pytest
 
-from grid_fixture import build_grid_store, shift_table, write_side_inputs
-from pipeline.aggregate import aggregate
-from pipeline.report.html import render_report
+from grid_fixture import build_report
 
 CHROMIUM = Path("/usr/bin/chromium")
 FLAGS = ["--headless", "--no-sandbox", "--disable-gpu", "--disable-background-networking", "--no-first-run",
@@ -43,13 +41,7 @@ window.addEventListener("load", () => {
 def report_path(tmp_path_factory):
     if not CHROMIUM.exists():
         pytest.skip("headless Chromium test skipped: /usr/bin/chromium is absent (apt-get install -y chromium)")
-    root = tmp_path_factory.mktemp("browser")
-    records, _ = build_grid_store(root)
-    aggregate(records, root / "results", metric="mae", n_boot=100)
-    qc_paths, split_paths = write_side_inputs(root)
-    shift_table().to_csv(root / "results" / "shift.csv", index=False)
-    out = root / "results" / "report.html"
-    render_report(root / "results", out, {"figure_dpi": 50}, qc_paths, split_paths, root / "results" / "shift.csv")
+    _, out = build_report(tmp_path_factory.mktemp("browser"), {"figure_dpi": 50}, n_boot=100)
     return out
 
 

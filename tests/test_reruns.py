@@ -97,6 +97,17 @@ def training_jobs(jobs) -> set[tuple[str, str]]:
             for j in jobs if j.rule in TRAINING}
 
 
+def scheduled_while_edited(base: Path, path: Path, edited: bytes):
+    """(job counts, jobs, `shiftgrid status` result) while `path` holds `edited`; the file is restored after."""
+    original = path.read_bytes()
+    path.write_bytes(edited)
+    try:
+        counts, jobs = scheduled(base)
+        return counts, jobs, shiftgrid(base, "status", *OVERRIDES)
+    finally:
+        path.write_bytes(original)
+
+
 def records(project: Path) -> dict[str, dict]:
     return {str(p.relative_to(project)): json.loads(p.read_text())
             for p in sorted((project / "results" / "runs").rglob("*.json"))}
@@ -173,13 +184,7 @@ def test_reproduce_reports_identical_and_touches_no_record(base, plan):
 @pytest.mark.e2e
 def test_case3_one_models_hyperparameter_reruns_only_that_model(base, plan):
     path = base / "config" / "model" / "ridge.yaml"
-    original = path.read_text()
-    path.write_text(original.replace("alpha: 1.0", "alpha: 3.0"))
-    try:
-        counts, jobs = scheduled(base)
-        status = shiftgrid(base, "status", *OVERRIDES)
-    finally:
-        path.write_text(original)
+    counts, jobs, status = scheduled_while_edited(base, path, path.read_bytes().replace(b"alpha: 1.0", b"alpha: 3.0"))
     assert counts == {"fit_baselines": 1, "aggregate_grid": 1, "render_report": 1}
     assert {model for _, model in training_jobs(jobs)} == {"baselines"}  # ridge's job; the others are reused
     assert "hyperparameters of model ridge changed: 1 training jobs" in status.stdout
@@ -202,13 +207,8 @@ def test_case5_code_of_one_family_reruns_only_that_family(base, plan):
     # persistence lives in baselines.py; ridge and linear live elsewhere (the digest is per module file)
     assert provenance.family_module_file("persistence") != provenance.family_module_file("linear")
     module = base / "pipeline" / provenance.family_module_file("persistence")
-    original = module.read_bytes()
-    module.write_bytes(original + b"\n# a comment changes the source digest\n")
-    try:
-        counts, jobs = scheduled(base)
-        status = shiftgrid(base, "status", *OVERRIDES)
-    finally:
-        module.write_bytes(original)
+    counts, jobs, status = scheduled_while_edited(base, module,
+                                                  module.read_bytes() + b"\n# a comment changes the source digest\n")
     assert counts == {"fit_baselines": 1, "aggregate_grid": 1, "render_report": 1}
     assert {model for _, model in training_jobs(jobs)} == {"baselines"}
     assert "code of persistence" in status.stdout
