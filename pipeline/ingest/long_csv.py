@@ -7,13 +7,7 @@ Reads the files matched by the format key `files`; writes nothing. Obeys `statio
 
 import pandas as pd
 
-from pipeline.ingest.raw import (
-    RawTable,
-    read_csv_text,
-    require_columns,
-    time_columns,
-    time_text,
-)
+from pipeline.ingest.raw import RawTable, read_csv_text, require_columns, time_columns, time_text
 from pipeline.provenance import file_digest
 
 

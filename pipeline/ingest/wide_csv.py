@@ -7,13 +7,7 @@ A semicolon-separated file with decimal commas is this layout with separator ";"
 
 import pandas as pd
 
-from pipeline.ingest.raw import (
-    RawTable,
-    read_csv_text,
-    require_columns,
-    time_columns,
-    time_text,
-)
+from pipeline.ingest.raw import RawTable, read_csv_text, require_columns, time_columns, time_text
 from pipeline.provenance import file_digest
 
 
