@@ -16,9 +16,9 @@ DATA = Path(__file__).parent / "data"
 STATIONS = load_stations(DATA / "stations_small.csv")
 
 SEMICOLON = {"layout": "wide_csv", "files": "semitown/*.csv", "separator": ";", "decimal": ",",
-             "station_column": "Messstelle", "station_map": {"C1": "c1"},
-             "time": {"column": "Zeit", "format": "%d.%m.%Y %H:%M", "timezone": "Etc/GMT-1", "label": "end"},
-             "columns": {"PM25": "pm25", "LT": "temp_c", "WG": "wind_speed_ms"},
+             "station_column": "XSK", "station_map": {"C1": "c1"},
+             "time": {"column": "XTK", "format": "%d.%m.%Y %H:%M", "timezone": "Etc/GMT-1", "label": "end"},
+             "columns": {"PM25": "pm25", "T7": "temp_c", "W7": "wind_speed_ms"},
              "units": {"pm25": "ug/m3", "temp_c": "degC", "wind_speed_ms": "km/h"}, "sentinels": [-99]}
 LONG = {"layout": "long_csv", "files": "longtown/*.csv", "station_column": "station",
         "station_map": {"L1": "l1", "L2": "l2"},
@@ -96,7 +96,7 @@ def test_clean_table_schema(tmp_path):
     ({"layout": "xml"}, "cities.semitown.layout"),
     ({"units": {**SEMICOLON["units"], "pm25": "bananas"}}, "cities.semitown.units.pm25"),
     ({"columns": {**SEMICOLON["columns"], "X": "benzene"}}, "cities.semitown.columns.X"),
-    ({"time": {"column": "Zeit", "format": "%d", "timezone": "Mars/Olympus"}}, "cities.semitown.time.timezone"),
+    ({"time": {"column": "XTK", "format": "%d", "timezone": "Mars/Olympus"}}, "cities.semitown.time.timezone"),
     ({"colums": {}}, "cities.semitown.colums"),
 ])
 def test_bad_format_config_names_the_field(tmp_path, change, field):

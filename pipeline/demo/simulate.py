@@ -117,7 +117,10 @@ def _simulate_city(city, position, group, times, doy, summer, traffic_shape, day
     profile = profile_of(city, position)
     rng = _city_rng(seed, city)
     hours, n = len(times), len(group)
-    lat = np.radians(group["lat"].to_numpy(float).mean())
+    # The invented region keeps a northern calendar (coldest mid-January, CET summer time) though its
+    # map lies south of the equator: the sun is computed for the latitude's distance from the equator,
+    # so daylight stays in phase with that calendar (a map mirrored across the equator sees the same sun).
+    lat = np.radians(abs(group["lat"].to_numpy(float).mean()))
     lon = group["lon"].to_numpy(float).mean()
     elevation = group["elevation_m"].to_numpy(float)  # per station
     # City weather: 0.8 regional + 0.6 local keeps the variance of each anomaly near one.
