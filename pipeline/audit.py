@@ -62,7 +62,37 @@ def get_run(client, run_id: str):
         if len(found) > 1:
             raise InputError(f"run id prefix {run_id!r} matches {len(found)} runs; give more characters",
                              field="RUN_ID")
+    if len(run_id) < 6:
+        raise InputError(f"run id prefix {run_id!r} is too short: give at least 6 characters of the run ID",
+                         field="RUN_ID")
     raise InputError(f"no MLflow run with id {run_id!r} in this tracking store", field="RUN_ID")
+
+
+def experiment_overrides(root: Path | str) -> dict[str, str]:
+    """MLflow experiment name -> the `experiment=NAME` override whose config file selects it."""
+    import yaml
+
+    found = {}
+    for path in sorted((Path(root) / "config" / "experiment").glob("*.yaml")):
+        tracking_cfg = (yaml.safe_load(path.read_text(encoding="utf-8")) or {}).get("tracking") or {}
+        if tracking_cfg.get("experiment"):
+            found[tracking_cfg["experiment"]] = f"experiment={path.stem}"
+    return found
+
+
+def find_experiment(client, name: str, root: Path | str):
+    """The MLflow experiment `name`; when missing, the error names the override that finds the stored ones."""
+    experiment = client.get_experiment_by_name(name)
+    if experiment is not None:
+        return experiment
+    overrides = experiment_overrides(root)
+    stored = [e.name for e in client.search_experiments()]
+    hints = [f"{overrides[n]} (MLflow experiment {n!r})" for n in stored if n in overrides]
+    others = [repr(n) for n in stored if n not in overrides and n != "Default"]
+    hint = ("; pass " + " or ".join(hints) if hints else "") + \
+           (f"; other experiments in the store: {', '.join(others)} (--experiment NAME)" if others else "")
+    raise InputError(f"no MLflow experiment {name!r} in this tracking store{hint or '; it holds no runs yet'}",
+                     field="tracking.experiment")
 
 
 def _all_runs(client, experiment_ids: list[str]) -> list:
@@ -170,6 +200,21 @@ def ordered_metrics(metrics: dict[str, float]) -> list[tuple[str, float]]:
     return head + sorted((k, v) for k, v in metrics.items() if k not in HEADLINE)
 
 
+SCREEN_COLUMNS = 100
+
+
+def fit_to_screen(lines: list[str], width: int = SCREEN_COLUMNS) -> str:
+    """Wrap lines longer than the screen, continuing them under their own indentation plus four spaces."""
+    import textwrap
+
+    out = []
+    for line in lines:
+        indent = " " * (len(line) - len(line.lstrip()) + 4)
+        out.extend(textwrap.wrap(line, width, subsequent_indent=indent, break_long_words=True,
+                                 break_on_hyphens=False) if len(line) > width else [line])
+    return "\n".join(out)
+
+
 def format_show(info: dict, all_metrics: bool = False) -> str:
     ident, split = info["identity"], info["split"]
     lines = [f"run {info['run_id']}  ({info['run_name']}, {info['status']}, started {info['started']})"]
@@ -200,7 +245,8 @@ def format_show(info: dict, all_metrics: bool = False) -> str:
                      f"trained; its numbers describe the old data")
     git = info["git"]
     lines += ["", "code",
-              f"  code digest {info['code_digest']}  package digest {info['package_digest']}",
+              f"  code digest    {info['code_digest']}",
+              f"  package digest {info['package_digest']}",
               f"  git commit  {git.get('commit', 'unknown')}  (uncommitted changes: {git.get('dirty', 'unknown')})",
               "  versions    " + ", ".join(f"{k} {v}" for k, v in info["versions"].items())]
     lines += ["", "resolved config (artifact config/resolved_config.yaml, job slice)"]
@@ -217,4 +263,4 @@ def format_show(info: dict, all_metrics: bool = False) -> str:
         lines.append(f"  {info['record_path']}")
     else:
         lines.append(f"  {info['record_path']} now names run {info['record_run_id']} (this run is superseded)")
-    return "\n".join(lines)
+    return fit_to_screen(lines)

@@ -21,7 +21,7 @@ COMMANDS = {
     "grid": "print or export the ranked comparison grid",
     "runs": "list tracked runs with filters",
     "show": "everything recorded about one run ID",
-    "reproduce": "re-train one run from its logged config and compare",
+    "verify": "re-train one run from its logged config and compare it bit for bit",
     "shift": "pairwise city shift diagnostics next to geographic distance",
 }
 

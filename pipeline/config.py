@@ -1,6 +1,6 @@
 """Typed, validated configuration: Hydra schema, composition, sweep overrides and per-job slices.
 
-Reads the Hydra tree under `config/` (groups data/, split/, model/, penalty/, trainer/, selection/,
+Reads the Hydra tree under `config/` (groups data/, split/, model/, penalty/, fit/, selection/,
 experiment/). The dataclasses below, registered in Hydra's ConfigStore, are the schema: a key that is not
 in the schema, or a value of the wrong type, fails at composition, before any job runs. Model families
 carry their own `Params` dataclass, so `model` is checked by building the family (see `validate`).
@@ -23,10 +23,10 @@ from omegaconf import DictConfig, OmegaConf
 
 from pipeline.errors import InputError
 from pipeline.splits import SplitConfig
-from pipeline.train_loop import TrainerConfig
+from pipeline.train_loop import FitConfig
 from pipeline.windows import ForecastConfig
 
-SELECTION_RULES = ("source-val", "leave-one-source-out", "target-oracle")
+SELECTION_RULES = ("source-holdout", "source-rotation", "target-peek")
 NOT_APPLICABLE = "na"  # penalty label of families that are not gradient-trained (shown as "n/a")
 
 
@@ -53,10 +53,10 @@ class PenaltyConfig:
 @dataclass
 class SelectionConfig:
     # The rule whose checkpoint gives a run's headline metrics.
-    rule: str = "source-val"
+    rule: str = "source-holdout"
     # Further rules evaluated on the same fit and logged with a prefix, so the grid can show them side by
-    # side. leave-one-source-out costs one extra fit per source city, so it is opt-in.
-    also: List[str] = field(default_factory=lambda: ["target-oracle"])
+    # side. source-rotation costs one extra fit per source city, so it is opt-in.
+    also: List[str] = field(default_factory=lambda: ["target-peek"])
 
 
 @dataclass
@@ -82,7 +82,7 @@ class TrackingConfig:
 @dataclass
 class ReportConfig:
     metric: str = "mae"  # any logged target metric: mae, rmse, mse, mase, csi, ...
-    selection: str = "source-val"
+    selection: str = "source-holdout"
     bootstrap_samples: int = 2000
     top_rows: int = 12
     figure_dpi: int = 100
@@ -95,7 +95,7 @@ class RootConfig:
     split: SplitConfig = field(default_factory=SplitConfig)
     model: Dict[str, Any] = field(default_factory=lambda: {"family": "persistence"})
     penalty: PenaltyConfig = field(default_factory=PenaltyConfig)
-    trainer: TrainerConfig = field(default_factory=TrainerConfig)
+    fit: FitConfig = field(default_factory=FitConfig)
     selection: SelectionConfig = field(default_factory=SelectionConfig)
     forecast: ForecastConfig = field(default_factory=ForecastConfig)
     sweep: SweepConfig = field(default_factory=SweepConfig)
@@ -117,7 +117,7 @@ def expand_sweep_overrides(overrides: list[str]) -> list[str]:
     """Turn `model=lstm,gru` / `penalty=irm` / `seed=0,1` into sweep lists; keep everything else.
 
     The first choice of model and penalty is also kept as the group choice, so the composed base config
-    is a valid single run (used by `validate` and by `shiftgrid reproduce`).
+    is a valid single run (used by `validate` and by `shiftgrid verify`).
     """
     expanded = []
     for item in overrides:
@@ -165,7 +165,7 @@ def job_slice(cfg: DictConfig, model_name: str, penalty_name: str) -> dict:
         "model": to_container(cfg.model),
         "penalty": to_container(cfg.penalty) if penalty_name != NOT_APPLICABLE else None,
         "penalty_name": penalty_name,
-        "trainer": to_container(cfg.trainer),
+        "fit": to_container(cfg.fit),
         "selection": to_container(cfg.selection),
         "forecast": to_container(cfg.forecast),
         "metrics": to_container(cfg.metrics),

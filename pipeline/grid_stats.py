@@ -22,7 +22,7 @@ HIGHER_IS_BETTER = frozenset({"pod", "csi", "ets"})
 BEST_AT_ONE = frozenset({"bias"})
 BASELINE_PENALTY = "erm"
 NOT_APPLICABLE = "na"  # penalty of families that are not gradient-trained
-RULES = ("source-val", "leave-one-source-out", "target-oracle")
+RULES = ("source-holdout", "source-rotation", "target-peek")
 ID_COLUMNS = ("split_id", "sources", "target", "model", "family", "penalty")
 MULTIPLE_COMPARISON_CAVEAT = (
     "The Nemenyi critical difference controls the family-wise error over all pairwise comparisons of "
@@ -73,7 +73,7 @@ def as_loss(values, metric_name: str) -> np.ndarray:
 
 
 def metric_column(columns, metric: str, rule: str) -> str:
-    """The run-table column holding `metric` under selection `rule` (e.g. mae -> source-val.target_mae).
+    """The run-table column holding `metric` under selection `rule` (e.g. mae -> source-holdout.target_mae).
 
     Accepts a short target score name (mae, csi), a full metric name (target_mae_h03, source_mae) or a
     rule-free metric (fit_seconds). An unknown name is an InputError listing what was logged.

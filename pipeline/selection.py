@@ -1,26 +1,26 @@
 """Model-selection rules: which evaluated checkpoint of a fit a run reports.
 
 Reads a fitted model's `history_` (one entry per evaluation with `val/<set>/all` risks) and, for
-leave-one-source-out, the validation curves of refits that each left one source group out. Obeys
+source-rotation, the validation curves of refits that each left one source group out. Obeys
 `selection.rule` and `selection.also`.
 
-- source-val: lowest risk on the validation time block of the source environments (honest default).
-- leave-one-source-out: refit without each source group, score on the left-out group's validation
+- source-holdout: lowest risk on the validation time block of the source environments (honest default).
+- source-rotation: refit without each source group, score on the left-out group's validation
   block, average the curves over groups, take the step with the lowest average (honest; costs refits).
-- target-oracle: lowest risk on the target's validation block. It uses target data, so it is only an
+- target-peek: lowest risk on the target's validation block. It uses target data, so it is only an
   upper bound and every figure built from it is labelled as such.
 Ties go to the earliest step (fewer updates). Families without a training curve have one step, 0.
 """
 
 from __future__ import annotations
 
-ORACLE = "target-oracle"
-LOSO = "leave-one-source-out"
-UPPER_BOUND_LABEL = "target-oracle (upper bound: selected with target data)"
+PEEK = "target-peek"
+ROTATION = "source-rotation"
+UPPER_BOUND_LABEL = "target-peek (upper bound: selected with target data)"
 
 
 def uses_target_data(rule: str) -> bool:
-    return rule == ORACLE
+    return rule == PEEK
 
 
 def label(rule: str) -> str:
@@ -46,18 +46,18 @@ def nearest_step(step: int, available: list[int]) -> int:
 
 
 def choose_step(rule: str, history: list[dict], available_steps: list[int],
-                loso_curves: dict[str, dict[int, float]] | None = None) -> int:
+                rotation_curves: dict[str, dict[int, float]] | None = None) -> int:
     if not history:
         return available_steps[0] if available_steps else 0
-    if rule == "source-val":
+    if rule == "source-holdout":
         step = _argmin_step(curve(history, "val/source/all"))
-    elif rule == ORACLE:
+    elif rule == PEEK:
         step = _argmin_step(curve(history, "val/target/all"))
-    elif rule == LOSO:
-        if not loso_curves:
-            raise ValueError("leave-one-source-out needs the curves of the left-out refits")
-        common = set.intersection(*(set(points) for points in loso_curves.values()))
-        averaged = {s: sum(points[s] for points in loso_curves.values()) / len(loso_curves)
+    elif rule == ROTATION:
+        if not rotation_curves:
+            raise ValueError("source-rotation needs the curves of the left-out refits")
+        common = set.intersection(*(set(points) for points in rotation_curves.values()))
+        averaged = {s: sum(points[s] for points in rotation_curves.values()) / len(rotation_curves)
                     for s in common}
         step = _argmin_step(averaged)
     else:

@@ -2,7 +2,7 @@
 
 Pure computation (no files, no MLflow): pipeline.train_job reads the inputs, calls `run_seed` for every
 unit of a job and logs the outcome. Obeys the job slice (pipeline.config.job_slice): model, penalty,
-trainer, selection (rule + also: every rule's checkpoint is evaluated), forecast, metrics.
+fit, selection (rule + also: every rule's checkpoint is evaluated), forecast, metrics.
 Metrics are computed in the target's canonical units on the target test block, plus the source test
 block per environment (worst-environment risk, in-distribution vs target gap).
 """
@@ -19,7 +19,7 @@ from pipeline import selection
 from pipeline.metrics import forecast_scores, mse
 from pipeline.models import build_model
 from pipeline.penalties import build_penalty
-from pipeline.train_loop import TrainerConfig
+from pipeline.train_loop import FitConfig
 
 
 def subset(window_set, mask: np.ndarray):
@@ -32,7 +32,7 @@ def station_city_map(tables: dict[str, pd.DataFrame]) -> dict[str, str]:
     return {station: city for city, table in tables.items() for station in table["station_id"].unique()}
 
 
-def _loso_groups(split: dict, station_city: dict[str, str]) -> dict[str, set[str]]:
+def _rotation_groups(split: dict, station_city: dict[str, str]) -> dict[str, set[str]]:
     """Groups left out one at a time: source cities, or source environments within one city."""
     if len(split["sources"]) >= 2:
         return {city: {s for s in split["source_stations"] if station_city.get(s) == city}
@@ -51,12 +51,12 @@ def _make_penalty(job: dict):
 def _fit(job: dict, seed: int, train, val: dict):
     params = {k: v for k, v in job["model"].items() if k != "family"}
     model = build_model(job["model"]["family"], params, seed=seed)
-    return model.fit(train, val=val, penalty=_make_penalty(job), trainer=TrainerConfig(**job["trainer"]))
+    return model.fit(train, val=val, penalty=_make_penalty(job), fit_config=FitConfig(**job["fit"]))
 
 
-def loso_curves(job: dict, seed: int, windows, split: dict, station_city: dict) -> dict[str, dict]:
+def rotation_curves(job: dict, seed: int, windows, split: dict, station_city: dict) -> dict[str, dict]:
     curves = {}
-    for group, stations in _loso_groups(split, station_city).items():
+    for group, stations in _rotation_groups(split, station_city).items():
         keep = ~np.isin(windows.train.station, list(stations))
         held = np.isin(windows.val_source.station, list(stations))
         if keep.sum() == 0 or held.sum() == 0:
@@ -125,14 +125,14 @@ def run_seed(job: dict, seed: int, windows, split: dict, station_city: dict) -> 
     fit_seconds = time.perf_counter() - started
     primary = job["selection"]["rule"]
     rules = list(dict.fromkeys([primary, *job["selection"]["also"]]))
-    loso = None
-    if selection.LOSO in rules and model.history_:
-        loso = loso_curves(job, seed, windows, split, station_city)
-        if not loso:
-            rules.remove(selection.LOSO)  # a single source group cannot be left out
+    rotation = None
+    if selection.ROTATION in rules and model.history_:
+        rotation = rotation_curves(job, seed, windows, split, station_city)
+        if not rotation:
+            rules.remove(selection.ROTATION)  # a single source group cannot be left out
     metrics, predictions, chosen = {}, {}, {}
     for rule in rules:
-        step = selection.choose_step(rule, model.history_, model.snapshot_steps_, loso)
+        step = selection.choose_step(rule, model.history_, model.snapshot_steps_, rotation)
         model.use_snapshot(step)
         scores, predictions[rule] = _evaluate(model, windows, job)
         chosen[rule] = step

@@ -1,6 +1,6 @@
 """I/O shell of a training job: read inputs, train every seed, log to MLflow, write the run records.
 
-Called by the `train_model` rule (pipeline/scripts/train_model.py) and by `shiftgrid reproduce`.
+Called by the `train_model` rule (pipeline/scripts/train_model.py) and by `shiftgrid verify`.
 Reads the split record and clean Parquet files named in it; writes MLflow runs and
 results/runs/<split_id>/<model>/<penalty>/<seed>.json. Obeys the job slice built by
 pipeline.config.job_slice plus the tracking URI/experiment handed over by the rule.

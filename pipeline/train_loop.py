@@ -1,8 +1,8 @@
 """Training loop shared by every gradient-trained model family; reads top to bottom.
 
 Reads in-memory window sets (any object with X (n, L, F) float32, y (n, H) float32, env (n,) int64,
-env_names); writes nothing (returns the history, snapshots and timings). Obeys the `trainer` config
-group, i.e. the fields of `TrainerConfig`, plus the model seed and a penalty from pipeline.penalties.
+env_names); writes nothing (returns the history, snapshots and timings). Obeys the `fit` config
+group, i.e. the fields of `FitConfig`, plus the model seed and a penalty from pipeline.penalties.
 
 What it does, in order:
 1. fork the global torch RNG and seed it (so weight init and dropout are reproducible and the caller's
@@ -45,7 +45,7 @@ class WindowSetLike(Protocol):
 
 
 @dataclass
-class TrainerConfig:
+class FitConfig:
     """Optimisation settings. Defaults are sized for a 2-core CPU demo, not for best accuracy."""
 
     max_steps: int = 300  # optimizer steps (batches), not epochs: cost is the same whatever n is
@@ -61,21 +61,21 @@ class TrainerConfig:
         for name in ("max_steps", "batch_size", "eval_every", "patience", "threads"):
             value = getattr(self, name)
             if isinstance(value, bool) or int(value) != value or value < 1:
-                raise InputError(f"must be an integer >= 1, got {value!r}", field=f"trainer.{name}")
+                raise InputError(f"must be an integer >= 1, got {value!r}", field=f"fit.{name}")
             setattr(self, name, int(value))
         for name in ("lr", "weight_decay", "grad_clip"):
             value = float(getattr(self, name))
             if not math.isfinite(value) or value < 0 or (name == "lr" and value == 0):
                 raise InputError(f"must be a finite number {'> 0' if name == 'lr' else '>= 0'}, "
-                                 f"got {value!r}", field=f"trainer.{name}")
+                                 f"got {value!r}", field=f"fit.{name}")
             setattr(self, name, value)
 
     @classmethod
-    def from_dict(cls, values: dict | None) -> "TrainerConfig":
+    def from_dict(cls, values: dict | None) -> "FitConfig":
         known = {f.name for f in fields(cls)}
         unknown = sorted(set(values or {}) - known)
         if unknown:
-            raise InputError(f"unknown key {unknown[0]!r} (known: {', '.join(sorted(known))})", field="trainer")
+            raise InputError(f"unknown key {unknown[0]!r} (known: {', '.join(sorted(known))})", field="fit")
         return cls(**(values or {}))
 
 
@@ -149,7 +149,7 @@ def evaluate(network: torch.nn.Module, val: dict[str, Any]) -> dict[str, float]:
     return results
 
 
-def make_optimizer(network: torch.nn.Module, cfg: TrainerConfig) -> torch.optim.Optimizer:
+def make_optimizer(network: torch.nn.Module, cfg: FitConfig) -> torch.optim.Optimizer:
     try:  # fused Adam is as fast or faster on CPU; older builds or odd dtypes may refuse it
         return torch.optim.Adam(network.parameters(), lr=cfg.lr, weight_decay=cfg.weight_decay, fused=True)
     except (RuntimeError, TypeError, ValueError):
@@ -161,14 +161,14 @@ def copy_state(network: torch.nn.Module) -> dict[str, torch.Tensor]:
 
 
 def train_network(build_network, train: WindowSetLike, val: dict[str, WindowSetLike] | None = None,
-                  penalty: Penalty | None = None, trainer: TrainerConfig | None = None,
+                  penalty: Penalty | None = None, fit_config: FitConfig | None = None,
                   seed: int = 0) -> tuple[torch.nn.Module, TrainResult]:
     """Build a network with `build_network()` under the seed and train it; returns (network, result).
 
     The returned network holds the weights of the LAST step; pick another with result.snapshots.
     """
     started = time.perf_counter()
-    cfg = trainer if trainer is not None else TrainerConfig()
+    cfg = fit_config if fit_config is not None else FitConfig()
     penalty = penalty if penalty is not None else build_penalty("erm")
     val = dict(val or {})
     check_window_set(train, "train")

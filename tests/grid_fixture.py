@@ -19,27 +19,27 @@ SPLITS = {  # split_id -> (sources, target)
     "loco-orra+vell-to-quist-cccccc": (["orra", "vell"], "quist"),
 }
 SPLIT_IDS = list(SPLITS)
-# source-val target_mae per split x (model, penalty) -> per seed; target-oracle is 0.1 lower everywhere
+# source-holdout target_mae per split x (model, penalty) -> per seed; target-peek is 0.1 lower everywhere
 TARGET_MAE = {
     SPLIT_IDS[0]: {("lin", "erm"): [1.0, 1.2], ("lin", "irm"): [0.9, 1.1], ("persistence", "na"): [1.5]},
     SPLIT_IDS[1]: {("lin", "erm"): [2.0, 2.0], ("lin", "irm"): [2.2, 2.4], ("persistence", "na"): [1.8]},
     SPLIT_IDS[2]: {("lin", "erm"): [1.0, 1.0], ("lin", "irm"): [0.5, 0.7], ("persistence", "na"): [3.0]},
 }
 HORIZON = 3
-RULES = ("source-val", "target-oracle")
+RULES = ("source-holdout", "target-peek")
 CITIES = ("orra", "quist", "vell")
 
 
 def metrics_for(mae: float) -> dict[str, float]:
     metrics = {}
-    for rule, shift in (("source-val", 0.0), ("target-oracle", -0.1)):
+    for rule, shift in (("source-holdout", 0.0), ("target-peek", -0.1)):
         value = mae + shift
         metrics.update({f"{rule}.target_mae": value, f"{rule}.target_rmse": value * 1.3,
                         f"{rule}.target_csi": 1.0 / (1.0 + value), f"{rule}.target_pod": 0.8 / (1.0 + value),
                         f"{rule}.target_far": value / 10, f"{rule}.target_ets": 0.5 / (1.0 + value),
                         f"{rule}.source_mae": value / 2})
         metrics.update({f"{rule}.target_mae_h{h:02d}": value * (0.8 + 0.1 * h) for h in range(1, HORIZON + 1)})
-    metrics.update({key.split(".", 1)[1]: v for key, v in metrics.items() if key.startswith("source-val.")})
+    metrics.update({key.split(".", 1)[1]: v for key, v in metrics.items() if key.startswith("source-holdout.")})
     metrics["fit_seconds"] = 1.0
     return metrics
 
@@ -49,7 +49,7 @@ def predictions(mae: float, seed: int) -> pd.DataFrame:
     rng = np.random.default_rng(seed + int(mae * 1000))
     origins = pd.date_range("2024-03-01", periods=40, freq="h", tz="UTC")
     frames = []
-    for rule, shift in (("source-val", 0.0), ("target-oracle", -0.1)):
+    for rule, shift in (("source-holdout", 0.0), ("target-peek", -0.1)):
         for station in ("s1", "s2"):
             frame = pd.DataFrame({"station_id": station, "origin": origins, "selection": rule})
             for h in range(1, HORIZON + 1):
@@ -81,7 +81,7 @@ def build_grid_store(root: Path) -> tuple[list[Path], str]:
                 metrics = metrics_for(mae)
                 tags = {"split_id": split_id, "model": model, "penalty": penalty, "seed": str(seed),
                         "sources": "+".join(sources), "target": target, "code_digest": "c0ffee",
-                        "git.commit": "0123456789abcdef", "selection_label": "source-val"}
+                        "git.commit": "0123456789abcdef", "selection_label": "source-holdout"}
                 run_id = tracking.log_run(client, experiment_id, run_name=f"{split_id}/{model}/{penalty}/{seed}",
                                           params={"metrics.exceedance_threshold": "35.0"}, metrics=metrics,
                                           curves={}, tags=tags,
@@ -89,7 +89,7 @@ def build_grid_store(root: Path) -> tuple[list[Path], str]:
                 record = {"run_id": run_id, "experiment": "gridtest", "experiment_id": experiment_id,
                           "tracking_uri": uri, "split_id": split_id, "sources": sources, "target": target,
                           "model": model, "family": "linear" if model == "lin" else "persistence",
-                          "penalty": penalty, "seed": seed, "selection_rule": "source-val",
+                          "penalty": penalty, "seed": seed, "selection_rule": "source-holdout",
                           "metrics": {k: metrics[k] for k in ("target_mae", "target_csi", "source_mae")},
                           "supersedes": []}
                 path = results / "runs" / split_id / model / penalty / f"{seed}.json"

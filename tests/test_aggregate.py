@@ -24,7 +24,7 @@ def grid(tmp_path_factory):
             "runs": pd.read_parquet(root / "results" / "grid.parquet")}
 
 
-def cell(summary, split_id, combo, rule="source-val"):
+def cell(summary, split_id, combo, rule="source-holdout"):
     rows = summary[(summary.split_id == split_id) & (summary.combo == combo) & (summary.selection_rule == rule)]
     assert len(rows) == 1
     return rows.iloc[0]
@@ -33,9 +33,9 @@ def cell(summary, split_id, combo, rule="source-val"):
 def test_one_row_per_run_with_metrics_and_tags(grid):
     runs = grid["runs"]
     assert len(runs) == 15 and runs["run_id"].is_unique
-    assert {"source-val.target_mae", "target-oracle.target_mae_h03", "tag.code_digest", "param.metrics."
+    assert {"source-holdout.target_mae", "target-peek.target_mae_h03", "tag.code_digest", "param.metrics."
             "exceedance_threshold"} <= set(runs.columns)
-    assert grid["meta"]["rules"] == ["source-val", "target-oracle"]
+    assert grid["meta"]["rules"] == ["source-holdout", "target-peek"]
 
 
 def test_means_spread_and_ranks_have_the_known_answers(grid):
@@ -49,9 +49,9 @@ def test_means_spread_and_ranks_have_the_known_answers(grid):
     assert [cell(summary, SPLIT_IDS[1], c)["rank"] for c in ("persistence+n/a", "lin+erm", "lin+irm")] == [1, 2, 3]
     assert cell(summary, SPLIT_IDS[2], "lin+irm")["mean_rank"] == pytest.approx(5 / 3)
     assert cell(summary, SPLIT_IDS[2], "persistence+n/a")["mean_rank"] == pytest.approx(7 / 3)
-    # the oracle is 0.1 lower everywhere and labelled as an upper bound
-    oracle = cell(summary, SPLIT_IDS[0], "lin+erm", "target-oracle")
-    assert oracle["mean"] == pytest.approx(1.0) and "upper bound" in oracle["selection_label"]
+    # the peek is 0.1 lower everywhere and labelled as an upper bound
+    peek = cell(summary, SPLIT_IDS[0], "lin+erm", "target-peek")
+    assert peek["mean"] == pytest.approx(1.0) and "upper bound" in peek["selection_label"]
 
 
 def test_penalty_against_erm_twin(grid):
@@ -70,7 +70,7 @@ def test_diebold_mariano_recomputed_from_the_artifacts(grid):
         frames = []
         for row in runs[(runs.split_id == SPLIT_IDS[2]) & (runs.model == model) & (runs.penalty == penalty)].itertuples():
             frame = pd.read_parquet(f"{row.artifact_uri[len('file://'):]}/predictions/target_predictions.parquet")
-            frame = frame[frame.selection == "source-val"]
+            frame = frame[frame.selection == "source-holdout"]
             errors = np.mean([np.abs(frame[f"y_h0{h}"] - frame[f"p_h0{h}"]) for h in (1, 2, 3)], axis=0)
             frames.append(pd.Series(errors, index=[frame.station_id, frame.origin]))
         return pd.concat(frames, axis=1).mean(axis=1)
@@ -78,7 +78,7 @@ def test_diebold_mariano_recomputed_from_the_artifacts(grid):
     d = (losses("lin", "irm") - losses("lin", "erm")).groupby(level=1).mean().sort_index()
     expected = diebold_mariano(d.to_numpy(), 3)
     dm = pd.read_csv(grid["root"] / "results" / "grid_dm.csv")
-    row = dm[(dm.split_id == SPLIT_IDS[2]) & (dm.selection_rule == "source-val")].iloc[0]
+    row = dm[(dm.split_id == SPLIT_IDS[2]) & (dm.selection_rule == "source-holdout")].iloc[0]
     assert row["dm_n"] == 40 and row["dm_h"] == 3
     assert row["dm_hln"] == pytest.approx(expected.hln_statistic) and row["dm_p"] == pytest.approx(expected.p_value)
     assert row["dm_hln"] < 0  # irm's errors are built smaller on this split
@@ -86,9 +86,9 @@ def test_diebold_mariano_recomputed_from_the_artifacts(grid):
 
 
 def test_friedman_and_nemenyi_over_splits(grid):
-    result = grid["meta"]["friedman"]["source-val"]
+    result = grid["meta"]["friedman"]["source-holdout"]
     table = pd.DataFrame({split: {combo: mean for combo, mean in grid["summary"].query(
-        "split_id == @split and selection_rule == 'source-val'")[["combo", "mean"]].itertuples(index=False)}
+        "split_id == @split and selection_rule == 'source-holdout'")[["combo", "mean"]].itertuples(index=False)}
         for split in SPLIT_IDS}).T
     reference = sps.friedmanchisquare(*[table[c] for c in table.columns])  # scipy as the outside reference
     assert result["chi2"] == pytest.approx(reference.statistic) and result["chi2"] == pytest.approx(2 / 3)
@@ -99,7 +99,7 @@ def test_friedman_and_nemenyi_over_splits(grid):
 
 
 def test_higher_is_better_metric_ranks_the_largest_first(grid):
-    summary = grid_stats.summarise(grid["runs"], "csi", "source-val", n_boot=50)
+    summary = grid_stats.summarise(grid["runs"], "csi", "source-holdout", n_boot=50)
     best = summary[summary.split_id == SPLIT_IDS[0]].sort_values("rank").iloc[0]
     assert best["combo"] == "lin+irm" and best["direction"] == "higher is better"
     assert summary.loc[summary["combo"] == "lin+irm", "vs_erm_wins"].iloc[0] == 2
@@ -107,7 +107,7 @@ def test_higher_is_better_metric_ranks_the_largest_first(grid):
 
 def test_unknown_metric_names_what_was_logged(grid):
     with pytest.raises(InputError, match="available: .*target_mae"):
-        grid_stats.summarise(grid["runs"], "nonsense", "source-val")
+        grid_stats.summarise(grid["runs"], "nonsense", "source-holdout")
 
 
 def test_missing_mlflow_run_is_a_clear_error(grid, tmp_path):

@@ -15,7 +15,7 @@ from tests.sem_dag import REPO, make_project, shiftgrid
 
 pytestmark = pytest.mark.e2e
 OVERRIDES = ["experiment=airports", "sweep.models=[persistence,linear]", "sweep.penalties=[erm]",
-             "trainer.max_steps=60", "trainer.eval_every=20", "penalty.warmup_steps=20",
+             "fit.max_steps=60", "fit.eval_every=20", "penalty.warmup_steps=20",
              "report.bootstrap_samples=100"]
 
 
@@ -44,7 +44,7 @@ def test_tiny_run_trains_on_two_airports_and_forecasts_the_third(finished):
     split = json.loads(splits[0].read_text())
     assert sorted(split["environments"]) == ["ewr", "jfk"] and split["target_stations"] == ["lga"]
     grid = pd.read_csv(finished / "results" / "airports" / "grid.csv")
-    honest = grid[grid["selection_rule"] == "source-val"].set_index(["model", "penalty"])["mean"]
+    honest = grid[grid["selection_rule"] == "source-holdout"].set_index(["model", "penalty"])["mean"]
     assert set(honest.index) == {("persistence", "na"), ("linear", "erm")}
     # Temperature at 1-6 h ahead in winter: persistence errs by a few degC (common practice: hourly
     # temperature changes 0.5-2 degC per hour), so its MAE lies well inside (0.5, 6) degC.

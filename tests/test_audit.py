@@ -1,6 +1,6 @@
 """Unit tests of the audit helpers: dry-run parsing, bitwise comparison, digests, bad input (exit 2, one line).
 
-The DAG-based checks of `show`, `reproduce`, `runs` and `status` on real runs are in tests/test_reruns.py
+The DAG-based checks of `show`, `verify`, `runs` and `status` on real runs are in tests/test_reruns.py
 (they share its tiny base run).
 """
 
@@ -13,7 +13,7 @@ import torch
 
 from pipeline import audit, outdated
 from pipeline.cli import main
-from pipeline.reproduce import check_data, compare_metrics, compare_weights
+from pipeline.verify import check_data, compare_metrics, compare_weights
 from pipeline.errors import InputError
 
 REPO = Path(__file__).resolve().parents[1]
@@ -67,7 +67,7 @@ def test_stored_params_and_slice_change_name_the_changed_section(tmp_path):
     meta_dir.mkdir(parents=True)
     import base64
     def units(alpha):
-        job = {"model_name": "ridge", "penalty_name": "na", "model": {"alpha": alpha}, "trainer": {"lr": 0.1}}
+        job = {"model_name": "ridge", "penalty_name": "na", "model": {"alpha": alpha}, "fit": {"lr": 0.1}}
         return json.dumps([{"job": job, "seed": 0}], sort_keys=True)
     before = units(1.0)
     (meta_dir / base64.urlsafe_b64encode(output.encode()).decode()).write_text(
@@ -130,7 +130,7 @@ def test_find_record_by_run_id(tmp_path):
     assert audit.find_record(tmp_path, "other") == (None, None)
 
 
-@pytest.mark.parametrize("command", [["show", "abc"], ["reproduce", "abc"], ["runs"]])
+@pytest.mark.parametrize("command", [["show", "abc"], ["verify", "abc"], ["runs"]])
 def test_missing_store_is_one_line_exit_2(command, tmp_path, capsys):
     missing = f"sqlite:///{tmp_path / 'none.db'}"
     assert main(["--root", str(REPO), *command, "--tracking-uri", missing]) == 2
@@ -150,3 +150,44 @@ def test_unknown_run_id_is_one_line_exit_2(tmp_path, capsys):
     assert err.count("\n") == 1 and "no MLflow run" in err
     assert main(["--root", str(REPO), "runs", "--tracking-uri", uri, "--experiment", "e", "--since", "yesterday"]) == 2
     assert "YYYY-MM-DD" in capsys.readouterr().err
+
+
+def test_short_run_prefix_says_it_is_too_short(tmp_path, capsys):
+    from pipeline.tracking import setup_store
+
+    uri = f"sqlite:///{tmp_path / 'mlflow.db'}"
+    setup_store(uri, "e", (tmp_path / "art").as_uri())
+    capsys.readouterr()
+    assert main(["--root", str(REPO), "show", "abc", "--tracking-uri", uri]) == 2
+    err = capsys.readouterr().err
+    assert err.count("\n") == 1 and "too short" in err and "at least 6" in err
+
+
+def test_missing_experiment_names_the_override_that_finds_the_stored_one(tmp_path, capsys):
+    from pipeline.tracking import setup_store
+
+    uri = f"sqlite:///{tmp_path / 'mlflow.db'}"
+    setup_store(uri, "shiftgrid-demo", (tmp_path / "art").as_uri())  # the demo experiment's MLflow name
+    capsys.readouterr()
+    assert main(["--root", str(REPO), "runs", "--tracking-uri", uri]) == 2  # default config: experiment "shiftgrid"
+    err = capsys.readouterr().err
+    assert err.count("\n") == 1 and "experiment=demo" in err
+
+
+def test_show_wraps_every_line_to_100_columns():
+    lines = ["run " + "a" * 32 + "  (" + "x" * 80 + ")", "  " + "word " * 40, "short"]
+    shown = audit.fit_to_screen(lines).splitlines()
+    assert max(map(len, shown)) <= 100 and shown[-1] == "short"
+    assert "".join(shown).replace(" ", "") == "".join(lines).replace(" ", "")  # nothing lost
+
+
+def test_runs_table_has_the_target_city_in_its_own_column():
+    from pipeline.commands.runs import format_table
+
+    row = {"run_id": "f" * 32, "started": "2026-12-02 06:00", "split_id": "s", "sources": "arlenvik+brumeholt",
+           "target": "corvessa", "model": "lstm", "penalty": "irm", "seed": "0", "state": "current",
+           "superseded_by": "", "target_mae": 3.21}
+    header, line, _ = format_table([row]).splitlines()
+    target_at = header.index("target")
+    assert line[target_at:target_at + len("corvessa")] == "corvessa"
+    assert "->" not in header and max(len(header), len(line)) <= 100

@@ -25,13 +25,13 @@ def test_the_three_settings_differ_only_in_sources_and_admitted_target_data():
     assert {c.split.pairs[0]["target"] for c in configs.values()} == {"driftmere"}
     assert [c.split.target_train_fraction for c in configs.values()] == [0.0, 0.0, 0.2]
     assert len({c.results_dir for c in configs.values()}) == 3  # results never mix
-    for key in ("model", "trainer", "forecast", "sweep", "data"):
+    for key in ("model", "fit", "forecast", "sweep", "data"):
         assert len({str(c[key]) for c in configs.values()}) == 1, key
 
 
 def cells(results, metric_column="mean"):
     grid = pd.read_csv(results / "grid.csv")
-    grid = grid[grid["selection_rule"] == "source-val"]
+    grid = grid[grid["selection_rule"] == "source-holdout"]
     return grid.set_index(["model", "penalty"])[metric_column]
 
 
@@ -39,7 +39,7 @@ def cells(results, metric_column="mean"):
 def test_admitting_target_data_rescues_the_pooled_erm_models(tmp_path_factory):
     _, without = sem_results(tmp_path_factory, "settings_three_envs")
     _, admitted = sem_results(tmp_path_factory, "settings_three_envs_target_fraction")
-    before, after = cells(without), cells(admitted)  # target MSE (report.metric), source-val selection
+    before, after = cells(without), cells(admitted)  # target MSE (report.metric), source-holdout selection
     assert set(before.index) == set(after.index) == {("ridge", "na"), ("linear", "erm"), ("linear", "irm")}
     for combo in (("ridge", "na"), ("linear", "erm")):
         assert after[combo] < 0.5 * before[combo], (combo, before[combo], after[combo])
@@ -48,4 +48,4 @@ def test_admitting_target_data_rescues_the_pooled_erm_models(tmp_path_factory):
     runs_before = pd.read_parquet(without / "grid.parquet").set_index(["model", "penalty"])
     runs_after = pd.read_parquet(admitted / "grid.parquet").set_index(["model", "penalty"])
     for combo in (("ridge", "na"), ("linear", "erm")):
-        assert runs_after.loc[combo, "source-val.target_mae"] < runs_before.loc[combo, "source-val.target_mae"]
+        assert runs_after.loc[combo, "source-holdout.target_mae"] < runs_before.loc[combo, "source-holdout.target_mae"]

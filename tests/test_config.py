@@ -9,7 +9,7 @@ import yaml
 from pipeline.config import compose_config, expand_sweep_overrides, validate
 from pipeline.errors import InputError
 from pipeline.models import MODEL_FAMILIES
-from pipeline.train_loop import TrainerConfig
+from pipeline.train_loop import FitConfig
 
 REPO = Path(__file__).resolve().parents[1]
 CONFIG = REPO / "config"
@@ -27,16 +27,16 @@ def test_model_group_file_matches_the_family_params(family):
     assert committed == _defaults(MODEL_FAMILIES[family].Params)
 
 
-def test_trainer_defaults_match_the_schema():
-    committed = yaml.safe_load((CONFIG / "trainer" / "default.yaml").read_text())
-    assert committed == _defaults(TrainerConfig)
+def test_fit_defaults_match_the_schema():
+    committed = yaml.safe_load((CONFIG / "fit" / "adam_early_stop.yaml").read_text())
+    assert committed == _defaults(FitConfig)
 
 
 def test_default_config_composes_and_validates():
     cfg = compose_config([], REPO)
     validate(cfg)
     assert cfg.forecast.target == "pm25"
-    assert cfg.selection.rule == "source-val"
+    assert cfg.selection.rule == "source-holdout"
 
 
 @pytest.mark.parametrize("experiment", sorted(p.stem for p in (CONFIG / "experiment").glob("*.yaml")))
@@ -46,13 +46,13 @@ def test_every_shipped_experiment_composes_and_validates(experiment):
 
 def test_unknown_key_fails_in_one_line():
     with pytest.raises(InputError) as caught:
-        compose_config(["trainer.max_stepz=3"], REPO)
+        compose_config(["fit.max_stepz=3"], REPO)
     assert "\n" not in str(caught.value) and "max_stepz" in str(caught.value)
 
 
 def test_wrong_type_fails_in_one_line():
     with pytest.raises(InputError):
-        compose_config(["trainer.max_steps=many"], REPO)
+        compose_config(["fit.max_steps=many"], REPO)
 
 
 def test_unknown_model_hyperparameter_fails_at_validation():

@@ -45,13 +45,13 @@ def test_csv_and_json_carry_the_same_rows(results):
     rows = json.loads(json_text)
     assert len(table) == len(rows) == 9
     assert table["mean"].tolist() == pytest.approx([row["mean"] for row in rows])
-    assert set(table["selection_rule"]) == {"source-val"}
+    assert set(table["selection_rule"]) == {"source-holdout"}
 
 
 def test_markdown_is_a_pipe_table_with_the_rule(results):
     _, text = grid(results, "--format", "markdown")
     lines = text.splitlines()
-    assert lines[0].startswith("Selection: source-val") and lines[3].startswith("|---")
+    assert lines[0].startswith("Selection: source-holdout") and lines[3].startswith("|---")
     assert len([line for line in lines if line.startswith("| ")]) == 10  # header + 9 rows
 
 
@@ -59,7 +59,7 @@ def test_filters_metric_and_selection(results):
     _, text = grid(results, "--format", "csv", "--target", "vell", "--penalty", "irm,n/a")
     table = pd.read_csv(io.StringIO(text), keep_default_na=False)  # "n/a" is a penalty label here
     assert set(table["split_id"]) == {SPLIT_IDS[0]} and set(table["penalty"]) == {"irm", "n/a"}
-    _, text = grid(results, "--selection", "target-oracle", "--metric", "rmse")
+    _, text = grid(results, "--selection", "target-peek", "--metric", "rmse")
     assert "upper bound" in text.splitlines()[0] and "target_rmse" in text.splitlines()[0]
     _, text = grid(results, "--format", "json", "--metric", "csi")
     assert json.loads(text)[0]["rank"] == 1.0 and json.loads(text)[0]["mean"] == pytest.approx((1 / 1.9 + 1 / 2.1) / 2)
@@ -72,9 +72,14 @@ def test_bad_filter_is_a_one_line_error(results, capsys):
 
 
 def test_top_of_grid_lists_combinations_by_mean_rank(results):
-    cfg = SimpleNamespace(report=SimpleNamespace(metric="mae", selection="source-val", bootstrap_samples=50,
+    cfg = SimpleNamespace(report=SimpleNamespace(metric="mae", selection="source-holdout", bootstrap_samples=50,
                                                  top_rows=2))
     text = top_of_grid(results, cfg)
     lines = text.splitlines()
     assert lines[2].split()[0] == "lin+irm" and lines[3].split()[0] == "lin+erm" and "persistence" not in lines[4]
     assert "Friedman p = " in text
+
+
+def test_grid_takes_the_same_overrides_as_every_other_command(results):
+    status, text = grid(results, "experiment=demo", "--format", "csv")
+    assert status == 0 and "run_ids" in text.splitlines()[0]

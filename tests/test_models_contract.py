@@ -13,14 +13,14 @@ from sklearn.linear_model import Ridge
 from pipeline.errors import InputError
 from pipeline.models import MODEL_FAMILIES, NotFittedError, build_model
 from pipeline.penalties import PENALTY_NAMES, build_penalty
-from pipeline.train_loop import TrainerConfig
+from pipeline.train_loop import FitConfig
 
 sys.path.insert(0, str(Path(__file__).resolve().parent))
 from tiny_windows import TinyWindows  # noqa: E402
 
 torch.set_num_threads(1)
 
-FAST = TrainerConfig(max_steps=6, batch_size=16, eval_every=3, patience=8)
+FAST = FitConfig(max_steps=6, batch_size=16, eval_every=3, patience=8)
 TRAINABLE = [name for name, cls in MODEL_FAMILIES.items() if cls.trainable]
 EXPECTED_FAMILIES = {"persistence", "seasonal_naive", "ridge", "var", "linear", "mlp", "lstm", "gru",
                      "transformer"}
@@ -85,12 +85,12 @@ def test_fit_predict_refit_and_snapshots(family):
     model = build_model(family, {}, seed=3)
     with pytest.raises(NotFittedError):
         model.predict(TRAIN.X)
-    assert model.fit(TRAIN, val=VAL, trainer=FAST) is model
+    assert model.fit(TRAIN, val=VAL, fit_config=FAST) is model
     pred = model.predict(VAL["source"].X)
     assert pred.shape == (len(VAL["source"].X), 4) and pred.dtype == np.float32
     assert np.isfinite(pred).all()
     assert model.fit_seconds_ >= 0 and isinstance(model.n_parameters_, int)
-    again = build_model(family, {}, seed=3).fit(TRAIN, val=VAL, trainer=FAST)
+    again = build_model(family, {}, seed=3).fit(TRAIN, val=VAL, fit_config=FAST)
     np.testing.assert_array_equal(again.predict(VAL["source"].X), pred)
     with pytest.raises(InputError, match="expected shape"):
         model.predict(TRAIN.X[:, :, :2])
@@ -120,7 +120,7 @@ def test_fit_predict_refit_and_snapshots(family):
 @pytest.mark.parametrize("penalty_name", PENALTY_NAMES)
 def test_trainable_families_accept_every_penalty(family, penalty_name):
     penalty = build_penalty(penalty_name, weight=2.0, warmup_steps=3)
-    model = build_model(family, {}, seed=0).fit(TRAIN, val=VAL, penalty=penalty, trainer=FAST)
+    model = build_model(family, {}, seed=0).fit(TRAIN, val=VAL, penalty=penalty, fit_config=FAST)
     assert [e["penalty_weight"] for e in model.history_] == [0.0, 2.0]  # warm-up, then the weight
     assert all(np.isfinite(e["train_loss"]) for e in model.history_)
     assert np.isfinite(model.predict(TRAIN.X)).all()
@@ -135,7 +135,7 @@ def test_closed_form_families_ignore_penalties(family):
 
 @pytest.mark.parametrize("family", MODEL_FAMILIES)
 def test_state_dict_round_trip_into_a_fresh_instance(family):
-    model = build_model(family, {}, seed=1).fit(TRAIN, val=VAL, trainer=FAST)
+    model = build_model(family, {}, seed=1).fit(TRAIN, val=VAL, fit_config=FAST)
     # The way a run stores it: every entry as a torch tensor (numpy arrays and tensors both load back).
     stored = {k: torch.as_tensor(np.asarray(v)) for k, v in model.state_dict().items()}
     fresh = build_model(family, {}, seed=99).load_state_dict(stored)
@@ -206,7 +206,7 @@ def test_var_recovers_a_known_transition_matrix_and_iterates_it():
                                                  ("ridge", {"alpha": -1.0}, "model.alpha")])
 def test_bad_parameter_values_fail_at_fit_with_the_field_name(family, params, field):
     with pytest.raises(InputError, match=field):
-        build_model(family, params, seed=0).fit(TRAIN, trainer=FAST)
+        build_model(family, params, seed=0).fit(TRAIN, fit_config=FAST)
 
 
 def test_non_finite_training_data_is_rejected():

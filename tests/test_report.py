@@ -1,4 +1,4 @@
-"""The HTML report on the hand-made grid: self-contained, cautious, oracle always labelled."""
+"""The HTML report on the hand-made grid: self-contained, cautious, peek always labelled."""
 
 import base64
 import re
@@ -13,13 +13,13 @@ from pipeline import selection
 from pipeline.commands.demo import CAUTION
 from pipeline.report import figures
 
-ORACLE_LABEL = selection.label("target-oracle")
+PEEK_LABEL = selection.label("target-peek")
 
 
 @pytest.fixture(scope="module")
 def report(tmp_path_factory):
     root = tmp_path_factory.mktemp("report")
-    page, out = build_report(root, {"selection": "source-val", "figure_dpi": 60, "top_rows": 5,
+    page, out = build_report(root, {"selection": "source-holdout", "figure_dpi": 60, "top_rows": 5,
                                     "title": "grid test"}, n_boot=200)
     return {"root": root, "page": page, "path": out}
 
@@ -60,17 +60,18 @@ def test_every_number_is_traceable_to_run_ids(report):
     assert all(run_id in provenance for run_id in runs["run_id"])
 
 
-def test_oracle_never_appears_without_its_upper_bound_label(report):
+def test_peek_never_appears_without_its_upper_bound_label(report):
     page = report["page"]
-    blocks = re.findall(r'<(figure|table|p) data-selection="target-oracle".*?</\1>', page, flags=re.S)
-    full = re.findall(r'<(?:figure|table|p) data-selection="target-oracle".*?</(?:figure|table|p)>', page, flags=re.S)
+    blocks = re.findall(r'<(figure|table|p|th) data-selection="target-peek".*?</\1>', page, flags=re.S)
+    full = re.findall(r'<(?:figure|table|p|th) data-selection="target-peek".*?</(?:figure|table|p|th)>', page,
+                      flags=re.S)
     assert len(blocks) >= 3
     for block in full:
         assert "upper bound" in block
-    # any mention of the oracle rule name in text comes with the label
-    text = re.sub(r'data-selection="target-oracle"', "", re.sub(r"base64,[^\"]+", "", page))
-    for match in re.finditer("target-oracle", text):
-        assert text[match.start():match.start() + len(ORACLE_LABEL)] == ORACLE_LABEL
+    # any mention of the peek rule name in text comes with the label
+    text = re.sub(r'data-selection="target-peek"', "", re.sub(r"base64,[^\"]+", "", page))
+    for match in re.finditer("target-peek", text):
+        assert text[match.start():match.start() + len(PEEK_LABEL)] == PEEK_LABEL
 
 
 def _all_titles(fig) -> str:
@@ -79,16 +80,16 @@ def _all_titles(fig) -> str:
     return " ".join(texts)
 
 
-def test_oracle_figure_titles_say_upper_bound(report):
+def test_peek_figure_titles_say_upper_bound(report):
     runs = pd.read_parquet(report["root"] / "results" / "grid.parquet")
     summary = pd.read_csv(report["root"] / "results" / "grid.csv")
-    oracle = summary[summary.selection_rule == "target-oracle"]
-    assert "upper bound" in _all_titles(figures.grid_heatmap(oracle, "target-oracle"))
-    assert "upper bound" in _all_titles(figures.horizon_curves(runs, "target-oracle"))
-    assert "upper bound" in _all_titles(figures.exceedance_bars(runs, "target-oracle"))
+    peek = summary[summary.selection_rule == "target-peek"]
+    assert "upper bound" in _all_titles(figures.grid_heatmap(peek, "target-peek"))
+    assert "upper bound" in _all_titles(figures.horizon_curves(runs, "target-peek"))
+    assert "upper bound" in _all_titles(figures.exceedance_bars(runs, "target-peek"))
     assert "upper bound" in _all_titles(figures.selection_comparison(summary))
-    assert "upper bound" not in _all_titles(figures.grid_heatmap(summary[summary.selection_rule == "source-val"],
-                                                                 "source-val"))
+    assert "upper bound" not in _all_titles(figures.grid_heatmap(summary[summary.selection_rule == "source-holdout"],
+                                                                 "source-holdout"))
 
 
 def test_qc_summary_shows_rows_read_kept_and_drop_reasons(report):

@@ -1,4 +1,4 @@
-"""Minimal re-runs, counted on the real DAG, plus `show` / `reproduce` / `runs` / `status` on real runs.
+"""Minimal re-runs, counted on the real DAG, plus `show` / `verify` / `runs` / `status` on real runs.
 
 One tiny base run (3 cities, two explicit pairs so that some splits do not involve a given city,
 persistence + ridge + linear x erm/irm, 1 seed) is shared by every case. Cases that only need to know
@@ -31,7 +31,7 @@ EXPERIMENT = {
     "split": {"schemes": ["pairs"], "pairs": PAIRS, "cities": ["arlenvik", "brumeholt", "corvessa"]},
     "forecast": {"lookback_hours": 24, "horizon_hours": 6, "stride_hours": 2},
     "sweep": {"models": ["persistence", "ridge", "linear"], "penalties": ["erm", "irm"], "seeds": [0]},
-    "trainer": {"max_steps": 30, "eval_every": 10, "batch_size": 64},
+    "fit": {"max_steps": 30, "eval_every": 10, "batch_size": 64},
     "penalty": {"warmup_steps": 10},
     "report": {"bootstrap_samples": 200},
     "tracking": {"experiment": "shiftgrid-rerun"},
@@ -166,10 +166,10 @@ def test_show_prints_every_section(base, plan):
 
 
 @pytest.mark.e2e
-def test_reproduce_reports_identical_and_touches_no_record(base, plan):
+def test_verify_reports_identical_and_touches_no_record(base, plan):
     before = records(base)
     record = before[plan.run_record(split_of(plan, "brumeholt"), {"model": "linear", "penalty": "irm", "seed": 0})]
-    again = shiftgrid(base, "reproduce", record["run_id"], *OVERRIDES)
+    again = shiftgrid(base, "verify", record["run_id"], *OVERRIDES)
     assert again.returncode == 0, (again.stdout, again.stderr)
     assert "identical" in again.stdout and "timing metrics" in again.stdout
     assert records(base) == before  # no run record rewritten, nothing superseded
@@ -177,7 +177,7 @@ def test_reproduce_reports_identical_and_touches_no_record(base, plan):
 
     client = client_for(plan.tracking_uri)
     assert "superseded_by" not in client.get_run(record["run_id"]).data.tags
-    scratch = client.get_experiment_by_name("shiftgrid-rerun-reproduce")
+    scratch = client.get_experiment_by_name("shiftgrid-rerun-verify")
     assert scratch is not None and len(client.search_runs([scratch.experiment_id])) == 1
 
 
@@ -298,9 +298,9 @@ def test_case1_new_rows_rerun_only_splits_of_that_city_and_supersede(base, plan)
     old_id = before[plan.run_record(touched, {"model": "linear", "penalty": "erm", "seed": 0})]["run_id"]
     shown = shiftgrid(base, "show", old_id, *OVERRIDES)
     assert "SUPERSEDED by run" in shown.stdout and "WARNING: the data of arlenvik changed" in shown.stdout
-    refused = shiftgrid(base, "reproduce", old_id, *OVERRIDES)
+    refused = shiftgrid(base, "verify", old_id, *OVERRIDES)
     assert refused.returncode == 2 and refused.stderr.count("\n") == 1 and "--force" in refused.stderr
-    forced = shiftgrid(base, "reproduce", old_id, *OVERRIDES, "--force")
+    forced = shiftgrid(base, "verify", old_id, *OVERRIDES, "--force")
     # on new data the re-trained run differs (exit 1, differences listed) unless nothing changed at all
     assert forced.returncode in (0, 1), forced.stderr
     assert ("identical" in forced.stdout) == (forced.returncode == 0)

@@ -16,7 +16,7 @@ from pipeline.demo.sem import environment_params, intro_example, simulate_series
 from pipeline.errors import InputError
 from pipeline.models import build_model
 from pipeline.penalties import build_penalty
-from pipeline.train_loop import TrainerConfig
+from pipeline.train_loop import FitConfig
 from pipeline.windows import WindowSet
 from tests.sem_dag import sem_results
 
@@ -72,9 +72,9 @@ def test_pooled_erm_through_ridge_windows_equals_the_closed_form():
 
 
 def fit_linear(environments, penalty: str):
-    trainer = TrainerConfig(max_steps=600, batch_size=15_000, lr=0.05, eval_every=50, patience=100)
+    fit_config = FitConfig(max_steps=600, batch_size=15_000, lr=0.05, eval_every=50, patience=100)
     return build_model("linear", {}, seed=0).fit(
-        window_set(environments), None, build_penalty(penalty, weight=1e3, warmup_steps=100), trainer)
+        window_set(environments), None, build_penalty(penalty, weight=1e3, warmup_steps=100), fit_config)
 
 
 def test_irm_linear_model_recovers_the_invariant_coefficients_and_wins_where_the_mechanism_changes():
@@ -125,7 +125,7 @@ def test_the_grid_of_a_dag_run_shows_irm_ahead_of_erm_where_the_spurious_mechani
     _, results = sem_results(tmp_path_factory, "settings_three_envs")
     grid = pd.read_csv(results / "grid.csv")
     assert set(grid["target"]) == {"driftmere"}
-    cells = grid[(grid["model"] == "linear") & (grid["selection_rule"] == "source-val")]
+    cells = grid[(grid["model"] == "linear") & (grid["selection_rule"] == "source-holdout")]
     cells = cells.set_index("penalty")["mean"]  # grid metric: report.metric = mse (canonical units)
     # Same ordering as the paper's example: the invariance penalty beats pooled ERM on the environment
     # whose spurious mechanism changed (full-size measurement in docs/known-answers.md).

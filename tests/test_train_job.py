@@ -13,7 +13,7 @@ from pipeline.splits import build_split, plan_splits, write_split  # noqa: E402
 from pipeline.tracking import SUPERSEDED_TAG, artifact_location, client_for, setup_store  # noqa: E402
 from pipeline.train_job import run_train_job  # noqa: E402
 
-TRAINER = {"max_steps": 10, "batch_size": 16, "lr": 1e-3, "weight_decay": 0.0, "eval_every": 5, "patience": 8,
+FIT_SETTINGS = {"max_steps": 10, "batch_size": 16, "lr": 1e-3, "weight_decay": 0.0, "eval_every": 5, "patience": 8,
            "grad_clip": 1.0, "threads": 1}
 FORECAST = {"target": "pm25", "lookback_hours": 24, "horizon_hours": 6, "stride_hours": 4, "fill_limit_hours": 3,
             "calendar": True, "exclude_features": []}
@@ -22,7 +22,7 @@ FORECAST = {"target": "pm25", "lookback_hours": 24, "horizon_hours": 6, "stride_
 def job(model: str, params: dict, penalty: str = "na") -> dict:
     return {"model_name": model, "model": {"family": model, **params}, "penalty_name": penalty,
             "penalty": None if penalty == "na" else {"name": penalty, "weight": 1.0, "warmup_steps": 0, "extra": {}},
-            "trainer": TRAINER, "selection": {"rule": "source-val", "also": ["target-oracle"]},
+            "fit": FIT_SETTINGS, "selection": {"rule": "source-holdout", "also": ["target-peek"]},
             "forecast": FORECAST, "metrics": {"exceedance_threshold": 35.0}}
 
 

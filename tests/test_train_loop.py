@@ -12,7 +12,7 @@ from pipeline import train_loop
 from pipeline.errors import InputError
 from pipeline.models.neural import LinearMap, MLPNet
 from pipeline.penalties import ERMPenalty, build_penalty
-from pipeline.train_loop import (EnvironmentBalancedSampler, TrainerConfig, predict_network,
+from pipeline.train_loop import (EnvironmentBalancedSampler, FitConfig, predict_network,
                                  train_network)
 
 sys.path.insert(0, str(Path(__file__).resolve().parent))
@@ -66,29 +66,29 @@ class RecordingERM(ERMPenalty):
 def test_every_training_batch_holds_every_environment():
     penalty = RecordingERM()
     train_network(mlp, make_windows(), penalty=penalty,
-                  trainer=TrainerConfig(max_steps=5, batch_size=32, eval_every=5))
+                  fit_config=FitConfig(max_steps=5, batch_size=32, eval_every=5))
     assert penalty.batch_shapes == [[(10, 3), (10, 3), (10, 3)]] * 5
 
 
 def test_same_seed_gives_bitwise_identical_weights_and_leaves_global_rng_alone():
-    windows, cfg = make_windows(), TrainerConfig(max_steps=20, batch_size=24, eval_every=10, lr=1e-2)
+    windows, cfg = make_windows(), FitConfig(max_steps=20, batch_size=24, eval_every=10, lr=1e-2)
     rng_before = torch.get_rng_state()
     first, _ = train_network(mlp, windows, penalty=build_penalty("irm", weight=3.0, warmup_steps=5),
-                             trainer=cfg, seed=11)
+                             fit_config=cfg, seed=11)
     second, _ = train_network(mlp, windows, penalty=build_penalty("irm", weight=3.0, warmup_steps=5),
-                              trainer=cfg, seed=11)
+                              fit_config=cfg, seed=11)
     assert torch.equal(torch.get_rng_state(), rng_before)
     for (name, a), (_, b) in zip(first.state_dict().items(), second.state_dict().items()):
         assert torch.equal(a, b), name
-    third, _ = train_network(mlp, windows, trainer=cfg, seed=12)
+    third, _ = train_network(mlp, windows, fit_config=cfg, seed=12)
     assert not torch.equal(first.state_dict()["head.weight"], third.state_dict()["head.weight"])
 
 
 def test_a_reused_groupdro_penalty_is_reset_so_refits_match():
-    windows, cfg = make_windows(), TrainerConfig(max_steps=8, batch_size=24, eval_every=4)
+    windows, cfg = make_windows(), FitConfig(max_steps=8, batch_size=24, eval_every=4)
     penalty = build_penalty("groupdro", weight=1.0, eta=1.0)
-    first, _ = train_network(mlp, windows, penalty=penalty, trainer=cfg, seed=0)
-    second, _ = train_network(mlp, windows, penalty=penalty, trainer=cfg, seed=0)
+    first, _ = train_network(mlp, windows, penalty=penalty, fit_config=cfg, seed=0)
+    second, _ = train_network(mlp, windows, penalty=penalty, fit_config=cfg, seed=0)
     assert all(torch.equal(a, b) for a, b in zip(first.state_dict().values(), second.state_dict().values()))
 
 
@@ -106,7 +106,7 @@ class ConstantForecast(nn.Module):
 def test_early_stopping_on_a_plateau():
     windows = make_windows()
     _, result = train_network(ConstantForecast, windows, val={"source": make_windows(seed=1)},
-                              trainer=TrainerConfig(max_steps=1000, eval_every=5, patience=3))
+                              fit_config=FitConfig(max_steps=1000, eval_every=5, patience=3))
     # First evaluation sets the best value; three more without improvement stop the fit.
     assert result.stop_reason == "early_stopping"
     assert result.final_step == 20 and result.best_step == 5
@@ -120,14 +120,14 @@ class Exploding(ConstantForecast):
 
 def test_a_non_finite_loss_stops_the_fit_and_still_leaves_a_snapshot():
     _, result = train_network(Exploding, make_windows(), val={"source": make_windows(seed=1)},
-                              trainer=TrainerConfig(max_steps=50, eval_every=5))
+                              fit_config=FitConfig(max_steps=50, eval_every=5))
     assert result.stop_reason == "non_finite_loss" and result.final_step == 0
     assert sorted(result.snapshots) == [0] and [e["step"] for e in result.history] == [0]
 
 
 def test_no_early_stopping_without_a_source_set():
     _, result = train_network(ConstantForecast, make_windows(), val={"target": make_windows(seed=1)},
-                              trainer=TrainerConfig(max_steps=30, eval_every=5, patience=1))
+                              fit_config=FitConfig(max_steps=30, eval_every=5, patience=1))
     assert result.stop_reason == "max_steps" and result.final_step == 30 and result.best_step is None
     assert "val/target/all" in result.history[-1]
 
@@ -137,7 +137,7 @@ def test_warmup_weight_in_history_and_optimizer_rebuilt_at_the_switch(monkeypatc
     real_make_optimizer = train_loop.make_optimizer
     monkeypatch.setattr(train_loop, "make_optimizer", lambda *a: built.append(1) or real_make_optimizer(*a))
     _, result = train_network(mlp, make_windows(), penalty=build_penalty("vrex", weight=4.0, warmup_steps=10),
-                              trainer=TrainerConfig(max_steps=20, batch_size=24, eval_every=5))
+                              fit_config=FitConfig(max_steps=20, batch_size=24, eval_every=5))
     assert [e["penalty_weight"] for e in result.history] == [0.0, 0.0, 4.0, 4.0]
     assert len(built) == 2  # initial optimizer + fresh one when the weight switches on
 
@@ -145,7 +145,7 @@ def test_warmup_weight_in_history_and_optimizer_rebuilt_at_the_switch(monkeypatc
 def test_validation_risks_are_mse_overall_and_per_environment():
     val = make_windows(sizes=(7, 4), seed=3)
     network, result = train_network(lambda: LinearMap(6, 2, 3), make_windows(), val={"source": val},
-                                    trainer=TrainerConfig(max_steps=4, eval_every=4))
+                                    fit_config=FitConfig(max_steps=4, eval_every=4))
     entry = result.history[-1]
     squared = (predict_network(network, val.X) - val.y) ** 2
     assert entry["val/source/all"] == pytest.approx(squared.mean(), rel=1e-6)
@@ -158,27 +158,27 @@ def test_validation_risks_are_mse_overall_and_per_environment():
 def test_learning_actually_reduces_the_validation_risk():
     val = make_windows(seed=2)
     _, result = train_network(lambda: LinearMap(6, 2, 3), make_windows(), val={"source": val},
-                              trainer=TrainerConfig(max_steps=200, eval_every=50, lr=3e-2, batch_size=30))
+                              fit_config=FitConfig(max_steps=200, eval_every=50, lr=3e-2, batch_size=30))
     # Predicting the mean would score var(y) ~ 0.45; the noise floor is 0.1^2 = 0.01.
     assert result.history[-1]["val/source/all"] < 0.1 * float(val.y.var())
 
 
-@pytest.mark.parametrize("values,field", [({"max_steps": 0}, "trainer.max_steps"),
-                                          ({"lr": 0.0}, "trainer.lr"),
-                                          ({"grad_clip": -1.0}, "trainer.grad_clip"),
-                                          ({"batch_size": 2.5}, "trainer.batch_size")])
-def test_bad_trainer_values_raise_input_error(values, field):
+@pytest.mark.parametrize("values,field", [({"max_steps": 0}, "fit.max_steps"),
+                                          ({"lr": 0.0}, "fit.lr"),
+                                          ({"grad_clip": -1.0}, "fit.grad_clip"),
+                                          ({"batch_size": 2.5}, "fit.batch_size")])
+def test_bad_fit_values_raise_input_error(values, field):
     with pytest.raises(InputError, match=field):
-        TrainerConfig(**values)
+        FitConfig(**values)
 
 
-def test_unknown_trainer_key_is_named():
+def test_unknown_fit_key_is_named():
     with pytest.raises(InputError, match="unknown key 'epochs'"):
-        TrainerConfig.from_dict({"epochs": 3})
+        FitConfig.from_dict({"epochs": 3})
 
 
 def test_non_finite_validation_data_is_rejected():
     val = make_windows(seed=1)
     val.y[0, 0] = np.inf
     with pytest.raises(InputError, match="val/source.y: 1 non-finite values"):
-        train_network(mlp, make_windows(), val={"source": val}, trainer=TrainerConfig(max_steps=1))
+        train_network(mlp, make_windows(), val={"source": val}, fit_config=FitConfig(max_steps=1))

@@ -1,4 +1,5 @@
-"""`shiftgrid grid [--target T] [--model M] [--penalty P] [--metric NAME] [--selection RULE] [--format F]`.
+"""`shiftgrid grid [OVERRIDES...] [--target T] [--model M] [--penalty P] [--metric NAME] [--selection RULE]
+[--format F]`.
 
 Reads results/grid.parquet (one row per run; no MLflow needed) and results/grid_dm.csv (Diebold-Mariano
 tests, when present); prints the ranked grid as a table readable at 100 columns (best cell per split
@@ -29,6 +30,7 @@ def _csv_list(text: str | None) -> list[str] | None:
 
 
 def add_arguments(parser) -> None:
+    parser.add_argument("overrides", nargs="*", help="Hydra overrides, as for `run`, e.g. experiment=demo")
     parser.add_argument("--results", help="results folder (default: results_dir of the config)")
     parser.add_argument("--target", help="only these target cities (comma-separated)")
     parser.add_argument("--model", help="only these models (comma-separated)")
@@ -120,18 +122,20 @@ def render(summary: pd.DataFrame, fmt: str) -> str:
     return json.dumps(json.loads(out.to_json(orient="records")), indent=1)
 
 
-def _config(root: Path):
-    from pipeline.config import compose_config
+def _config(root: Path, overrides: list[str]):
+    from pipeline.config import compose_config, expand_sweep_overrides
 
-    return compose_config([], root) if (Path(root) / "config").exists() else None
+    if not (Path(root) / "config").exists():
+        return None
+    return compose_config(expand_sweep_overrides(list(overrides)), root)
 
 
 def run(args) -> int:
     root = Path(args.root)
-    cfg = _config(root)
+    cfg = _config(root, args.overrides)
     results = Path(args.results) if args.results else root / (cfg.results_dir if cfg else "results")
     metric = args.metric or (cfg.report.metric if cfg else "mae")
-    rule = args.selection or (cfg.report.selection if cfg else "source-val")
+    rule = args.selection or (cfg.report.selection if cfg else "source-holdout")
     n_boot = int(cfg.report.bootstrap_samples) if cfg else 2000
     summary = grid_table(results, metric, rule, n_boot, _csv_list(args.target), _csv_list(args.model),
                          _csv_list(args.penalty))

@@ -21,9 +21,12 @@ def add_arguments(parser) -> None:
     parser.add_argument("overrides", nargs="*", help="Hydra overrides locating the store, e.g. experiment=demo")
     parser.add_argument("--tracking-uri", help="MLflow tracking URI (default: the config's store)")
     parser.add_argument("--experiment", help="MLflow experiment (default: tracking.experiment)")
-    for name in ("target", "source", "model", "penalty"):
-        parser.add_argument(f"--{name}", help=f"only runs with this {name} (n/a for baselines' penalty)")
-    parser.add_argument("--seed", type=int)
+    parser.add_argument("--target", help="only runs whose target city is this one")
+    parser.add_argument("--source", help="only runs that have this city among their source cities")
+    parser.add_argument("--model", help="only runs of this model (a name of the sweep, e.g. lstm)")
+    parser.add_argument("--penalty", help="only runs with this penalty (erm, irm, vrex, groupdro; n/a for the "
+                                          "closed-form baselines)")
+    parser.add_argument("--seed", type=int, help="only runs with this seed")
     parser.add_argument("--since", help="only runs started on or after this date (YYYY-MM-DD, UTC)")
     state = parser.add_mutually_exclusive_group()
     state.add_argument("--current", action="store_true", help="only runs the grid uses")
@@ -80,13 +83,13 @@ def search(client, experiment_id: str, args) -> list[dict]:
 
 
 def format_table(rows: list[dict]) -> str:
-    lines = [f"{'run':<12} {'started (UTC)':<16} {'sources -> target':<24} {'model':<12} {'penalty':<8} "
+    lines = [f"{'run':<12} {'started (UTC)':<16} {'target':<10} {'sources':<15} {'model':<11} {'penalty':<8} "
              f"{'seed':>4} {'state':<10} {'mae':>6}"]
     for row in rows:
-        route = f"{row['sources']} -> {row['target']}"
         mae = f"{row['target_mae']:.3g}" if row["target_mae"] is not None else "-"
-        lines.append(f"{row['run_id'][:12]:<12} {row['started']:<16} {route[:24]:<24} {str(row['model'])[:12]:<12} "
-                     f"{str(row['penalty'])[:8]:<8} {str(row['seed']):>4} {row['state']:<10} {mae:>6}")
+        lines.append(f"{row['run_id'][:12]:<12} {row['started']:<16} {str(row['target'])[:10]:<10} "
+                     f"{str(row['sources'])[:15]:<15} {str(row['model'])[:11]:<11} {str(row['penalty'])[:8]:<8} "
+                     f"{str(row['seed']):>4} {row['state']:<10} {mae:>6}")
     lines.append(f"{len(rows)} runs (`shiftgrid show RUN` accepts the 12-character prefix)")
     return "\n".join(lines)
 
@@ -95,9 +98,7 @@ def run(args) -> int:
     uri, cfg = audit.tracking_uri_for(args.root, args.overrides, args.tracking_uri)
     client = audit.open_store(uri)
     name = args.experiment or cfg.tracking.experiment
-    experiment = client.get_experiment_by_name(name)
-    if experiment is None:
-        raise InputError(f"no MLflow experiment {name!r} in {uri}", field="--experiment")
+    experiment = audit.find_experiment(client, name, args.root)
     rows = search(client, experiment.experiment_id, args)
     if args.format == "json":
         print(json.dumps(rows, indent=1))

@@ -6,7 +6,7 @@ family's `Params` dataclass, plus the run seed.
 
 Contract (sklearn-like): `__init__(seed=0, **params)` only checks the parameter NAMES and stores them
 unchanged (`self.seed`, `self.params`); values are validated in `fit` (Params.__post_init__).
-`fit(train, val=None, penalty=None, trainer=None)` returns self; learned state ends in `_`:
+`fit(train, val=None, penalty=None, fit_config=None)` returns self; learned state ends in `_`:
 `history_`, `snapshot_steps_`, `best_step_`, `stop_reason_`, `n_parameters_`, `fit_seconds_`.
 `predict(X)` returns float32 (n, H) in scaled units. `state_dict()` returns a FLAT dict of arrays
 (torch tensors for torch families, numpy arrays otherwise) holding the weights plus `_meta.lookback`,
@@ -24,7 +24,7 @@ import numpy as np
 import torch
 
 from pipeline.errors import InputError
-from pipeline.train_loop import TrainerConfig, check_window_set, predict_network, train_network
+from pipeline.train_loop import FitConfig, check_window_set, predict_network, train_network
 
 
 META_PREFIX = "_meta."  # state_dict keys that hold shapes, not weights
@@ -139,13 +139,13 @@ class ForecastModel:
 class ClosedFormModel(ForecastModel):
     """Families fitted without gradient steps (baselines, ridge, VAR).
 
-    They ignore `val`, `penalty` and `trainer`: any penalty, erm or not, is accepted and has NO
+    They ignore `val`, `penalty` and `fit_config`: any penalty, erm or not, is accepted and has NO
     effect (the grid labels such cells penalty "n/a"). history_ == [] and the only snapshot is step 0.
     """
 
     trainable = False
 
-    def fit(self, train, val=None, penalty=None, trainer=None) -> "ClosedFormModel":
+    def fit(self, train, val=None, penalty=None, fit_config=None) -> "ClosedFormModel":
         self._start_fit(train)
         self._fit_closed_form(train)
         self.n_parameters_ = sum(int(np.size(v)) for v in self._weights().values())
@@ -206,13 +206,13 @@ class TorchForecaster(ForecastModel):
     def build_network(self, lookback: int, n_features: int, horizon: int) -> torch.nn.Module:
         raise NotImplementedError
 
-    def fit(self, train, val=None, penalty=None, trainer=None) -> "TorchForecaster":
+    def fit(self, train, val=None, penalty=None, fit_config=None) -> "TorchForecaster":
         self._start_fit(train)
-        if isinstance(trainer, dict):
-            trainer = TrainerConfig.from_dict(trainer)
+        if isinstance(fit_config, dict):
+            fit_config = FitConfig.from_dict(fit_config)
         shape = (self.lookback_, self.n_features_, self.horizon_)
         self.network_, result = train_network(lambda: self.build_network(*shape), train, val=val,
-                                              penalty=penalty, trainer=trainer, seed=self.seed)
+                                              penalty=penalty, fit_config=fit_config, seed=self.seed)
         self.history_ = result.history
         self._snapshots = result.snapshots
         self.snapshot_steps_ = sorted(result.snapshots)

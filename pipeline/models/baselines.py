@@ -1,7 +1,7 @@
 """Reference forecasts with nothing (or almost nothing) to learn: persistence and seasonal naive.
 
 Reads window sets (only the target column of X is used: `target_index`); writes nothing. Obeys
-`model.season_hours` (seasonal_naive). Both ignore penalties and trainer settings (see ClosedFormModel).
+`model.season_hours` (seasonal_naive). Both ignore penalties and fit settings (see ClosedFormModel).
 """
 
 from __future__ import annotations

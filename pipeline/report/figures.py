@@ -3,7 +3,7 @@
 Reads tables handed over by pipeline.report.html (grid summary, run table, Friedman result, shift
 table); writes nothing (`png_base64` turns a figure into an embeddable string). Config keys obeyed
 (passed in): report.figure_dpi. Every figure built from one selection rule carries
-pipeline.selection.label(rule) in its title, so target-oracle figures always read "upper bound".
+pipeline.selection.label(rule) in its title, so target-peek figures always read "upper bound".
 """
 
 from __future__ import annotations
@@ -161,7 +161,7 @@ def exceedance_bars(runs: pd.DataFrame, rule: str, threshold: str | None = None)
 
 
 def selection_comparison(summary_all: pd.DataFrame):
-    """Mean metric of each model+penalty under every logged selection rule (oracle = upper bound)."""
+    """Mean metric of each model+penalty under every logged selection rule (peek = upper bound)."""
     metric = summary_all["metric"].iloc[0]
     per_rule = summary_all.groupby(["combo", "selection_rule"])["mean"].mean().unstack("selection_rule")
     rules = [rule for rule in grid_stats.RULES if rule in per_rule.columns]

@@ -5,7 +5,7 @@ grid_meta.json, results/shift.csv (optional), data/qc/<city>.json and results/sp
 Writes the HTML file. Config keys obeyed (the report slice): report.title, report.selection,
 report.figure_dpi, report.top_rows (rows of the summary table shown per split, best first).
 Every figure and table that shows numbers of one selection rule names it with
-pipeline.selection.label, so anything from target-oracle reads "upper bound".
+pipeline.selection.label, so anything from target-peek reads "upper bound".
 """
 
 from __future__ import annotations
@@ -34,10 +34,14 @@ def _figure(fig, dpi: int, caption: str, rule: str | None) -> str:
             f"<figcaption>{E(caption)}</figcaption></figure>")
 
 
-def _table(frame: pd.DataFrame, caption: str, rule: str | None = None, classes: str = "") -> str:
+def _table(frame: pd.DataFrame, caption: str, rule: str | None = None, classes: str = "",
+           column_rules: dict[str, str] | None = None) -> str:
+    """An HTML table; `column_rules` marks whole columns (header and cells) with the rule they come from."""
     attr = f' data-selection="{E(rule)}"' if rule else ""
-    head = "".join(f"<th>{E(str(col))}</th>" for col in frame.columns)
-    body = "".join("<tr>" + "".join(f"<td>{E(_fmt(value))}</td>" for value in row) + "</tr>"
+    column_rules = column_rules or {}
+    marks = [f' data-selection="{E(column_rules[col])}"' if col in column_rules else "" for col in frame.columns]
+    head = "".join(f"<th{mark}>{E(str(col))}</th>" for col, mark in zip(frame.columns, marks))
+    body = "".join("<tr>" + "".join(f"<td{mark}>{E(_fmt(value))}</td>" for value, mark in zip(row, marks)) + "</tr>"
                    for row in frame.itertuples(index=False))
     return (f'<table class="{classes}"{attr}><caption>{E(caption)}</caption><thead><tr>{head}</tr></thead>'
             f"<tbody>{body}</tbody></table>")
@@ -96,23 +100,33 @@ def summary_table(summary: pd.DataFrame, top_rows: int) -> pd.DataFrame:
                          "W/T/L vs ERM": wtl, "DM p": dm})
 
 
+def other_rule_columns(table: pd.DataFrame, summary_all: pd.DataFrame, meta: dict,
+                       rule: str) -> tuple[pd.DataFrame, dict[str, str]]:
+    """The same cells under every other logged selection rule, as extra columns of the one grid table."""
+    column_rules = {}
+    for other in (r for r in meta["rules"] if r != rule):
+        means = summary_all[summary_all["selection_rule"] == other].set_index(["split", "combo"])["mean"]
+        name = f"mean under {selection.label(other)}"
+        table[name] = [means.get((split, combo), np.nan) for split, combo in zip(table["split"], table["model+penalty"])]
+        column_rules[name] = other
+    return table, column_rules
+
+
 def grid_section(summary_all: pd.DataFrame, meta: dict, rule: str, dpi: int, top_rows: int) -> str:
+    """One grid: the headline rule's heatmap and table; every other rule is a column of that table."""
+    summary = summary_all[summary_all["selection_rule"] == rule]
     parts = ['<section id="grid"><h2>The grid</h2>',
              "<p>Cells: mean of the metric over seeds; colour: relative change against the ERM run of the same "
              f"split and model (blue = better); {figures.BEST_MARK} and a frame mark the best cell of each split. "
              "DM p: Diebold-Mariano test with the Harvey-Leybourne-Newbold correction on paired per-window "
              "absolute errors against the ERM twin (two-sided; † = variance estimate not positive, h = 1 "
-             "fallback).</p>"]
-    ordered = [rule] + [r for r in meta["rules"] if r != rule]
-    for each in ordered:
-        summary = summary_all[summary_all["selection_rule"] == each]
-        if summary.empty:
-            continue
-        parts.append(f"<h3>{E(selection.label(each))}</h3>")
-        parts.append(_figure(figures.grid_heatmap(summary, each), dpi,
-                             _rule_caption(f"Grid heatmap of target {meta['metric']}", each), each))
-        parts.append(_table(summary_table(summary, top_rows),
-                            _rule_caption(f"Summary per split (best {top_rows} per split)", each), each, "grid"))
+             "fallback). Ranks, spread and tests use the headline selection rule; the last columns give the "
+             "same cell's mean under each other logged rule.</p>",
+             _figure(figures.grid_heatmap(summary, rule), dpi,
+                     _rule_caption(f"Grid heatmap of target {meta['metric']}", rule), rule)]
+    table, column_rules = other_rule_columns(summary_table(summary, top_rows), summary_all, meta, rule)
+    parts.append(_table(table, _rule_caption(f"Summary per split (best {top_rows} per split)", rule), rule, "grid",
+                        column_rules))
     return "".join(parts) + "</section>"
 
 
@@ -137,7 +151,7 @@ def ranks_section(summary_all: pd.DataFrame, meta: dict, rule: str, dpi: int) ->
         parts.append(_figure(figures.selection_comparison(summary_all), dpi,
                              "Target metric under each selection rule: "
                              + "; ".join(selection.label(r) for r in meta["rules"]),
-                             "target-oracle" if "target-oracle" in meta["rules"] else None))
+                             "target-peek" if "target-peek" in meta["rules"] else None))
     return "".join(parts) + "</section>"
 
 
@@ -178,7 +192,7 @@ def provenance_section(runs: pd.DataFrame, meta: dict, rule: str) -> str:
     table["commit"] = table["commit"].astype(str).str[:10]
     return ('<section id="provenance"><h2>Provenance</h2><p>Every number above is a mean over the runs below; '
             "<code>shiftgrid show RUN_ID</code> prints everything recorded about one run and "
-            "<code>shiftgrid reproduce RUN_ID</code> re-trains it.</p>"
+            "<code>shiftgrid verify RUN_ID</code> re-trains it.</p>"
             + _table(table, _rule_caption("Runs in the grid", rule), rule, "provenance") + "</section>")
 
 
@@ -196,7 +210,7 @@ def render_report(grid_dir: Path | str, out_path: Path | str, report_cfg: dict, 
                   shift_path: Path | str | None = None) -> str:
     """Build the page and write it to `out_path`; returns the HTML text."""
     runs, summary_all, meta, qc, splits, shift = load_inputs(Path(grid_dir), qc_paths, split_paths, shift_path)
-    rule = report_cfg.get("selection", "source-val")
+    rule = report_cfg.get("selection", "source-holdout")
     rule = rule if rule in meta["rules"] else meta["rules"][0]
     dpi, top_rows = int(report_cfg.get("figure_dpi", 100)), int(report_cfg.get("top_rows", 12))
     threshold = runs.get("param.metrics.exceedance_threshold")

@@ -2,7 +2,7 @@
 
 Reads the original run (tags, metrics, artifacts config/resolved_config.yaml and model/model_state.pt)
 from the MLflow store and the current clean Parquet files (`data.clean_dir`). Writes one new run into a
-scratch experiment `<experiment>-reproduce` of the same store; never writes run records under
+scratch experiment `<experiment>-verify` of the same store; never writes run records under
 results/runs (they go to a temporary folder) and never tags anything superseded.
 Config keys obeyed: data.clean_dir (where the current data is), tracking.uri.
 """
@@ -18,7 +18,7 @@ from pathlib import Path
 from pipeline import audit, provenance
 from pipeline.errors import InputError
 
-SCRATCH_SUFFIX = "-reproduce"
+SCRATCH_SUFFIX = "-verify"
 
 
 def check_data(then: dict[str, str], now: dict[str, str | None], run_id: str, force: bool) -> list[str]:
@@ -32,7 +32,7 @@ def check_data(then: dict[str, str], now: dict[str, str | None], run_id: str, fo
 
 
 def scratch_experiment(client, original_experiment_id: str) -> tuple[str, str]:
-    """(name, id) of `<experiment>-reproduce`; its artifacts sit beside the original experiment's."""
+    """(name, id) of `<experiment>-verify`; its artifacts sit beside the original experiment's."""
     original = client.get_experiment(original_experiment_id)
     name = f"{original.name}{SCRATCH_SUFFIX}"
     location = original.artifact_location
@@ -129,7 +129,7 @@ def compare_runs(client, original_id: str, new_id: str) -> list[str]:
     return differences + compare_curves(client, original_id, new_id, curves)
 
 
-def reproduce(client, run, uri: str, root: Path | str, clean_dir: str, force: bool = False) -> dict:
+def verify_run(client, run, uri: str, root: Path | str, clean_dir: str, force: bool = False) -> dict:
     outcome = retrain(client, run, uri, root, clean_dir, force)
     outcome["differences"] = compare_runs(client, run.info.run_id, outcome["record"]["run_id"])
     return outcome

@@ -1,7 +1,7 @@
-"""`shiftgrid reproduce RUN_ID [--force] [--tracking-uri URI] [OVERRIDES...]`: re-train one run and compare.
+"""`shiftgrid verify RUN_ID [--force] [--tracking-uri URI] [OVERRIDES...]`: re-train one run and compare.
 
 Reads the run's logged config (artifact config/resolved_config.yaml) and the current clean Parquet
-(data.clean_dir); writes one new run into the scratch experiment `<experiment>-reproduce` of the same
+(data.clean_dir); writes one new run into the scratch experiment `<experiment>-verify` of the same
 store, never a run record under results/ and never a superseded tag. Exit 0 when identical, 1 when the
 re-trained run differs, 2 on bad input (including changed data without --force).
 """
@@ -9,7 +9,7 @@ re-trained run differs, 2 on bad input (including changed data without --force).
 from pathlib import Path
 
 from pipeline import audit
-from pipeline import reproduce as reproducing
+from pipeline import verify as verifying
 from pipeline.commands.show import add_common
 
 
@@ -23,6 +23,6 @@ def run(args) -> int:
     uri, cfg = audit.tracking_uri_for(args.root, args.overrides, args.tracking_uri)
     client = audit.open_store(uri)
     found = audit.get_run(client, args.run_id)
-    outcome = reproducing.reproduce(client, found, uri, Path(args.root), cfg.data.clean_dir, force=args.force)
-    print(reproducing.format_outcome(found.info.run_id, outcome))
+    outcome = verifying.verify_run(client, found, uri, Path(args.root), cfg.data.clean_dir, force=args.force)
+    print(verifying.format_outcome(found.info.run_id, outcome))
     return 0 if not outcome["differences"] else 1
