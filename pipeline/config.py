@@ -21,12 +21,12 @@ from hydra import compose, initialize_config_dir
 from hydra.core.config_store import ConfigStore
 from omegaconf import DictConfig, OmegaConf
 
+from pipeline import selection
 from pipeline.errors import InputError
 from pipeline.splits import SplitConfig
 from pipeline.train_loop import FitConfig
 from pipeline.windows import ForecastConfig
 
-SELECTION_RULES = ("source-holdout", "source-rotation", "target-peek")
 NOT_APPLICABLE = "na"  # penalty label of families that are not gradient-trained (shown as "n/a")
 
 
@@ -53,10 +53,10 @@ class PenaltyConfig:
 @dataclass
 class SelectionConfig:
     # The rule whose checkpoint gives a run's headline metrics.
-    rule: str = "source-holdout"
+    rule: str = selection.HOLDOUT
     # Further rules evaluated on the same fit and logged with a prefix, so the grid can show them side by
     # side. source-rotation costs one extra fit per source city, so it is opt-in.
-    also: List[str] = field(default_factory=lambda: ["target-peek"])
+    also: List[str] = field(default_factory=lambda: [selection.PEEK])
 
 
 @dataclass
@@ -82,7 +82,7 @@ class TrackingConfig:
 @dataclass
 class ReportConfig:
     metric: str = "mae"  # any logged target metric: mae, rmse, mse, mase, csi, ...
-    selection: str = "source-holdout"
+    selection: str = selection.HOLDOUT
     bootstrap_samples: int = 2000
     top_rows: int = 12
     figure_dpi: int = 100
@@ -178,8 +178,8 @@ def validate(cfg: DictConfig) -> None:
     from pipeline.penalties import build_penalty
 
     for rule in [cfg.selection.rule, *cfg.selection.also, cfg.report.selection]:
-        if rule not in SELECTION_RULES:
-            raise InputError(f"unknown selection rule {rule!r}; expected one of {', '.join(SELECTION_RULES)}",
+        if rule not in selection.RULES:
+            raise InputError(f"unknown selection rule {rule!r}; expected one of {', '.join(selection.RULES)}",
                              file="config", field="selection")
     model = dict(to_container(cfg.model))
     family = model.pop("family", None)

@@ -22,7 +22,6 @@ HIGHER_IS_BETTER = frozenset({"pod", "csi", "ets"})
 BEST_AT_ONE = frozenset({"bias"})
 BASELINE_PENALTY = "erm"
 NOT_APPLICABLE = "na"  # penalty of families that are not gradient-trained
-RULES = ("source-holdout", "source-rotation", "target-peek")
 ID_COLUMNS = ("split_id", "sources", "target", "model", "family", "penalty")
 MULTIPLE_COMPARISON_CAVEAT = (
     "The Nemenyi critical difference controls the family-wise error over all pairwise comparisons of "
@@ -85,7 +84,7 @@ def metric_column(columns, metric: str, rule: str) -> str:
     ruled = any(col.endswith(f".{metric}") or col.endswith(f".target_{metric}") for col in columns)
     if metric in columns and not ruled:
         return metric
-    available = sorted({col.split(".", 1)[1] for col in columns if col.split(".", 1)[0] in RULES})
+    available = sorted({col.split(".", 1)[1] for col in columns if col.split(".", 1)[0] in selection.RULES})
     if not any(col.startswith(f"{rule}.") for col in columns):
         raise InputError(f"no run logged metrics under selection rule {rule!r}", field="report.selection")
     raise InputError(f"metric {metric!r} was not logged under {rule!r}; available: "
@@ -95,7 +94,7 @@ def metric_column(columns, metric: str, rule: str) -> str:
 
 def available_rules(runs: pd.DataFrame) -> list[str]:
     """Selection rules with at least one logged value in the run table, in the canonical order."""
-    return [rule for rule in RULES
+    return [rule for rule in selection.RULES
             if any(col.startswith(f"{rule}.") and runs[col].notna().any() for col in runs.columns)]
 
 

@@ -14,8 +14,10 @@ Ties go to the earliest step (fewer updates). Families without a training curve 
 
 from __future__ import annotations
 
-PEEK = "target-peek"
+HOLDOUT = "source-holdout"
 ROTATION = "source-rotation"
+PEEK = "target-peek"
+RULES = (HOLDOUT, ROTATION, PEEK)  # the one list of rule names (config check, grid, report, CLI)
 UPPER_BOUND_LABEL = "target-peek (upper bound: selected with target data)"
 
 
@@ -49,7 +51,7 @@ def choose_step(rule: str, history: list[dict], available_steps: list[int],
                 rotation_curves: dict[str, dict[int, float]] | None = None) -> int:
     if not history:
         return available_steps[0] if available_steps else 0
-    if rule == "source-holdout":
+    if rule == HOLDOUT:
         step = _argmin_step(curve(history, "val/source/all"))
     elif rule == PEEK:
         step = _argmin_step(curve(history, "val/target/all"))

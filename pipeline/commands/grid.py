@@ -37,7 +37,7 @@ def add_arguments(parser) -> None:
     parser.add_argument("--penalty", help="only these penalties (comma-separated; n/a for baselines)")
     parser.add_argument("--metric", help="any logged metric: mae, rmse, mase, csi, target_mae_h06, ... "
                                          "(default: report.metric)")
-    parser.add_argument("--selection", choices=grid_stats.RULES, help="selection rule (default: report.selection)")
+    parser.add_argument("--selection", choices=selection.RULES, help="selection rule (default: report.selection)")
     parser.add_argument("--format", choices=FORMATS, default="table")
 
 
@@ -135,7 +135,7 @@ def run(args) -> int:
     cfg = _config(root, args.overrides)
     results = Path(args.results) if args.results else root / (cfg.results_dir if cfg else "results")
     metric = args.metric or (cfg.report.metric if cfg else "mae")
-    rule = args.selection or (cfg.report.selection if cfg else "source-holdout")
+    rule = args.selection or (cfg.report.selection if cfg else selection.HOLDOUT)
     n_boot = int(cfg.report.bootstrap_samples) if cfg else 2000
     summary = grid_table(results, metric, rule, n_boot, _csv_list(args.target), _csv_list(args.model),
                          _csv_list(args.penalty))

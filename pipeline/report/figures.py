@@ -164,7 +164,7 @@ def selection_comparison(summary_all: pd.DataFrame):
     """Mean metric of each model+penalty under every logged selection rule (peek = upper bound)."""
     metric = summary_all["metric"].iloc[0]
     per_rule = summary_all.groupby(["combo", "selection_rule"])["mean"].mean().unstack("selection_rule")
-    rules = [rule for rule in grid_stats.RULES if rule in per_rule.columns]
+    rules = [rule for rule in selection.RULES if rule in per_rule.columns]
     fig, ax = plt.subplots(figsize=(max(6.5, 0.9 * len(per_rule) + 2.5), 3.8))
     width = 0.8 / max(1, len(rules))
     for index, rule in enumerate(rules):

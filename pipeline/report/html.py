@@ -151,7 +151,7 @@ def ranks_section(summary_all: pd.DataFrame, meta: dict, rule: str, dpi: int) ->
         parts.append(_figure(figures.selection_comparison(summary_all), dpi,
                              "Target metric under each selection rule: "
                              + "; ".join(selection.label(r) for r in meta["rules"]),
-                             "target-peek" if "target-peek" in meta["rules"] else None))
+                             selection.PEEK if selection.PEEK in meta["rules"] else None))
     return "".join(parts) + "</section>"
 
 
@@ -210,7 +210,7 @@ def render_report(grid_dir: Path | str, out_path: Path | str, report_cfg: dict, 
                   shift_path: Path | str | None = None) -> str:
     """Build the page and write it to `out_path`; returns the HTML text."""
     runs, summary_all, meta, qc, splits, shift = load_inputs(Path(grid_dir), qc_paths, split_paths, shift_path)
-    rule = report_cfg.get("selection", "source-holdout")
+    rule = report_cfg.get("selection", selection.HOLDOUT)
     rule = rule if rule in meta["rules"] else meta["rules"][0]
     dpi, top_rows = int(report_cfg.get("figure_dpi", 100)), int(report_cfg.get("top_rows", 12))
     threshold = runs.get("param.metrics.exceedance_threshold")
