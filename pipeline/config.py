@@ -154,7 +154,7 @@ def to_container(node: Any) -> Any:
 
 
 def canonical_json(value: Any) -> str:
-    """Sorted-key JSON: Snakemake compares params by value, so key order must not vary (STACK-NOTES)."""
+    """Sorted-key JSON: Snakemake compares params by value, so key order must not vary."""
     return json.dumps(to_container(value), sort_keys=True, separators=(",", ":"))
 
 

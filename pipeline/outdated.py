@@ -3,7 +3,7 @@
 Reads the text of `snakemake -n` (one block per job: rule, output, reason, wildcards), Snakemake's stored
 job metadata (.snakemake/metadata/<base64 of the output path>: the params of the last execution and the
 sha256 of each input) and the raw dumps. Writes nothing. `--list-changes params` lists every output in
-Snakemake 9.27 (STACK-NOTES), so it is not used. Ingestion runs as a first phase: a raw dump that was only
+Snakemake 9.27, so it is not used. Ingestion runs as a first phase: a raw dump that was only
 touched or rewritten identically re-ingests to a byte-identical table and nothing after it re-runs, so
 such a dump is reported apart from real new data.
 """

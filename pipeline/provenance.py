@@ -1,6 +1,6 @@
 """Provenance as data: digests of code and files, git state, package versions.
 
-Snakemake does not notice changes to modules a step imports (STACK-NOTES), so each rule passes the
+Snakemake does not notice changes to modules a step imports, so each rule passes the
 digest of exactly the source files its step runs as a param: changing the LSTM file re-runs LSTM jobs
 only, changing the training loop re-runs every training job. Reads source files and `git`; writes nothing.
 """

@@ -4,7 +4,7 @@ Reads nothing itself; builds the command lines for `shiftgrid run`, `demo --run`
 overrides travel as `--config overrides="..."` and are re-composed by the Snakefile.
 Ingestion runs as its own first phase: within one invocation Snakemake does not re-check downstream
 jobs after an upstream job finishes, so a byte-identical re-ingested table would otherwise still
-re-run everything after it (STACK-NOTES).
+re-run everything after it.
 """
 
 from __future__ import annotations
@@ -31,7 +31,7 @@ def snakemake_command(overrides: list[str], *, root: Path | str = ".", profile: 
 
 def job_environment() -> dict[str, str]:
     env = dict(os.environ)
-    # glibc malloc churn slows the LSTM ~x1.5 on CPU; these two settings remove it (STACK-NOTES).
+    # glibc malloc churn slows the LSTM ~x1.5 on CPU; these two settings remove it.
     env.setdefault("MALLOC_MMAP_MAX_", "0")
     env.setdefault("MALLOC_TRIM_THRESHOLD_", "68719476736")
     env.setdefault("OMP_NUM_THREADS", "1")

@@ -2,7 +2,7 @@
 
 Writes to the MLflow tracking store named by `tracking.uri` (default: SQLite file
 `<results_dir>/mlflow.db`, artifacts under `<results_dir>/mlartifacts`, both absolute paths).
-A fresh SQLite store opened by parallel jobs breaks (STACK-NOTES), so `setup_store` runs once, in its
+A fresh SQLite store opened by parallel jobs breaks, so `setup_store` runs once, in its
 own rule, before any training job. Every call goes through an explicit MlflowClient (no global run).
 """
 

@@ -6,7 +6,7 @@ generator). Obeys the data-config key `reference_temperature_c` (gas ppb <-> ug/
 Every conversion is affine, canonical = value * factor + offset, and comes back as a `Conversion`
 record so the QC report can state exactly what was applied.
 
-Gas conversion (CHECKS.md section 8; common practice, e.g. US EPA guidance): at 1 atm,
+Gas conversion (common practice, e.g. US EPA guidance): at 1 atm,
 ug/m3 = ppb * MW / Vm and mg/m3 = ppm * MW / Vm. Vm is the trade's conventional 24.45 L/mol at 25 C,
 scaled to other reference temperatures with the ideal gas law: Vm(T) = 24.45 * T / 298.15 K.
 (Why anchor on 24.45 rather than 22.414 * T / 273.15 = 24.465 at 25 C: the published conversion factors
@@ -18,7 +18,7 @@ from dataclasses import dataclass
 from pipeline.errors import InputError
 from pipeline.variables import BY_NAME
 
-# Molecular weights in g/mol, as used by CHECKS.md section 8 (common practice).
+# Molecular weights in g/mol (common practice).
 MOLECULAR_WEIGHT_G_PER_MOL = {"no2": 46.01, "o3": 48.00, "so2": 64.07, "co": 28.01}
 CONVENTIONAL_MOLAR_VOLUME_L = 24.45  # at 25 C and 1 atm (common practice)
 CONVENTIONAL_TEMPERATURE_K = 298.15

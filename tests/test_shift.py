@@ -117,7 +117,7 @@ def test_pairwise_geo_km_agrees_with_geodesic_between_centroids():
     centroids = city_centroids(stations)
     assert centroids.loc["ardent", "lat"] == pytest.approx(10.1, abs=1e-3)
     for city_a, city_b in shift.index:
-        # WGS84 geodesic, geographiclib (Karney 2013); sphere vs ellipsoid: rel 6e-3 (CHECKS.md 10)
+        # WGS84 geodesic, geographiclib (Karney 2013); sphere vs ellipsoid: rel 6e-3
         lat_a, lon_a = centroids.loc[city_a, ["lat", "lon"]]
         lat_b, lon_b = centroids.loc[city_b, ["lat", "lon"]]
         geodesic_km = Geodesic.WGS84.Inverse(lat_a, lon_a, lat_b, lon_b)["s12"] / 1000.0

@@ -15,7 +15,7 @@ GOOD = "a_1,alpha,48.1,10.2,400,urban_traffic\n"
 
 
 def distance_km(a, b):
-    # Reference geodesic on WGS84: geographiclib (Karney 2013), as CHECKS.md section 10 recommends.
+    # Reference geodesic on WGS84: geographiclib (Karney 2013).
     return Geodesic.WGS84.Inverse(a.lat, a.lon, b.lat, b.lon)["s12"] / 1000.0
 
 

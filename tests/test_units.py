@@ -1,4 +1,4 @@
-"""Unit conversions against published values (CHECKS.md section 8) and exact unit definitions."""
+"""Unit conversions against published values (common practice) and exact unit definitions."""
 
 import pytest
 import scipy.constants
@@ -11,21 +11,21 @@ def factor(variable, unit, temperature=25.0):
     return conversion_to_canonical(variable, unit, temperature).factor
 
 
-# CHECKS.md section 8 (common practice, e.g. US EPA guidance; 24.45 L/mol at 25 C, 1 atm).
+# (common practice, e.g. US EPA guidance; 24.45 L/mol at 25 C, 1 atm).
 @pytest.mark.parametrize("variable, expected", [("no2", 1.8818), ("o3", 1.9632), ("so2", 2.6204)])
 def test_one_ppb_in_ug_per_m3_matches_checks_section_8(variable, expected):
     assert factor(variable, "ppb") == pytest.approx(expected, abs=1e-4)
 
 
-def test_co_one_ppm_is_1_1456_mg_per_m3():  # CHECKS.md section 8
+def test_co_one_ppm_is_1_1456_mg_per_m3():  # common practice, values computed
     assert factor("co", "ppm") == pytest.approx(1.1456, abs=1e-4)
 
 
-def test_o3_70_ppb_is_137_42_ug_per_m3():  # CHECKS.md section 8
+def test_o3_70_ppb_is_137_42_ug_per_m3():  # common practice, values computed
     assert conversion_to_canonical("o3", "ppb").apply(70.0) == pytest.approx(137.42, abs=0.01)
 
 
-def test_no2_200_ug_per_m3_is_106_28_ppb():  # CHECKS.md section 8 (inverse direction)
+def test_no2_200_ug_per_m3_is_106_28_ppb():  # common practice (inverse direction)
     assert conversion_to_canonical("no2", "ppb").invert(200.0) == pytest.approx(106.28, abs=0.01)
 
 
@@ -35,7 +35,7 @@ def test_co_ppb_and_no2_ppm_scale_by_a_thousand():
 
 
 def test_20_c_reference_differs_by_about_1_7_percent():
-    # CHECKS.md section 8: EU practice uses 293 K; values differ by ~1.7 % [memory in CHECKS.md].
+    # EU practice uses 293 K; values differ by ~1.7 % [from memory, see docs/references.md].
     ratio = factor("no2", "ppb", 20.0) / factor("no2", "ppb", 25.0)
     assert ratio == pytest.approx(1.017, abs=0.001)
     assert molar_volume_l_per_mol(20.0) == pytest.approx(24.04, abs=0.01)

@@ -200,7 +200,7 @@ def test_scaler_is_fitted_on_source_train_rows_and_floors_the_std():
 
 
 def test_seasonal_naive_scale_matches_the_worked_example():
-    # CHECKS.md section 6 (Hyndman & Koehler 2006; FPP3 seasonal scale): MAE 1.25 gives MASE 0.3125 with
+    # computed with numpy (Hyndman & Koehler 2006; FPP3 seasonal scale): MAE 1.25 gives MASE 0.3125 with
     # m = 1 and 0.833333 with m = 4, so the scales are 1.25 / 0.3125 = 4 and 1.25 / 0.833333 = 1.5
     train = np.array([10, 14, 8, 12, 11, 16, 9, 13, 13, 15, 10, 16], dtype=float)
     assert seasonal_naive_scale([train], period=1) == pytest.approx(1.25 / 0.3125)

@@ -6,7 +6,7 @@ Config keys obeyed (`data.generator` of config/data/sem.yaml): start, days, seed
 delivery {x1, y, x2: [offset, factor]}, environments {name: {s2, x2_noise_var, x2_sign}}.
 
 Two forms of the introductory example of IRMv1 (Arjovsky, Bottou, Gulrajani, Lopez-Paz 2019,
-"Invariant Risk Minimization", arXiv:1907.02893; ../shared/CHECKS.md section 1):
+"Invariant Risk Minimization", arXiv:1907.02893, the example of its section 1):
 
 (a) `intro_example`, independent draws: X1 ~ N(0, s2), Y = X1 + N(0, s2), X2 = sign * Y + N(0, v),
     v = 1 in the paper. Known answers: regressing Y on (X1, X2) gives (1/(s2+1), s2/(s2+1)) in one
@@ -74,7 +74,7 @@ def intro_example(s2: float, n: int, rng: np.random.Generator, x2_noise_var: flo
 def single_environment_coefficients(s2: float, x2_noise_var: float = 1.0) -> tuple[float, float]:
     """Population least-squares weights of Y on (X1, X2) in one environment of form (a) (sign +1).
 
-    With v = 1 this is the paper's (1/(s2+1), s2/(s2+1)) (CHECKS.md section 1); for general v the same
+    With v = 1 this is the paper's (1/(s2+1), s2/(s2+1)) (IRM paper, introductory example); for general v the same
     algebra gives (v/(s2+v), s2/(s2+v)).
     """
     return x2_noise_var / (s2 + x2_noise_var), s2 / (s2 + x2_noise_var)
