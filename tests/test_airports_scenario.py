@@ -11,7 +11,7 @@ import pandas as pd
 import pytest
 
 from pipeline.config import compose_config
-from tests.sem_dag import REPO, make_project, shiftgrid
+from project_copy import REPO, make_project, shiftgrid
 
 pytestmark = pytest.mark.e2e
 OVERRIDES = ["experiment=airports", "sweep.models=[persistence,linear]", "sweep.penalties=[erm]",

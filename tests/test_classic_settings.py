@@ -14,7 +14,7 @@ import pandas as pd
 import pytest
 
 from pipeline.config import compose_config
-from tests.sem_dag import REPO, sem_results
+from project_copy import REPO
 
 SETTINGS = ("settings_two_envs", "settings_three_envs", "settings_three_envs_target_fraction")
 
@@ -36,9 +36,9 @@ def cells(results, metric_column="mean"):
 
 
 @pytest.mark.e2e
-def test_admitting_target_data_rescues_the_pooled_erm_models(tmp_path_factory):
-    _, without = sem_results(tmp_path_factory, "settings_three_envs")
-    _, admitted = sem_results(tmp_path_factory, "settings_three_envs_target_fraction")
+def test_admitting_target_data_rescues_the_pooled_erm_models(sem_runs):
+    _, without = sem_runs.results("settings_three_envs")
+    _, admitted = sem_runs.results("settings_three_envs_target_fraction")
     before, after = cells(without), cells(admitted)  # target MSE (report.metric), source-holdout selection
     assert set(before.index) == set(after.index) == {("ridge", "na"), ("linear", "erm"), ("linear", "irm")}
     for combo in (("ridge", "na"), ("linear", "erm")):

@@ -5,13 +5,11 @@ data/ or results/ is touched. Marked e2e: `make test` runs it; `make test-fast` 
 """
 
 import json
-import sys
 from pathlib import Path
 
 import pytest
 
-sys.path.insert(0, str(Path(__file__).resolve().parent))
-from project_copy import make_project, shiftgrid  # noqa: E402
+from project_copy import make_project, shiftgrid
 
 OVERRIDES = ["experiment=tiny"]
 

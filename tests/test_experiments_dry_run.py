@@ -4,16 +4,14 @@ Raw dumps are written first with `shiftgrid demo --days 2` into a temporary proj
 only needs the files to exist), then `snakemake -n` is run once per experiment.
 """
 
-import sys
 from pathlib import Path
 
 import pytest
 
-sys.path.insert(0, str(Path(__file__).resolve().parent))
-from project_copy import REPO, make_project, shiftgrid  # noqa: E402
+from project_copy import REPO, make_project, shiftgrid
 
-from pipeline.runner import dry_run  # noqa: E402
-from pipeline.workflow import plan_workflow  # noqa: E402
+from pipeline.runner import dry_run
+from pipeline.workflow import plan_workflow
 
 EXPERIMENTS = sorted(p.stem for p in (REPO / "config" / "experiment").glob("*.yaml"))
 

@@ -1,9 +1,7 @@
 """One contract test for every model family (scikit-learn's habit: a generic check run against every
 estimator), plus exact values for the baselines and reference-library checks for ridge and VAR."""
 
-import sys
 from dataclasses import fields
-from pathlib import Path
 
 import numpy as np
 import pytest
@@ -15,8 +13,7 @@ from pipeline.models import MODEL_FAMILIES, NotFittedError, build_model
 from pipeline.penalties import PENALTY_NAMES, build_penalty
 from pipeline.train_loop import FitConfig
 
-sys.path.insert(0, str(Path(__file__).resolve().parent))
-from tiny_windows import TinyWindows  # noqa: E402
+from tiny_windows import TinyWindows
 
 torch.set_num_threads(1)
 

@@ -16,7 +16,8 @@ import pytest
 
 from grid_fixture import build_report
 
-CHROMIUM = Path("/usr/bin/chromium")
+# Found on PATH (Debian installs /usr/bin/chromium; other systems name it chromium-browser).
+CHROMIUM = shutil.which("chromium") or shutil.which("chromium-browser")
 FLAGS = ["--headless", "--no-sandbox", "--disable-gpu", "--disable-background-networking", "--no-first-run",
          "--disable-component-update", "--disable-sync", "--virtual-time-budget=10000"]
 PROBE = """<meta http-equiv="Content-Security-Policy" content="default-src 'none'; img-src data:;
@@ -39,8 +40,9 @@ window.addEventListener("load", () => {
 
 @pytest.fixture(scope="module")
 def report_path(tmp_path_factory):
-    if not CHROMIUM.exists():
-        pytest.skip("headless Chromium test skipped: /usr/bin/chromium is absent (apt-get install -y chromium)")
+    if CHROMIUM is None:
+        pytest.skip("headless Chromium test skipped: no chromium or chromium-browser on PATH "
+                    "(Debian: apt-get install -y chromium)")
     _, out = build_report(tmp_path_factory.mktemp("browser"), {"figure_dpi": 50}, n_boot=100)
     return out
 

@@ -18,10 +18,9 @@ from pathlib import Path
 import pandas as pd
 import pytest
 
-sys.path.insert(0, str(Path(__file__).resolve().parent))
-from project_copy import make_project  # noqa: E402
+from project_copy import make_project
 
-from pipeline.outdated import count_by_rule, parse_dry_run  # noqa: E402
+from pipeline.outdated import count_by_rule, parse_dry_run
 
 REPO = Path(__file__).resolve().parents[1]
 OVERRIDES = ["experiment=rerun"]

@@ -14,15 +14,14 @@ import pandas as pd
 import pytest
 
 from pipeline import selection
-from tests.sem_dag import sem_results
 
 pytestmark = pytest.mark.e2e
 RULES = ("source-holdout", "source-rotation", "target-peek")
 
 
 @pytest.fixture(scope="module")
-def finished(tmp_path_factory):
-    return sem_results(tmp_path_factory, "settings_three_envs")
+def finished(sem_runs):
+    return sem_runs.results("settings_three_envs")
 
 
 def peek_only_numbers(grid: pd.DataFrame) -> set[str]:

@@ -18,7 +18,6 @@ from pipeline.models import build_model
 from pipeline.penalties import build_penalty
 from pipeline.train_loop import FitConfig
 from pipeline.windows import WindowSet
-from tests.sem_dag import sem_results
 
 torch.set_num_threads(1)
 TRAIN_S2 = (0.1, 0.5, 1.0)  # the scenario's three training environments (config/data/sem.yaml)
@@ -121,8 +120,8 @@ def test_time_series_form_keeps_the_marginal_variances_and_the_one_hour_mechanis
 
 
 @pytest.mark.e2e
-def test_the_grid_of_a_dag_run_shows_irm_ahead_of_erm_where_the_spurious_mechanism_changed(tmp_path_factory):
-    _, results = sem_results(tmp_path_factory, "settings_three_envs")
+def test_the_grid_of_a_dag_run_shows_irm_ahead_of_erm_where_the_spurious_mechanism_changed(sem_runs):
+    _, results = sem_runs.results("settings_three_envs")
     grid = pd.read_csv(results / "grid.csv")
     assert set(grid["target"]) == {"driftmere"}
     cells = grid[(grid["model"] == "linear") & (grid["selection_rule"] == "source-holdout")]

@@ -1,16 +1,13 @@
 """Shift diagnostics from clean tables, as the `diagnose_shift` rule and `shiftgrid shift` compute them."""
 
-import sys
-from pathlib import Path
 
 import numpy as np
 
-sys.path.insert(0, str(Path(__file__).resolve().parent))
-from synthetic_clean import clean_table, station_table  # noqa: E402
+from synthetic_clean import clean_table, station_table
 
-from pipeline.commands.shift import format_table  # noqa: E402
-from pipeline.geo import haversine_km  # noqa: E402
-from pipeline.report.shift_data import compute_shift  # noqa: E402
+from pipeline.commands.shift import format_table
+from pipeline.geo import haversine_km
+from pipeline.report.shift_data import compute_shift
 
 
 def test_shift_of_three_cities_orders_a_shifted_city_last(tmp_path):

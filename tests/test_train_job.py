@@ -1,17 +1,14 @@
 """The training job on tiny synthetic tables: run records, MLflow runs, superseding and reuse."""
 
 import json
-import sys
-from pathlib import Path
 
 import pytest
 
-sys.path.insert(0, str(Path(__file__).resolve().parent))
-from synthetic_clean import clean_table, station_table  # noqa: E402
+from synthetic_clean import clean_table, station_table
 
-from pipeline.splits import build_split, plan_splits, write_split  # noqa: E402
-from pipeline.tracking import SUPERSEDED_TAG, artifact_location, client_for, setup_store  # noqa: E402
-from pipeline.train_job import run_train_job  # noqa: E402
+from pipeline.splits import build_split, plan_splits, write_split
+from pipeline.tracking import SUPERSEDED_TAG, artifact_location, client_for, setup_store
+from pipeline.train_job import run_train_job
 
 FIT_SETTINGS = {"max_steps": 10, "batch_size": 16, "lr": 1e-3, "weight_decay": 0.0, "eval_every": 5, "patience": 8,
            "grad_clip": 1.0, "threads": 1}

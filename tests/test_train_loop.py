@@ -1,7 +1,5 @@
 """The shared training loop: balanced batches, bitwise determinism, early stopping, warm-up, evaluation."""
 
-import sys
-from pathlib import Path
 
 import numpy as np
 import pytest
@@ -15,8 +13,7 @@ from pipeline.penalties import ERMPenalty, build_penalty
 from pipeline.train_loop import (EnvironmentBalancedSampler, FitConfig, predict_network,
                                  train_network)
 
-sys.path.insert(0, str(Path(__file__).resolve().parent))
-from tiny_windows import TinyWindows  # noqa: E402
+from tiny_windows import TinyWindows
 
 torch.set_num_threads(1)
 
