@@ -28,6 +28,7 @@ import numpy as np
 import pandas as pd
 
 from pipeline import grid_stats, tracking
+from pipeline.atomic import write_csv_atomic, write_parquet_atomic, write_text_atomic
 from pipeline.errors import InputError
 
 RECORD_KEYS = ("run_id", "tracking_uri", "split_id", "sources", "target", "model", "family", "penalty", "seed")
@@ -200,15 +201,15 @@ def aggregate(record_paths: list[Path | str], out_dir: Path | str, metric: str =
     rules = grid_stats.available_rules(runs)
     dm = dm_tests(runs, rules, load=load)
     summary, friedman = build_grid(runs, dm, metric, n_boot)
-    runs.to_parquet(out_dir / "grid.parquet", index=False)
-    summary.to_csv(out_dir / "grid.csv", index=False)
-    dm.to_csv(out_dir / "grid_dm.csv", index=False)
+    write_parquet_atomic(runs, out_dir / "grid.parquet")
+    write_csv_atomic(summary, out_dir / "grid.csv")
+    write_csv_atomic(dm, out_dir / "grid_dm.csv")
     meta = {"metric": metric, "rules": rules, "n_records": len(record_paths), "n_runs": int(len(runs)),
             "experiment": sorted(runs["experiment"].dropna().unique().tolist()),
             "tracking_uris": sorted(runs["tracking_uri"].unique().tolist()),
             "skipped": {reason: {"count": len(paths), "records": paths} for reason, paths in skipped.items()},
             "friedman": friedman, "bootstrap_samples": n_boot}
-    (out_dir / "grid_meta.json").write_text(json.dumps(meta, indent=1, sort_keys=True, default=_json_default))
+    write_text_atomic(json.dumps(meta, indent=1, sort_keys=True, default=_json_default), out_dir / "grid_meta.json")
     return meta
 
 

@@ -30,6 +30,10 @@ def write_parquet_atomic(frame: pd.DataFrame, path) -> Path:
     return _atomic(path, lambda temporary: frame.to_parquet(temporary, index=False))
 
 
+def write_csv_atomic(frame: pd.DataFrame, path) -> Path:
+    return _atomic(path, lambda temporary: frame.to_csv(temporary, index=False))
+
+
 def write_json_atomic(data: dict, path) -> Path:
     def write(temporary):
         with open(temporary, "w", encoding="utf-8") as handle:

@@ -107,9 +107,11 @@ def _all_runs(client, experiment_ids: list[str]) -> list:
 
 
 def download_artifact(client, run_id: str, path: str, workdir: Path | str) -> Path:
+    from mlflow.exceptions import MlflowException
+
     try:
         return Path(client.download_artifacts(run_id, path, str(workdir)))
-    except Exception as error:  # MLflow raises several types for a missing artifact
+    except (MlflowException, OSError) as error:  # missing artifact: MLflow's own error or a missing file
         raise InputError(f"run {run_id} has no readable artifact {path}: {str(error).splitlines()[0]}",
                          field="artifacts") from None
 

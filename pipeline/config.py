@@ -19,7 +19,9 @@ from typing import Any, Dict, List, Optional
 
 from hydra import compose, initialize_config_dir
 from hydra.core.config_store import ConfigStore
+from hydra.errors import HydraException
 from omegaconf import DictConfig, OmegaConf
+from omegaconf.errors import OmegaConfBaseException
 
 from pipeline import selection
 from pipeline.errors import InputError
@@ -144,7 +146,7 @@ def compose_config(overrides: list[str] | tuple[str, ...] = (), root: Path | str
             return compose(config_name="config", overrides=list(overrides))
     except InputError:
         raise
-    except Exception as error:  # Hydra and OmegaConf raise many types; the message is what matters
+    except (HydraException, OmegaConfBaseException) as error:  # bad key, value or group choice; bugs propagate
         first_line = str(error).strip().splitlines()[0] if str(error).strip() else type(error).__name__
         raise InputError(first_line, file="config", field="overrides") from None
 

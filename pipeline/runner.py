@@ -35,7 +35,6 @@ def job_environment() -> dict[str, str]:
     env.setdefault("MALLOC_MMAP_MAX_", "0")
     env.setdefault("MALLOC_TRIM_THRESHOLD_", "68719476736")
     env.setdefault("OMP_NUM_THREADS", "1")
-    env.setdefault("PYTHONWARNINGS", "ignore")
     return env
 
 

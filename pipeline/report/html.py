@@ -19,6 +19,7 @@ import numpy as np
 import pandas as pd
 
 from pipeline import grid_stats, selection
+from pipeline.atomic import write_text_atomic
 from pipeline.commands.demo import CAUTION  # one wording of the caution for the CLI and the report
 from pipeline.ingest.qc import summary_row
 from pipeline.report import figures, shift_data
@@ -229,7 +230,5 @@ def render_report(grid_dir: Path | str, out_path: Path | str, report_cfg: dict, 
     page = (f'<!DOCTYPE html><html lang="en"><head><meta charset="utf-8"><title>{E(title)}</title>'
             f'<meta name="viewport" content="width=device-width, initial-scale=1"><style>{CSS}</style></head>'
             f"<body><main>{''.join(body)}</main></body></html>")
-    out_path = Path(out_path)
-    out_path.parent.mkdir(parents=True, exist_ok=True)
-    out_path.write_text(page, encoding="utf-8")
+    write_text_atomic(page, out_path)
     return page
