@@ -71,26 +71,26 @@ def candidate_variables(target: str, exclude: list[str]) -> list[str]:
 
 
 class FeatureScaler:
-    """Per-feature standardisation: (x - mean) / max(std, std_floor), NaN-aware.
+    """Per-feature standardisation (x - mean) / std by scikit-learn's StandardScaler, addressed by name.
 
-    sklearn-like: the constructor stores settings, `fit` learns `mean_`, `std_` (float64, population
-    std) and `feature_names_` and returns self. The std floor keeps a constant feature (e.g. a station
-    that reports the same pressure all period) from dividing by zero.
+    StandardScaler ignores NaN when fitting, uses the population std and gives a constant feature (e.g. a
+    station that reports the same pressure all period) the scale 1, so nothing divides by zero. This
+    wrapper adds what the windows need: feature names, and scaling one named feature (the target).
+    `fit` learns `mean_`, `std_` (float64), `feature_names_`, `n_observed_` and returns self.
     """
 
-    def __init__(self, std_floor: float = 1e-6):
-        self.std_floor = std_floor
-
     def fit(self, rows: np.ndarray, names: list[str]) -> "FeatureScaler":
+        from sklearn.preprocessing import StandardScaler
+
         rows = np.asarray(rows, dtype=np.float64)
-        observed = np.isfinite(rows).sum(axis=0)
         if rows.ndim != 2 or rows.shape[1] != len(names):
             raise ValueError(f"rows of shape {rows.shape} do not match {len(names)} feature names")
+        observed = np.isfinite(rows).sum(axis=0)
         empty = [n for n, count in zip(names, observed) if count == 0]
         if empty:
             raise InputError(f"no value to fit the scaler on for {empty}", field="features")
-        self.mean_ = np.nanmean(rows, axis=0)
-        self.std_ = np.maximum(np.nanstd(rows, axis=0), self.std_floor)
+        fitted = StandardScaler().fit(rows)
+        self.mean_, self.std_ = fitted.mean_, fitted.scale_
         self.feature_names_ = list(names)
         self.n_observed_ = observed
         return self

