@@ -20,8 +20,6 @@ from pipeline.errors import InputError
 
 CONFIG_ARTIFACT = "config/resolved_config.yaml"
 MODEL_ARTIFACT = "model/model_state.pt"
-HEADLINE = ("target_mae", "target_rmse", "target_mse", "target_mase", "target_csi", "source_mae", "gap_mae",
-            "worst_source_env_mse")
 TIMING_METRICS = ("fit_seconds", "compute_seconds", "prepare_seconds")
 DIGEST_TAG = "data_digest."
 
@@ -56,7 +54,7 @@ def get_run(client, run_id: str):
         pass
     if len(run_id) >= 6 and run_id.isalnum():
         experiments = [e.experiment_id for e in client.search_experiments()]
-        found = [r for r in _all_runs(client, experiments) if r.info.run_id.startswith(run_id)]
+        found = [r for r in tracking.search_all_runs(client, experiments) if r.info.run_id.startswith(run_id)]
         if len(found) == 1:
             return found[0]
         if len(found) > 1:
@@ -93,17 +91,6 @@ def find_experiment(client, name: str, root: Path | str):
            (f"; other experiments in the store: {', '.join(others)} (--experiment NAME)" if others else "")
     raise InputError(f"no MLflow experiment {name!r} in this tracking store{hint or '; it holds no runs yet'}",
                      field="tracking.experiment")
-
-
-def _all_runs(client, experiment_ids: list[str]) -> list:
-    runs, token = [], None
-    while experiment_ids:
-        page = client.search_runs(experiment_ids, max_results=1000, page_token=token)
-        runs.extend(page)
-        token = page.token
-        if not token:
-            break
-    return runs
 
 
 def download_artifact(client, run_id: str, path: str, workdir: Path | str) -> Path:
@@ -197,9 +184,9 @@ def describe_run(client, run, root: Path | str, results_dir: str, clean_dir: str
 
 
 def ordered_metrics(metrics: dict[str, float]) -> list[tuple[str, float]]:
-    """Headline metrics first (in HEADLINE order), then the rest by name."""
-    head = [(k, metrics[k]) for k in HEADLINE if k in metrics]
-    return head + sorted((k, v) for k, v in metrics.items() if k not in HEADLINE)
+    """Headline metrics first (in tracking.HEADLINE_METRICS order), then the rest by name."""
+    head = [(k, metrics[k]) for k in tracking.HEADLINE_METRICS if k in metrics]
+    return head + sorted((k, v) for k, v in metrics.items() if k not in tracking.HEADLINE_METRICS)
 
 
 SCREEN_COLUMNS = 100
@@ -254,7 +241,7 @@ def format_show(info: dict, all_metrics: bool = False) -> str:
     lines += ["", "resolved config (artifact config/resolved_config.yaml, job slice)"]
     lines += ["  " + line for line in yaml.safe_dump(info["config"]["job"], sort_keys=True).splitlines()]
     metrics = ordered_metrics(info["metrics"])
-    shown = metrics if all_metrics else metrics[:len([k for k in HEADLINE if k in info["metrics"]]) + 12]
+    shown = metrics if all_metrics else metrics[:len([k for k in tracking.HEADLINE_METRICS if k in info["metrics"]]) + 12]
     lines += ["", f"metrics ({len(metrics)} logged{'' if all_metrics else '; --all-metrics for every one'})"]
     lines += [f"  {name:<44} {value:.6g}" for name, value in shown]
     lines += ["", "artifacts"] + [f"  {path}" for path in info["artifacts"]]

@@ -16,6 +16,9 @@ from pipeline.errors import InputError
 
 RUN_IDENTITY_TAGS = ("split_id", "model", "penalty", "seed")
 SUPERSEDED_TAG = "superseded_by"
+# The metrics a run record carries and `show` lists first (the one list of them).
+HEADLINE_METRICS = ("target_mae", "target_rmse", "target_mse", "target_mase", "target_csi", "source_mae", "gap_mae",
+                    "worst_source_env_mse")
 # MLflow's log_batch limits per call (documented): 1000 metrics, 100 params, 100 tags.
 _BATCH = {"metrics": 1000, "params": 100, "tags": 100}
 
@@ -28,6 +31,18 @@ def resolve_tracking_uri(uri: str | None, results_dir: Path | str) -> str:
 
 def artifact_location(results_dir: Path | str) -> str:
     return (Path(results_dir).resolve() / "mlartifacts").as_uri()
+
+
+def search_all_runs(client, experiment_ids: list[str], filter_string: str = "") -> list:
+    """Every run matching `filter_string`, following MLflow's result pages."""
+    runs, token = [], None
+    while experiment_ids:
+        page = client.search_runs(experiment_ids, filter_string, max_results=1000, page_token=token)
+        runs.extend(page)
+        token = page.token
+        if not token:
+            break
+    return runs
 
 
 def client_for(uri: str):

@@ -23,8 +23,6 @@ from pipeline.atomic import write_json_atomic
 from pipeline.train import history_curves, predictions_frame, run_seed, state_for_saving, station_city_map
 from pipeline.windows import ForecastConfig, build_windows
 
-HEADLINE = ("target_mae", "target_rmse", "target_mse", "target_mase", "target_csi", "source_mae", "gap_mae",
-            "worst_source_env_mse")
 
 
 def load_inputs(split_path: Path | str, clean_paths: dict[str, str] | None = None):
@@ -77,7 +75,7 @@ def make_record(run_id: str, experiment: str, experiment_id: str, tracking_uri: 
             "tracking_uri": tracking_uri, "split_id": split["split_id"], "sources": split["sources"],
             "target": split["target"], "model": job["model_name"], "family": job["model"]["family"],
             "penalty": job["penalty_name"], "seed": seed, "selection_rule": primary_rule,
-            "metrics": {k: metrics.get(k) for k in HEADLINE}, "supersedes": superseded, "reused": reused}
+            "metrics": {k: metrics.get(k) for k in tracking.HEADLINE_METRICS}, "supersedes": superseded, "reused": reused}
 
 
 def _train_and_log(client, experiment_id: str, unit: dict, split: dict, windows, station_city: dict,

@@ -55,15 +55,7 @@ def search(client, experiment_id: str, args) -> list[dict]:
                 ("seed", None if args.seed is None else str(args.seed))) if value]
     if args.since:
         clauses.append(f"attributes.start_time >= {_since_millis(args.since)}")
-    runs = audit._all_runs(client, [experiment_id]) if not clauses else []
-    if clauses:
-        token = None
-        while True:
-            page = client.search_runs([experiment_id], " and ".join(clauses), max_results=1000, page_token=token)
-            runs.extend(page)
-            token = page.token
-            if not token:
-                break
+    runs = tracking.search_all_runs(client, [experiment_id], " and ".join(clauses))
     rows = []
     for found in runs:
         tags = found.data.tags
