@@ -70,9 +70,11 @@ class SweepConfig:
 
 @dataclass
 class MetricsConfig:
-    # Exceedance scores use this threshold in the target's canonical unit. 35 ug/m3 is a common 24-h PM2.5
-    # reference level; here it is only a research verification threshold, not an alert level.
-    exceedance_threshold: float = 35.0
+    # Exceedance scores (POD, FAR, CSI, ETS, bias) count hourly values above this threshold, in the target's
+    # canonical unit, on each forecast hour. It is a research scoring threshold, not an alert level, and it is
+    # applied to HOURLY values: 35 ug/m3 resembles a 24-h PM2.5 reference level, but no 24-h mean is formed
+    # here, hence the name.
+    hourly_exceedance_threshold: float = 35.0
 
 
 @dataclass

@@ -68,11 +68,12 @@ def rotation_curves(job: dict, seed: int, windows, split: dict, station_city: di
 
 def _evaluate(model, windows, job: dict) -> tuple[dict, np.ndarray]:
     """Target and source test metrics in canonical units for the model's current snapshot."""
-    threshold = job["metrics"]["exceedance_threshold"]
+    threshold = job["metrics"]["hourly_exceedance_threshold"]
     y_target = windows.unscale_target(windows.test_target.y)
     p_target = windows.unscale_target(model.predict(windows.test_target.X))
     scores = {f"target_{k}": v for k, v in
-              forecast_scores(y_target, p_target, windows.target_naive_scale, threshold).items()}
+              forecast_scores(y_target, p_target, windows.test_target.station, windows.target_naive_scales,
+                              threshold).items()}
     source = windows.test_source
     y_source = windows.unscale_target(source.y)
     p_source = windows.unscale_target(model.predict(source.X))
@@ -91,11 +92,16 @@ def _evaluate(model, windows, job: dict) -> tuple[dict, np.ndarray]:
 
 
 def predictions_frame(windows, predictions: dict[str, np.ndarray]) -> pd.DataFrame:
+    """The target test windows of every rule: observed y_hXX and forecast p_hXX per window, plus the
+    station's MASE scale, so the aggregation can recompute every error statistic per forecast origin
+    (block bootstrap intervals, Diebold-Mariano) from this one artifact."""
     test = windows.test_target
     y = windows.unscale_target(test.y)
+    scale = np.array([windows.target_naive_scales.get(s, np.nan) for s in test.station], dtype=np.float64)
     frames = []
     for rule, pred in predictions.items():
-        frame = pd.DataFrame({"station_id": test.station, "origin": test.origin, "selection": rule})
+        frame = pd.DataFrame({"station_id": test.station, "origin": test.origin, "selection": rule,
+                              "naive_scale": scale})
         for step in range(y.shape[1]):
             frame[f"y_h{step + 1:02d}"] = y[:, step].astype("float32")
             frame[f"p_h{step + 1:02d}"] = pred[:, step].astype("float32")

@@ -41,6 +41,7 @@ import pandas as pd
 
 from pipeline.errors import InputError
 from pipeline.features import FeatureScaler, candidate_variables, derive_features, feature_names
+from pipeline.metrics import seasonal_naive_scale
 from pipeline.splits import ADMITTED_SUFFIX, admitted_target_block, plain_container
 
 SKIP_REASONS = ("input_missing", "target_missing")
@@ -82,7 +83,7 @@ class Windows:
     test_target: WindowSet
     scaler: FeatureScaler
     skipped: dict  # reason -> windows skipped, over all sets
-    target_naive_scale: float  # MASE denominator, canonical units of the target
+    target_naive_scales: dict  # target station -> MASE scale (canonical units; NaN: undefined)
     dropped_features: dict  # variable -> why it is not a feature
     feature_names: list
     env_names: list
@@ -180,23 +181,21 @@ def _cut_windows(features, target_raw, hours, cfg: ForecastConfig, skipped: dict
     return X, y, hours[keep + lookback - 1]
 
 
-def seasonal_naive_scale(series: list[np.ndarray], period: int = SEASON_HOURS) -> float:
-    """Pooled mean |y_t - y_{t-period}| over several series (differences never cross two series);
-    pairs with a NaN are left out. NaN when no pair exists."""
-    differences = [np.abs(np.asarray(y, float)[period:] - np.asarray(y, float)[:-period]) for y in series]
-    pooled = np.concatenate([d[~np.isnan(d)] for d in differences] + [np.empty(0)])
-    return float(pooled.mean()) if pooled.size else float("nan")
+def _naive_scales(frames, station_ids, target, train_span) -> dict[str, float]:
+    """The MASE scale of every target station over its own train block (canonical units, m = 24 h).
 
-
-def _naive_scale(frames, station_ids, target, train_span) -> float:
-    """The MASE scale over the target stations' train block (canonical units, m = 24 h)."""
-    scale = seasonal_naive_scale([_block(frames.get(s), train_span, [target])[target].to_numpy()
-                                  for s in station_ids])
-    if np.isnan(scale):
+    One scale per station (Hyndman & Koehler 2006 scale each series by its own in-sample naive error);
+    pipeline.metrics.seasonal_naive_scale is the one implementation. A station without any pair of
+    values 24 h apart gets NaN and is left out of the station mean of MASE; when no target station has
+    a scale, MASE is undefined for the split and that is an error.
+    """
+    scales = {s: seasonal_naive_scale(_block(frames.get(s), train_span, [target])[target].to_numpy(),
+                                      SEASON_HOURS) for s in station_ids}
+    if not any(np.isfinite(list(scales.values()))):
         raise InputError(f"no pair of {target} values {SEASON_HOURS} h apart in the target train block "
                          f"of stations {list(station_ids)}: the MASE scale is undefined",
-                         field="target_naive_scale")
-    return scale
+                         field="target_naive_scales")
+    return scales
 
 
 def _spans(record: dict) -> dict:
@@ -265,7 +264,7 @@ def build_windows(split_record: dict, tables: dict, cfg: ForecastConfig | dict |
         val_target=window_set([(s, target_env_of[s], station_block(s, spans["val"])) for s in targets]),
         test_target=window_set([(s, target_env_of[s], station_block(s, spans["test"])) for s in targets]),
         scaler=scaler, skipped=skipped,
-        target_naive_scale=_naive_scale(frames, targets, cfg.target, spans["train"]),
+        target_naive_scales=_naive_scales(frames, targets, cfg.target, spans["train"]),
         dropped_features=dropped, feature_names=list(names), env_names=env_names,
         target_index=names.index(cfg.target), target=cfg.target)
     if len(windows.train) == 0:

@@ -6,7 +6,7 @@ from sklearn.metrics import mean_absolute_error, mean_squared_error
 
 from pipeline.errors import InputError
 from pipeline.metrics import (EXCEEDANCE_KEYS, HEADLINE_KEYS, exceedance, forecast_scores, mae,
-                              mase, mse, per_horizon, rmse, seasonal_naive_scale)
+                              mase, mase_over_stations, mse, per_horizon, rmse, seasonal_naive_scale)
 
 # Worked example computed with numpy (Hyndman & Koehler 2006, IJF 22(4); seasonal scale: FPP3)
 TRAIN = np.array([10, 14, 8, 12, 11, 16, 9, 13, 13, 15, 10, 16], dtype=float)
@@ -15,23 +15,45 @@ FORECAST = np.array([12, 17, 12, 14], dtype=float)
 
 
 def test_mase_worked_example_hyndman_koehler():
-    # Hyndman & Koehler (2006): MAE 1.25, MASE 0.3125 (m=1), 0.833333 (m=4)
+    # Hyndman & Koehler (2006) IJF 22(4) definition, values computed with numpy: MAE 1.25,
+    # MASE 0.3125 (m = 1), 0.833333 (m = 4); scale = in-sample naive MAE of the TRAINING series
     assert mae(TEST, FORECAST) == pytest.approx(1.25)
     assert mase(TEST, FORECAST, seasonal_naive_scale(TRAIN, m=1)) == pytest.approx(0.3125)
-    assert mase(TEST, FORECAST, seasonal_naive_scale(TRAIN, m=4)) == pytest.approx(0.833333,
-                                                                                abs=1e-6)
+    assert mase(TEST, FORECAST, seasonal_naive_scale(TRAIN, m=4)) == pytest.approx(0.833333, abs=1e-6)
 
 
-def test_naive_scale_never_crosses_station_boundaries_and_skips_nan_pairs():
-    # two stations that each move by 1 per step; joined, the jump 1 -> 10 would inflate the scale
-    assert seasonal_naive_scale([np.array([0.0, 1.0]), np.array([10.0, 11.0])], m=1) == 1.0
+def test_mase_scales_each_station_by_its_own_training_series_then_averages_stations():
+    # Hyndman & Koehler (2006): each series is scaled by its own in-sample naive MAE; computed with numpy.
+    # Station A is the worked example (MASE 0.3125 with m = 1); station B is A doubled, so its errors and
+    # its scale double and its MASE is the same 0.3125, while a pooled scale would mix the two.
+    y = np.concatenate([TEST, 2 * TEST])
+    yhat = np.concatenate([FORECAST, 2 * FORECAST])
+    stations = np.array(["a"] * 4 + ["b"] * 4, dtype=object)
+    scales = {"a": seasonal_naive_scale(TRAIN, m=1), "b": seasonal_naive_scale(2 * TRAIN, m=1)}
+    assert scales == {"a": pytest.approx(4.0), "b": pytest.approx(8.0)}
+    assert mase_over_stations(y, yhat, stations, scales) == pytest.approx(0.3125)
+    # the plain mean over stations, not over pairs: 3 extra windows at station a do not outweigh b
+    uneven = np.concatenate([TEST, TEST[:3], 2 * TEST])
+    uneven_hat = np.concatenate([FORECAST, TEST[:3] + 4.0, 2 * FORECAST])
+    labels = np.array(["a"] * 7 + ["b"] * 4, dtype=object)
+    station_a = mae(uneven[:7], uneven_hat[:7]) / 4.0
+    assert mase_over_stations(uneven, uneven_hat, labels, scales) == pytest.approx((station_a + 0.3125) / 2)
+    # a station whose scale is undefined is left out; a station without a scale is an error
+    assert mase_over_stations(y, yhat, stations, {"a": 4.0, "b": float("nan")}) == pytest.approx(0.3125)
+    with pytest.raises(InputError, match="no MASE scale"):
+        mase_over_stations(y, yhat, stations, {"a": 4.0})
+
+
+def test_naive_scale_of_one_series_skips_nan_pairs():
     # the NaN at t=2 removes two differences; the remaining ones are |2-0| = 2 and |5-3| = 2
     series = np.array([0.0, 2.0, np.nan, 3.0, 5.0])
     assert seasonal_naive_scale(series, m=1) == pytest.approx(2.0)
-    # a series shorter than the period contributes nothing; no pair at all -> NaN
-    assert np.isnan(seasonal_naive_scale([np.array([1.0, 2.0])], m=24))
+    # a series shorter than the period has no pair: NaN
+    assert np.isnan(seasonal_naive_scale(np.array([1.0, 2.0]), m=24))
     with pytest.raises(InputError):
         seasonal_naive_scale(series, m=0)
+    with pytest.raises(InputError):
+        seasonal_naive_scale(np.ones((2, 3)), m=1)
 
 
 def test_mase_undefined_for_zero_scale_and_rejects_negative_scale():
@@ -105,7 +127,8 @@ def test_per_horizon_and_forecast_scores():
     assert steps[0] < steps[1] < steps[2]
     for step in range(3):
         assert steps[step] == pytest.approx(mean_absolute_error(y[:, step], yhat[:, step]))
-    scores = forecast_scores(y, yhat, scale=2.5, threshold=25.0)
+    stations = np.array(["s"] * 60, dtype=object)
+    scores = forecast_scores(y, yhat, stations, {"s": 2.5}, threshold=25.0)
     assert list(scores)[:len(HEADLINE_KEYS)] == list(HEADLINE_KEYS)
     assert [key for key in scores if key.startswith("mae_h")] == ["mae_h01", "mae_h02", "mae_h03"]
     assert all(isinstance(value, float) for value in scores.values())

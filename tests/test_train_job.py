@@ -20,7 +20,7 @@ def job(model: str, params: dict, penalty: str = "na") -> dict:
     return {"model_name": model, "model": {"family": model, **params}, "penalty_name": penalty,
             "penalty": None if penalty == "na" else {"name": penalty, "weight": 1.0, "warmup_steps": 0, "extra": {}},
             "fit": FIT_SETTINGS, "selection": {"rule": "source-holdout", "also": ["target-peek"]},
-            "forecast": FORECAST, "metrics": {"exceedance_threshold": 35.0}}
+            "forecast": FORECAST, "metrics": {"hourly_exceedance_threshold": 35.0}}
 
 
 @pytest.fixture(scope="module")

@@ -6,7 +6,7 @@ import pytest
 
 from pipeline.errors import InputError
 from pipeline.splits import admitted_target_block, compute_time_blocks, plan_splits
-from pipeline.windows import ForecastConfig, build_windows, seasonal_naive_scale
+from pipeline.windows import ForecastConfig, build_windows
 from synthetic_clean import START, clean_table, station_table, with_qc
 
 L, H, HOURS = 12, 6, 400
@@ -200,30 +200,19 @@ def test_scaler_is_fitted_on_source_train_rows_and_floors_the_std():
     assert constant.scaler.std_[constant.feature_names.index("precip_mm")] == 1.0
 
 
-def test_seasonal_naive_scale_matches_the_worked_example():
-    # computed with numpy (Hyndman & Koehler 2006; FPP3 seasonal scale): MAE 1.25 gives MASE 0.3125 with
-    # m = 1 and 0.833333 with m = 4, so the scales are 1.25 / 0.3125 = 4 and 1.25 / 0.833333 = 1.5
-    train = np.array([10, 14, 8, 12, 11, 16, 9, 13, 13, 15, 10, 16], dtype=float)
-    assert seasonal_naive_scale([train], period=1) == pytest.approx(1.25 / 0.3125)
-    assert seasonal_naive_scale([train], period=4) == pytest.approx(1.25 / 0.833333, rel=1e-6)
-    # differences never cross two series: two halves give the pooled mean of their own differences
-    assert seasonal_naive_scale([train[:6], train[6:]], period=1) == pytest.approx((4+6+4+1+5 + 4+0+2+5+6) / 10)
-    assert np.isnan(seasonal_naive_scale([np.array([1.0, np.nan])], period=1))
-
-
-def test_target_naive_scale_uses_the_target_train_block():
+def test_target_naive_scales_are_per_station_over_the_target_train_block():
     record = make_record()
     tables = make_tables()
-    assert build_windows(record, tables, config()).target_naive_scale == 24.0  # pm25 rises 1 per hour
+    scales = build_windows(record, tables, config()).target_naive_scales
+    assert set(scales) == set(record["target_stations"]) and set(scales.values()) == {24.0}  # +1 per hour
     rng = np.random.default_rng(5)
     tables["cosk"]["pm25"] = rng.gamma(2.0, 10.0, len(tables["cosk"]))
     start, end = block_hours(record, "train")
-    expected = []
-    for _, rows in tables["cosk"].groupby("station_id"):
+    expected = {}
+    for station, rows in tables["cosk"].groupby("station_id"):
         y = rows.set_index("time")["pm25"].iloc[start:end]
-        expected.append((y - y.shift(24)).abs().dropna())
-    assert build_windows(record, tables, config()).target_naive_scale == pytest.approx(
-        pd.concat(expected).mean(), rel=1e-12)
+        expected[station] = (y - y.shift(24)).abs().dropna().mean()  # Hyndman & Koehler (2006), m = 24 h
+    assert build_windows(record, tables, config()).target_naive_scales == pytest.approx(expected, rel=1e-12)
 
 
 def test_config_checks():
