@@ -17,6 +17,7 @@ from dataclasses import dataclass, field
 from pathlib import Path
 from typing import Any, Dict, List, Optional
 
+import yaml
 from hydra import compose, initialize_config_dir
 from hydra.core.config_store import ConfigStore
 from hydra.errors import HydraException
@@ -143,14 +144,22 @@ def config_dir(root: Path | str = ".") -> Path:
 def compose_config(overrides: list[str] | tuple[str, ...] = (), root: Path | str = ".") -> DictConfig:
     """Compose the configuration with Hydra; a bad key or value raises InputError (one line)."""
     register_schema()
+    _check_experiment(overrides, root)
     try:
         with initialize_config_dir(config_dir=str(config_dir(root)), version_base="1.3"):
             return compose(config_name="config", overrides=list(overrides))
     except InputError:
         raise
     except (HydraException, OmegaConfBaseException) as error:  # bad key, value or group choice; bugs propagate
-        first_line = str(error).strip().splitlines()[0] if str(error).strip() else type(error).__name__
+        lines = str(error).strip().splitlines() or [type(error).__name__]
+        # "In 'data/x': ConfigKeyError raised while composing config:" names the key on the next line
+        first_line = " ".join(lines[:2]) if lines[0].endswith(":") and len(lines) > 1 else lines[0]
         raise InputError(first_line, file="config", field="overrides") from None
+    except yaml.YAMLError as error:  # e.g. a !!python tag: Hydra's loader is safe and refuses it
+        mark = getattr(error, "problem_mark", None)
+        raise InputError(str(getattr(error, "problem", None) or error).splitlines()[0],
+                         file=mark.name if mark else "config", row=mark.line + 1 if mark else None,
+                         field="yaml") from None
 
 
 def to_container(node: Any) -> Any:
@@ -160,6 +169,16 @@ def to_container(node: Any) -> Any:
 def canonical_json(value: Any) -> str:
     """Sorted-key JSON: Snakemake compares params by value, so key order must not vary."""
     return json.dumps(to_container(value), sort_keys=True, separators=(",", ":"))
+
+
+def _check_experiment(overrides, root) -> None:
+    """The experiment group is optional in the defaults list, so Hydra would silently ignore a misspelt name."""
+    folder = config_dir(root) / "experiment"
+    for item in overrides:
+        key, _, name = item.partition("=")
+        if key.lstrip("+~") == "experiment" and name not in ("", "null") and not (folder / f"{name}.yaml").is_file():
+            known = ", ".join(sorted(p.stem for p in folder.glob("*.yaml")))
+            raise InputError(f"no experiment {name!r} (known: {known})", file="config", field="experiment")
 
 
 def job_slice(cfg: DictConfig, model_name: str, penalty_name: str) -> dict:

@@ -2,7 +2,21 @@
 
 Messages follow `FILE:ROW: FIELD: what is wrong` (row and field when known). The CLI and the rule
 scripts print `error: <message>` and exit with status 2 instead of a traceback.
+
+Messages quote delivered text (station codes, units, file names), which may hold newlines, terminal
+escape sequences or megabytes of garbage: `one_line` escapes every non-printable character and bounds
+the length, so a message is always exactly one harmless line.
 """
+
+MAX_MESSAGE_CHARS = 1000
+
+
+def one_line(text: str, limit: int = MAX_MESSAGE_CHARS) -> str:
+    """`text` with control and separator characters escaped (\\n, \\x1b, ...), cut to `limit` characters."""
+    text = str(text)
+    if not text.isprintable():
+        text = "".join(c if c.isprintable() else c.encode("unicode_escape").decode("ascii") for c in text)
+    return text if len(text) <= limit else text[:limit - 3] + "..."
 
 
 class InputError(Exception):
@@ -15,6 +29,6 @@ class InputError(Exception):
             parts.append(f"{file}:{row}" if row is not None else str(file))
         if field is not None:
             parts.append(str(field))
-        parts.append(message)
-        super().__init__(": ".join(parts))
+        parts.append(str(message))
+        super().__init__(one_line(": ".join(parts)))
         self.file, self.row, self.field = file, row, field

@@ -6,12 +6,14 @@ and the field. ROW is the line number in the file as an editor shows it: the hea
 first station is line 2.
 """
 
+import io
 import re
 from pathlib import Path
 
 import pandas as pd
 
 from pipeline.errors import InputError
+from pipeline.textfile import read_text
 
 REQUIRED_COLUMNS = ("station_id", "city", "lat", "lon", "elevation_m", "site_type")
 SITE_TYPES = frozenset({"urban_traffic", "urban_background", "suburban", "rural_background",
@@ -84,9 +86,10 @@ def load_stations(path) -> pd.DataFrame:
     file = str(path)
     if not Path(path).is_file():
         raise InputError("station table not found", file=file)
+    text = read_text(path, "utf-8", hint="save the station table as UTF-8")  # a BOM is skipped
     try:
-        table = pd.read_csv(path, dtype=str, keep_default_na=False, skip_blank_lines=False)
-    except (pd.errors.ParserError, UnicodeDecodeError, pd.errors.EmptyDataError) as error:
+        table = pd.read_csv(io.StringIO(text), dtype=str, keep_default_na=False, skip_blank_lines=False)
+    except (pd.errors.ParserError, pd.errors.EmptyDataError) as error:
         raise InputError(f"not a readable CSV table ({str(error).splitlines()[0]})", file=file) from None
     table.columns = [str(c).strip() for c in table.columns]
     # Blank lines are skipped but still counted, so reported line numbers match the editor's.

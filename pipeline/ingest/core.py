@@ -24,8 +24,8 @@ from pipeline.variables import QC_MISSING, VARIABLE_NAMES, qc_column
 
 READERS = {"wide_csv": wide_csv, "long_csv": long_csv, "jsonl": jsonl}
 DROP_REASONS = ("unparseable_record", "unknown_station", "variable_not_mapped", "unparseable_timestamp",
-                "exact_duplicate", "nonexistent_local_time", "ambiguous_local_time",
-                "timestamp_not_on_the_hour", "conflicting_duplicate")
+                "timestamp_outside_window", "exact_duplicate", "nonexistent_local_time",
+                "ambiguous_local_time", "timestamp_not_on_the_hour", "conflicting_duplicate")
 
 
 def _matching_files(raw_dir, pattern: str) -> list[Path]:
@@ -136,11 +136,13 @@ def ingest_city(city: str, fmt: dict, raw_dir, stations: pd.DataFrame,
         value_columns = list(spec["columns"].values())
     parsed = timeparse.parse_text(frame["time_raw"], spec["time"])
     reason[active() & parsed.isna().to_numpy()] = "unparseable_timestamp"
+    window = timeparse.window_bounds(spec["time"])
+    reason[active() & timeparse.outside_window(parsed, window)] = "timestamp_outside_window"
     exact = qc.mark_exact_duplicates(frame, active(), ["station_id", "time_raw", *value_columns])
     reason[exact] = "exact_duplicate"
 
     if timeparse.is_aware(parsed):
-        utc = parsed
+        utc = parsed.where(active())  # dropped stamps may lie outside what nanoseconds can hold
         dst = {"timezone": "offset given in every timestamp", "ambiguous_rows": 0,
                "nonexistent_rows_dropped": 0}
     else:
@@ -152,6 +154,7 @@ def ingest_city(city: str, fmt: dict, raw_dir, stations: pd.DataFrame,
         reason[np.flatnonzero(rows)[time_reason.to_numpy() != ""]] = time_reason[time_reason != ""].to_numpy()
     dst["hour_label"] = spec["time"]["label"]
     frame["utc"] = timeparse.apply_label(utc, spec["time"]).astype("datetime64[ns, UTC]")
+    reason[active() & timeparse.outside_window(frame["utc"], window)] = "timestamp_outside_window"
     off_hour = frame["utc"].notna() & (frame["utc"] != frame["utc"].dt.floor("h"))
     reason[active() & off_hour.to_numpy()] = "timestamp_not_on_the_hour"
     losers, conflict_groups = qc.mark_conflicting_duplicates(frame, active(), ["utc", *series_keys],
@@ -159,9 +162,12 @@ def ingest_city(city: str, fmt: dict, raw_dir, stations: pd.DataFrame,
     reason[losers] = "conflicting_duplicate"
 
     kept = frame[active()].reset_index(drop=True)
-    if kept.empty:
-        raise InputError(f"no usable row for city {city} (see the drop reasons: "
-                         f"{qc.top_codes(pd.Series(reason))})", file=str(paths[0]))
+    if kept.empty:  # never hand an empty table to the splits and training
+        if len(frame) + raw.pre_dropped.get("unparseable_record", 0) == 0:
+            raise InputError(f"no data row in {len(paths)} delivered file(s)", file=str(paths[0]), field="rows")
+        raise InputError(f"no usable row for city {city}: every row was dropped "
+                         f"({qc.top_codes(pd.Series(reason[reason != '']))}, see unparseable_record too)",
+                         file=str(paths[0]), field="rows")
     if raw.long:
         keys, values, conversions = _convert_long(kept, spec, reference_temperature_c)
     else:
@@ -184,6 +190,10 @@ def ingest_city(city: str, fmt: dict, raw_dir, stations: pd.DataFrame,
                        "resolution": ("kept the last row in delivery order (files by name, then lines)"
                                       if spec["duplicates"] == "keep_last" else
                                       "kept the first row in delivery order (files by name, then lines)")},
+        "time_window": {"earliest": spec["time"]["earliest"],
+                        "latest": spec["time"]["latest"] or "time of ingestion",
+                        "rows_dropped": dropped["timestamp_outside_window"],
+                        "stamps": qc.top_codes(frame.loc[reason == "timestamp_outside_window", "time_raw"])},
         "unknown_station_codes": qc.top_codes(frame.loc[reason == "unknown_station", "station_raw"]),
         "unmapped_variable_codes": (qc.top_codes(frame.loc[reason == "variable_not_mapped", "variable_raw"])
                                     if raw.long else {}),
@@ -193,6 +203,7 @@ def ingest_city(city: str, fmt: dict, raw_dir, stations: pd.DataFrame,
         "variables_not_delivered": [v for v in VARIABLE_NAMES if v not in values],
         "values": qc.flag_counts(clean, VARIABLE_NAMES),
         "stations_without_data": sorted(known - set(clean["station_id"])),
+        **qc.series_notes(clean, sorted(values)),
         "gaps": {station: qc.station_gaps(group["utc"])
                  for station, group in kept.groupby("station_id", sort=True)},
         "clean_rows": int(len(clean)),

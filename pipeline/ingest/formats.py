@@ -11,17 +11,22 @@ new format needs only config. Keys (defaults in brackets):
                    format: strftime pattern | iso8601 (with UTC offset) | epoch_s,
                    timezone: tz database name (not needed for iso8601 / epoch_s) [UTC],
                    label: start | end (hour-ending stamps are shifted back one hour) [start],
-                   ambiguous: order | dst | standard | drop [order], nonexistent: drop [drop]}
+                   ambiguous: order | dst | standard | drop [order], nonexistent: drop [drop],
+                   earliest: first plausible UTC instant [1970-01-01],
+                   latest: last plausible UTC instant [the time of ingestion; never later than it]}
   columns         wide_csv / jsonl: {column or dotted field path: canonical variable}
   units           wide_csv / jsonl: {canonical variable: delivered unit}; long_csv: optional fallback
   variable_column, value_column, unit_column, variables ({code: canonical})      long_csv only
-  separator [","]  decimal ["."]  header_line [1]  encoding ["utf-8"]
-  sentinels [[]]  missing_values [["", "NA", "NaN", "nan", "null", "None"]]
+  separator [","] (one character)  decimal ["."]  header_line [1]  encoding ["utf-8"] (a BOM is skipped)
+  sentinels [[]]  missing_values [["", "NA", "N/A", "#N/A", "NaN", "null", "None", "-"]] (any letter case)
   duplicates      keep_last | keep_first  (which of conflicting rows survives)  [keep_last]
 """
 
+import codecs
 import copy
 import zoneinfo
+
+import pandas as pd
 
 from pipeline.errors import InputError
 from pipeline.units import conversion_to_canonical
@@ -41,11 +46,14 @@ _REQUIRED = {
     "long_csv": ("files", "station_column", "time", "variable_column", "value_column", "variables"),
     "jsonl": ("files", "station_column", "time", "columns", "units"),
 }
-_TIME_KEYS = {"column", "parts", "format", "timezone", "label", "ambiguous", "nonexistent"}
+_TIME_KEYS = {"column", "parts", "format", "timezone", "label", "ambiguous", "nonexistent", "earliest", "latest"}
 DEFAULTS = {"separator": ",", "decimal": ".", "header_line": 1, "encoding": "utf-8", "sentinels": [],
-            "missing_values": ["", "NA", "NaN", "nan", "null", "None"], "duplicates": "keep_last",
+            "missing_values": ["", "NA", "N/A", "#N/A", "NaN", "null", "None", "-"], "duplicates": "keep_last",
             "station_map": {}, "units": {}}
-TIME_DEFAULTS = {"timezone": "UTC", "label": "start", "ambiguous": "order", "nonexistent": "drop"}
+# Hourly monitoring networks report from the 1970s on; a stamp before that is a typo or a zero date.
+# `latest` None means the time of ingestion: a reading cannot come from the future.
+TIME_DEFAULTS = {"timezone": "UTC", "label": "start", "ambiguous": "order", "nonexistent": "drop",
+                 "earliest": "1970-01-01T00:00Z", "latest": None}
 
 
 def _fail(message: str, config_file: str | None, field: str):
@@ -104,6 +112,11 @@ def validate_format(city: str, fmt: dict, reference_temperature_c: float = 25.0,
     except (zoneinfo.ZoneInfoNotFoundError, ValueError):
         _fail(f"unknown time zone '{time['timezone']}' (use a tz database name such as CET or "
               f"Etc/GMT-1)", config_file, f"{prefix}.time.timezone")
+    for key in ("earliest", "latest"):
+        if time[key] is not None:
+            time[key] = _instant(time[key], config_file, f"{prefix}.time.{key}")
+    if time["latest"] is not None and pd.Timestamp(time["latest"]) <= pd.Timestamp(time["earliest"]):
+        _fail("must be later than time.earliest", config_file, f"{prefix}.time.latest")
     if spec["duplicates"] not in ("keep_last", "keep_first"):
         _fail("must be keep_last or keep_first", config_file, f"{prefix}.duplicates")
     if layout == "long_csv":
@@ -129,4 +142,25 @@ def validate_format(city: str, fmt: dict, reference_temperature_c: float = 25.0,
     spec["missing_values"] = [str(s) for s in spec["missing_values"]]
     if not isinstance(spec["header_line"], int) or spec["header_line"] < 1:
         _fail("must be a positive line number", config_file, f"{prefix}.header_line")
+    for key in ("separator", "decimal"):
+        if not isinstance(spec[key], str) or len(spec[key]) != 1 or spec[key] in "\r\n\"":
+            _fail(f"must be one character other than a quote or a line end, got {spec[key]!r}", config_file,
+                  f"{prefix}.{key}")
+    try:
+        codecs.lookup(str(spec["encoding"]))
+    except LookupError:
+        _fail(f"unknown encoding {spec['encoding']!r} (e.g. utf-8, latin-1, cp1252)", config_file,
+              f"{prefix}.encoding")
     return spec
+
+
+def _instant(value, config_file, field: str) -> str:
+    """A configured instant as a canonical UTC ISO string (naive text is read as UTC)."""
+    try:
+        stamp = pd.Timestamp(str(value))
+    except (ValueError, TypeError):
+        _fail(f"{value!r} is not a date or an ISO 8601 instant", config_file, field)
+    if pd.isna(stamp):
+        _fail(f"{value!r} is not a date or an ISO 8601 instant", config_file, field)
+    stamp = stamp.tz_localize("UTC") if stamp.tzinfo is None else stamp.tz_convert("UTC")
+    return stamp.isoformat()

@@ -12,11 +12,12 @@ from pipeline.provenance import file_digest
 
 
 def read(paths: list, spec: dict) -> RawTable:
-    frames, files = [], []
+    frames, files, malformed = [], [], 0
     needed = [spec["station_column"], *time_columns(spec["time"]), spec["variable_column"],
               spec["value_column"]] + ([spec["unit_column"]] if "unit_column" in spec else [])
     for path in paths:
-        table, blank_lines = read_csv_text(path, spec)
+        text = read_csv_text(path, spec)
+        table = text.table
         require_columns(table, needed, path, spec["header_line"])
         frame = pd.DataFrame({"file": str(path), "line": table["line"],
                               "station_raw": table[spec["station_column"]].str.strip(),
@@ -26,6 +27,7 @@ def read(paths: list, spec: dict) -> RawTable:
                               "unit_raw": (table[spec["unit_column"]].str.strip()
                                            if "unit_column" in spec else "")})
         frames.append(frame)
-        files.append({"path": str(path), "rows": len(frame), "blank_lines": blank_lines,
-                      "sha256": file_digest(path)})
-    return RawTable(pd.concat(frames, ignore_index=True), long=True, files=files)
+        files.append(text.file_entry(path, file_digest(path)))
+        malformed += text.malformed_records
+    return RawTable(pd.concat(frames, ignore_index=True), long=True, files=files,
+                    pre_dropped={"unparseable_record": malformed})

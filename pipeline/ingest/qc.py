@@ -15,7 +15,8 @@ Duplicate rules, applied to rows still in play:
 import numpy as np
 import pandas as pd
 
-from pipeline.variables import QC_FLAG_NAMES, qc_column
+from pipeline.errors import one_line
+from pipeline.variables import QC_FLAG_NAMES, QC_OK, qc_column
 
 HOUR = pd.Timedelta(hours=1)
 
@@ -66,9 +67,30 @@ def flag_counts(clean: pd.DataFrame, variables) -> dict:
     return counts
 
 
-def top_codes(codes: pd.Series, limit: int = 20) -> dict:
-    """The most frequent offending codes with their counts (bounded, so a bad file cannot bloat the report)."""
-    return {str(k): int(v) for k, v in codes.value_counts().head(limit).items()}
+def top_codes(codes: pd.Series, limit: int = 20, width: int = 60) -> dict:
+    """The most frequent offending codes with their counts, bounded in number and length (and escaped), so
+    a bad file cannot bloat the report or put control characters into it."""
+    top = {}
+    for code, count in codes.value_counts().head(limit).items():
+        key = one_line(code, width)
+        top[key] = top.get(key, 0) + int(count)
+    return top
+
+
+def series_notes(clean: pd.DataFrame, variables, min_values: int = 24) -> dict:
+    """Notes, not drops: stations none of whose values passed QC, and series (station, variable) with at
+    least `min_values` valid values that never change (a stuck sensor or a filled-in constant)."""
+    variables = list(variables)
+    ok = clean[[qc_column(v) for v in variables]].to_numpy() == QC_OK
+    grouped = clean[variables].where(ok).groupby(clean["station_id"].astype(str), sort=True)
+    counts, lows, highs = grouped.count(), grouped.min(), grouped.max()
+    without = [str(s) for s in counts.index[counts.sum(axis=1) == 0]]
+    constant = {}
+    for station in counts.index:
+        for variable in variables:
+            if counts.at[station, variable] >= min_values and lows.at[station, variable] == highs.at[station, variable]:
+                constant.setdefault(str(station), {})[variable] = float(lows.at[station, variable])
+    return {"stations_without_valid_values": without, "constant_series": constant}
 
 
 def summary_row(report: dict) -> dict:

@@ -1,6 +1,12 @@
 """Timestamps: delivered text -> UTC, with the daylight-saving decisions made explicit.
 
-Reads and writes nothing. Obeys the format key `time` (format, timezone, label, ambiguous, nonexistent).
+Reads and writes nothing. Obeys the format key `time` (format, timezone, label, ambiguous, nonexistent,
+earliest, latest).
+
+Plausible window: a stamp before `time.earliest` or after `time.latest` (never later than the time of
+ingestion) is a typo or a broken logger clock. Such rows are dropped and counted
+(`timestamp_outside_window`) before anything else looks at them: one row stamped 2099 would otherwise
+stretch its station's hourly grid by 650,000 empty rows, and a year 9999 would exhaust memory.
 
 Local clock time with DST has two awkward hours a year:
 - autumn: one local hour happens twice. Policy `order` (default) pairs repeats in delivery order:
@@ -90,3 +96,24 @@ def localize_to_utc(naive: pd.Series, group_keys: pd.DataFrame, time_spec: dict)
 def apply_label(utc: pd.Series, time_spec: dict) -> pd.Series:
     """Hour-ending stamps (label `end`) name the hour by its end: move them to the hour's start."""
     return utc - pd.Timedelta(hours=1) if time_spec["label"] == "end" else utc
+
+
+# Real UTC offsets lie within [-12 h, +14 h] and hour-ending labels move a stamp by one hour: a naive
+# local stamp this far outside the window is outside it in UTC too.
+LOCAL_SLACK = pd.Timedelta(hours=15)
+
+
+def window_bounds(time_spec: dict, now: pd.Timestamp | None = None) -> tuple[pd.Timestamp, pd.Timestamp]:
+    """(earliest, latest) as UTC instants; latest is never later than `now` (default: this moment)."""
+    now = pd.Timestamp.now(tz="UTC") if now is None else now
+    latest = now if time_spec.get("latest") is None else min(pd.Timestamp(time_spec["latest"]), now)
+    return pd.Timestamp(time_spec["earliest"]), latest
+
+
+def outside_window(times: pd.Series, bounds: tuple[pd.Timestamp, pd.Timestamp]) -> np.ndarray:
+    """Mask of stamps outside [earliest, latest]. Naive stamps (local clock) are compared with
+    LOCAL_SLACK around the bounds; UTC stamps exactly. NaT is never outside."""
+    earliest, latest = bounds
+    if not is_aware(times):
+        earliest, latest = (earliest - LOCAL_SLACK).tz_localize(None), (latest + LOCAL_SLACK).tz_localize(None)
+    return (times.notna() & ((times < earliest) | (times > latest))).to_numpy()

@@ -2,7 +2,7 @@
 
 Reads and writes nothing. Obeys the format keys `decimal`, `missing_values`, `sentinels`, and the
 delivered units (per variable, or per row in long layouts). Order of checks, first match wins:
-missing (empty cell or a missing-value word) -> unparseable (text that is not a number) ->
+missing (empty cell or a missing-value word, any letter case) -> unparseable (text that is not a number) ->
 sentinel (a delivered no-data code, compared before unit conversion, as delivered) ->
 out of range (outside the canonical variable's [low, high] after conversion).
 A value with any flag other than ok becomes NaN; the flag keeps the reason.
@@ -19,10 +19,15 @@ from pipeline.variables import (BY_NAME, QC_MISSING, QC_OK, QC_OUT_OF_RANGE, QC_
 def parse_numbers(text: pd.Series, spec: dict) -> tuple[np.ndarray, np.ndarray]:
     """Text -> (float64 values as delivered, int8 flags); flagged values are NaN."""
     stripped = text.astype(str).str.strip()
-    missing = stripped.isin(spec["missing_values"]).to_numpy()
+    missing = stripped.isin(spec["missing_values"]).to_numpy(copy=True)
     if spec["decimal"] != ".":
         stripped = stripped.str.replace(spec["decimal"], ".", regex=False)
     numbers = pd.to_numeric(stripped.where(~missing), errors="coerce").to_numpy(dtype="float64", copy=True)
+    # Missing-value words match in any letter case (NaN, nan, NAN, n/a); only the few texts that are not
+    # numbers are lower-cased, so the common path stays vectorised.
+    words = {word.lower() for word in spec["missing_values"]}
+    other = ~missing & np.isnan(numbers)
+    missing[other] = stripped[other].str.lower().isin(words).to_numpy()
     unparseable = ~missing & np.isnan(numbers)
     sentinel = ~missing & np.isin(numbers, np.asarray(spec["sentinels"], dtype="float64"))
     flags = np.full(len(text), QC_OK, dtype="int8")
