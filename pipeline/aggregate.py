@@ -6,9 +6,12 @@ Reads the run records results/runs/<split_id>/<model>/<penalty>/<seed>.json, the
 - grid.parquet: one row per current run: identity, every logged metric (`<rule>.<name>` and the
   un-prefixed primary ones), every tag (`tag.<name>`) and param (`param.<name>`);
 - grid.csv: the summary per split x model x penalty for every selection rule that was logged
-  (pipeline.grid_stats.summarise), the Diebold-Mariano columns joined in;
-- grid_dm.csv: the Diebold-Mariano + HLN tests of each penalty against its ERM twin, per rule;
-- grid_meta.json: metric, rules, Friedman/Nemenyi per rule, skipped runs and why.
+  (pipeline.grid_stats.summarise), the Diebold-Mariano columns and the origin intervals joined in;
+- grid_dm.csv: the Diebold-Mariano + HLN tests of each penalty against its ERM twin, per rule and loss
+  (absolute, squared, scaled absolute), with Holm-adjusted p-values (pipeline.window_stats);
+- grid_intervals.csv: the 95 % moving-block bootstrap interval over test origins of every cell, per rule
+  and resamplable metric (mae, mse, rmse, mase), so `shiftgrid grid --metric` needs no artifact;
+- grid_meta.json: metric, rules, Friedman/Iman-Davenport/Nemenyi per rule, skipped runs and why.
 Config keys obeyed (handed over by the rule): report.metric, report.bootstrap_samples.
 
 A record whose run is missing, unfinished, in another experiment or whose headline metrics differ from
@@ -27,7 +30,7 @@ from urllib.parse import unquote, urlparse
 import numpy as np
 import pandas as pd
 
-from pipeline import grid_stats, tracking
+from pipeline import grid_stats, stats, tracking, window_stats
 from pipeline.atomic import write_csv_atomic, write_parquet_atomic, write_text_atomic
 from pipeline.errors import InputError
 
@@ -149,47 +152,68 @@ def predictions_of(run_id: str, artifact_uri: str, tracking_uri: str, record_pat
         return pd.read_parquet(local)
 
 
-def dm_tests(runs: pd.DataFrame, rules: list[str], load=predictions_of) -> pd.DataFrame:
-    """Diebold-Mariano + HLN of every penalty against its ERM twin (same split and model), per rule."""
-    losses: dict[str, dict[str, pd.Series]] = {}
+def window_tables(runs: pd.DataFrame, rules: list[str], load=predictions_of) -> dict[str, dict]:
+    """Per run: {"errors": {rule: per-window errors}, "horizon": hours, "stride": hours}, each artifact read once."""
+    stride_column = "param.forecast.stride_hours"
+    tables = {}
+    for row in runs.itertuples():
+        frame = load(row.run_id, row.artifact_uri, row.tracking_uri, row.record)
+        errors = {rule: window_stats.window_errors(frame, rule) for rule in rules}
+        origins = pd.DatetimeIndex(pd.to_datetime(frame["origin"], utc=True).unique())
+        stride_param = runs.at[row.Index, stride_column] if stride_column in runs.columns else None
+        tables[row.run_id] = {"errors": errors, "horizon": window_stats.horizon_of(frame),
+                              "stride": window_stats.stride_hours(origins, stride_param)}
+    return tables
 
-    def losses_of(row) -> dict[str, pd.Series]:
-        if row.run_id not in losses:
-            frame = load(row.run_id, row.artifact_uri, row.tracking_uri, row.record)
-            horizon = sum(col.startswith("y_h") for col in frame.columns)
-            losses[row.run_id] = {rule: grid_stats.window_losses(frame, rule) for rule in rules}
-            losses[row.run_id]["_horizon"] = horizon
-        return losses[row.run_id]
 
+def dm_tests(runs: pd.DataFrame, rules: list[str], tables: dict[str, dict]) -> pd.DataFrame:
+    """Diebold-Mariano + HLN of every penalty against its ERM twin (same split and model), per rule and
+    loss, with Holm-adjusted p-values over each rule's family of comparisons."""
     rows = []
     for (split_id, model), group in runs.groupby(["split_id", "model"], sort=True):
-        erm = list(group[group["penalty"] == grid_stats.BASELINE_PENALTY].itertuples())
+        erm = group[group["penalty"] == grid_stats.BASELINE_PENALTY]["run_id"].tolist()
         others = group[~group["penalty"].isin([grid_stats.BASELINE_PENALTY, grid_stats.NOT_APPLICABLE])]
         if not erm or others.empty:
             continue
+        horizon, stride = tables[erm[0]]["horizon"], tables[erm[0]]["stride"]
         for penalty, penalised in others.groupby("penalty", sort=True):
-            penalised_rows = list(penalised.itertuples())
-            horizon = losses_of(erm[0])["_horizon"]
             for rule in rules:
-                result = grid_stats.paired_dm([losses_of(r)[rule] for r in penalised_rows],
-                                              [losses_of(r)[rule] for r in erm], horizon)
-                rows.append({"split_id": split_id, "model": model, "penalty": penalty,
-                             "selection_rule": rule, **result})
-    columns = ["split_id", "model", "penalty", "selection_rule", "dm_stat", "dm_hln", "dm_p", "dm_fallback",
-               "dm_n", "dm_h", "dm_mean_diff"]
-    return pd.DataFrame(rows, columns=columns)
+                for loss in window_stats.LOSSES:
+                    result = window_stats.paired_dm([tables[r]["errors"][rule] for r in penalised["run_id"]],
+                                                    [tables[r]["errors"][rule] for r in erm], loss, horizon, stride)
+                    rows.append({"split_id": split_id, "model": model, "penalty": penalty,
+                                 "selection_rule": rule, **result})
+    columns = ["split_id", "model", "penalty", "selection_rule", "dm_loss", "dm_stat", "dm_hln", "dm_p", "dm_n",
+               "dm_lags", "dm_mean_diff"]
+    dm = pd.DataFrame(rows, columns=columns)
+    dm["dm_p_holm"] = window_stats.holm_by_family(dm)
+    return dm
 
 
-def build_grid(runs: pd.DataFrame, dm: pd.DataFrame, metric: str, n_boot: int) -> tuple[pd.DataFrame, dict]:
-    """The summary table (every available rule) and the Friedman/Nemenyi result per rule."""
+def cell_intervals(runs: pd.DataFrame, rules: list[str], tables: dict[str, dict], n_boot: int) -> pd.DataFrame:
+    """The origin block-bootstrap interval of every cell, rule and resamplable metric."""
+    rows = []
+    for key, group in runs.groupby(["split_id", "model", "penalty"], sort=True):
+        run_ids = group.sort_values("seed")["run_id"].tolist()
+        horizon, stride = tables[run_ids[0]]["horizon"], tables[run_ids[0]]["stride"]
+        for rule in rules:
+            for metric in window_stats.INTERVAL_METRICS:
+                result = window_stats.cell_interval([tables[r]["errors"][rule] for r in run_ids], metric, horizon,
+                                                    stride, n_boot)
+                rows.append({**dict(zip(["split_id", "model", "penalty"], key)), "selection_rule": rule,
+                             "metric": metric, **result})
+    return pd.DataFrame(rows, columns=["split_id", "model", "penalty", "selection_rule", "metric", "ci_low",
+                                      "ci_high", "ci_block", "ci_origins", "point"])
+
+
+def build_grid(runs: pd.DataFrame, dm: pd.DataFrame, intervals: pd.DataFrame, metric: str) -> tuple[pd.DataFrame, dict]:
+    """The summary table (every available rule) and the Friedman/Iman-Davenport/Nemenyi result per rule."""
     summaries, friedman = [], {}
     for rule in grid_stats.available_rules(runs):
-        summary = grid_stats.summarise(runs, metric, rule, n_boot=n_boot)
-        friedman[rule] = grid_stats.friedman_over_splits(summary)
+        summary = grid_stats.attach_tests(grid_stats.summarise(runs, metric, rule), dm, intervals)
+        friedman[rule] = grid_stats.friedman_over_targets(summary)
         summaries.append(summary)
-    summary = pd.concat(summaries, ignore_index=True)
-    summary = summary.merge(dm, on=["split_id", "model", "penalty", "selection_rule"], how="left")
-    return summary, friedman
+    return pd.concat(summaries, ignore_index=True), friedman
 
 
 def aggregate(record_paths: list[Path | str], out_dir: Path | str, metric: str = "mae",
@@ -199,16 +223,21 @@ def aggregate(record_paths: list[Path | str], out_dir: Path | str, metric: str =
     out_dir.mkdir(parents=True, exist_ok=True)
     runs, skipped = collect_runs(record_paths)
     rules = grid_stats.available_rules(runs)
-    dm = dm_tests(runs, rules, load=load)
-    summary, friedman = build_grid(runs, dm, metric, n_boot)
+    tables = window_tables(runs, rules, load)
+    dm = dm_tests(runs, rules, tables)
+    intervals = cell_intervals(runs, rules, tables, n_boot)
+    summary, friedman = build_grid(runs, dm, intervals, metric)
     write_parquet_atomic(runs, out_dir / "grid.parquet")
     write_csv_atomic(summary, out_dir / "grid.csv")
     write_csv_atomic(dm, out_dir / "grid_dm.csv")
-    meta = {"metric": metric, "rules": rules, "n_records": len(record_paths), "n_runs": int(len(runs)),
+    write_csv_atomic(intervals, out_dir / "grid_intervals.csv")
+    meta = {"metric": metric, "metric_label": summary["metric_label"].iloc[0], "rules": rules,
+            "n_records": len(record_paths), "n_runs": int(len(runs)),
             "experiment": sorted(runs["experiment"].dropna().unique().tolist()),
             "tracking_uris": sorted(runs["tracking_uri"].unique().tolist()),
             "skipped": {reason: {"count": len(paths), "records": paths} for reason, paths in skipped.items()},
-            "friedman": friedman, "bootstrap_samples": n_boot}
+            "friedman": friedman, "bootstrap_samples": n_boot, "alpha": grid_stats.ALPHA,
+            "tie_tolerance": stats.TIE_TOLERANCE}
     write_text_atomic(json.dumps(meta, indent=1, sort_keys=True, default=_json_default), out_dir / "grid_meta.json")
     return meta
 

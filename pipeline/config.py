@@ -43,6 +43,10 @@ class DataConfig:
     reference_temperature_c: float = 25.0  # gas ppb -> ug/m3 reference (25 C: US EPA practice)
     generator: Optional[Dict[str, Any]] = None  # how `shiftgrid demo` writes raw dumps; None = real data
     cities: Dict[str, Any] = field(default_factory=dict)  # city -> dump format (see docs/ingest)
+    # What the scenario's author knows about the spurious relation (keys: pipeline.verdict.GROUND_TRUTH_KEYS);
+    # the report's verdict says where the penalty helped where it can and where it cannot. None = unknown
+    # (real data): the report then omits that part.
+    ground_truth: Optional[Dict[str, Any]] = None
 
 
 @dataclass
@@ -210,6 +214,9 @@ def validate(cfg: DictConfig) -> None:
         raise InputError(f"unknown model family {family!r}; known: {', '.join(sorted(MODEL_FAMILIES))}",
                          file="config", field="model.family")
     build_model(family, model, seed=0)
+    from pipeline.verdict import check_ground_truth
+
+    check_ground_truth(to_container(cfg.data.ground_truth), list(cfg.data.cities))
     penalty = to_container(cfg.penalty)
     build_penalty(penalty["name"], weight=penalty["weight"], warmup_steps=penalty["warmup_steps"],
                   **penalty["extra"])

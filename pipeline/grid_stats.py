@@ -1,9 +1,14 @@
 """Statistics of the comparison grid, computed from the one-row-per-run table (results/grid.parquet).
 
 Pure pandas/numpy functions on tables handed over by pipeline.aggregate (the I/O shell); nothing is
-read or written here. Config keys obeyed (passed in by the caller): report.metric, report.selection,
-report.bootstrap_samples. The tests themselves (Diebold-Mariano + HLN, Friedman, Nemenyi CD, bootstrap
-interval, win/tie/loss, relative change) live in pipeline.stats; this module only arranges the grid.
+read or written here. Config keys obeyed (passed in by the caller): report.metric, report.selection.
+The tests themselves (Diebold-Mariano + HLN, Holm, Friedman, Iman-Davenport, Nemenyi CD, win/tie/loss,
+relative change) live in pipeline.stats, the intervals in pipeline.resampling and the per-origin
+statistics in pipeline.window_stats; this module arranges the grid and names what it shows.
+
+Sign convention of "change vs ERM" (one everywhere: grid.csv, `shiftgrid grid`, the report's table and
+heatmap): (penalty - ERM) / |ERM| of the cell means in the metric's own direction, so NEGATIVE = the
+penalty lowered the metric, which is better for an error (mae, mse, ...) and worse for pod/csi/ets.
 
 Orientation: errors (mae, rmse, mse, mase, far, ...) are better when smaller; pod, csi and ets when
 larger; bias is best at 1. Ranks and win/tie/loss use an oriented *loss* (smaller = better) so one code
@@ -15,18 +20,25 @@ from __future__ import annotations
 import numpy as np
 import pandas as pd
 
-from pipeline import selection, stats
+from pipeline import resampling, selection, stats
+from pipeline.window_stats import loss_for
 from pipeline.errors import InputError
+from pipeline.variables import BY_NAME
 
 HIGHER_IS_BETTER = frozenset({"pod", "csi", "ets"})
 BEST_AT_ONE = frozenset({"bias"})
 BASELINE_PENALTY = "erm"
 NOT_APPLICABLE = "na"  # penalty of families that are not gradient-trained
 ID_COLUMNS = ("split_id", "sources", "target", "model", "family", "penalty")
+ALPHA = 0.05  # level of every test, family-wise after the Holm correction
 MULTIPLE_COMPARISON_CAVEAT = (
-    "The Nemenyi critical difference controls the family-wise error over all pairwise comparisons of "
-    "mean ranks; the per-pair Diebold-Mariano p-values are NOT corrected for multiple comparisons, and "
-    "splits that share cities are not fully independent blocks, so read small p-values with care.")
+    "Diebold-Mariano p-values are Holm-adjusted over every penalised-vs-ERM-twin comparison of the grid under "
+    "one selection rule. The Friedman blocks are target cities (splits that share a target are averaged "
+    "first, since they are scored on the same target test data); blocks still share source cities in "
+    "training, so they are not fully independent. The Nemenyi critical difference is read only when the "
+    "omnibus test (Iman-Davenport F) rejects.")
+CHANGE_NOTE = ("change vs ERM twin = (penalty - ERM) / |ERM| of the cell means, in %; negative = the penalty "
+               "lowered the metric")
 
 
 def penalty_display(penalty: str) -> str:
@@ -98,21 +110,94 @@ def available_rules(runs: pd.DataFrame) -> list[str]:
             if any(col.startswith(f"{rule}.") and runs[col].notna().any() for col in runs.columns)]
 
 
-def summarise(runs: pd.DataFrame, metric: str, rule: str, n_boot: int = 2000, seed: int = 0) -> pd.DataFrame:
-    """One row per split x model x penalty: mean, std, n_seeds, 95% bootstrap CI, ranks, change vs ERM.
+UNITLESS = frozenset({"mase", "pod", "far", "csi", "ets", "bias"})
+THRESHOLD_SCORES = frozenset({"pod", "far", "csi", "ets", "bias"})
+_PLACES = (("source_", " on the source test block"), ("gap_", ", target minus source"),
+           ("worst_source_env_", " in the worst source environment"), ("target_", ""))
 
-    Runs whose metric is NaN are not averaged but counted in `n_missing`. rank = rank of the mean
-    within its split (1 = best; ties averaged); mean_rank = average of a combination's ranks over the
-    splits. vs_erm_*: the penalty against the ERM run of the same split and model (relative change of
-    the mean, in the metric's own direction) and, per model x penalty, win/tie/loss over splits.
+
+def unit_of(variable: str) -> str:
+    if variable not in BY_NAME:
+        raise InputError(f"unknown forecast variable {variable!r}", field="forecast.target")
+    return BY_NAME[variable].unit
+
+
+def threshold_note(variable: str, threshold: float) -> str:
+    """How the exceedance event is named everywhere: a research scoring threshold on hourly values."""
+    return (f"research scoring threshold: hourly {variable} above {float(threshold):g} {unit_of(variable)}, "
+            f"applied to each hourly value (no 24-h mean is formed; not an alert level)")
+
+
+def metric_label(metric_name: str, variable: str, threshold: float | None = None) -> str:
+    """'target_mae' -> 'MAE of pm25, ug/m3': the score, the forecast variable and its unit.
+
+    mse carries the squared unit, mase none (each station's error is divided by its own naive error in
+    the same unit), exceedance scores name their hourly event.
+    """
+    name = metric_name.split(".", 1)[-1]
+    place = next((text for prefix, text in _PLACES if name.startswith(prefix)), "")
+    base = metric_base(name)
+    if "_h" in name.split(base, 1)[-1]:
+        place += f" at hour {int(name.rsplit('_h', 1)[1])} ahead"
+    unit = unit_of(variable)
+    if base in THRESHOLD_SCORES:
+        event = f"hourly {variable} > {float(threshold):g} {unit}" if threshold is not None else f"hourly {variable}"
+        return f"{base.upper()} of {event}{place} (no unit; research scoring threshold)"
+    if base == "mase":
+        return f"MASE of {variable}{place} (no unit: per-station seasonal-naive scale)"
+    if base == "mse":
+        return f"MSE of {variable}{place}, ({unit})^2"
+    if base in ("mae", "rmse"):
+        return f"{base.upper()} of {variable}{place}, {unit}"
+    return name
+
+
+def run_setting(runs: pd.DataFrame, param: str, field: str):
+    """The one value of a logged param shared by every run (e.g. forecast.target); error if absent or mixed."""
+    column = f"param.{param}"
+    values = runs[column].dropna().unique() if column in runs.columns else []
+    if len(values) != 1:
+        raise InputError(f"the runs must share one {param}, found {list(values)}", file="grid.parquet", field=field)
+    return values[0]
+
+
+def grid_metric_label(runs: pd.DataFrame, metric_name: str) -> str:
+    """metric_label with the forecast variable and the threshold read from the runs' logged config."""
+    variable = str(run_setting(runs, "forecast.target", "forecast.target"))
+    threshold = None
+    if metric_base(metric_name) in THRESHOLD_SCORES:
+        threshold = float(run_setting(runs, "metrics.hourly_exceedance_threshold",
+                                      "metrics.hourly_exceedance_threshold"))
+    return metric_label(metric_name, variable, threshold)
+
+
+def change_note(metric_name: str) -> str:
+    better = "better" if not higher_is_better(metric_name) else "worse"
+    return f"{CHANGE_NOTE} ({better} for {metric_base(metric_name)})"
+
+
+def format_change(change) -> str:
+    """The one text form of a change vs ERM (heatmap annotation, report table, `shiftgrid grid`)."""
+    return f"{float(change) * 100:+.1f}%" if np.isfinite(change) else "–"
+
+
+def summarise(runs: pd.DataFrame, metric: str, rule: str) -> pd.DataFrame:
+    """One row per split x model x penalty: mean, std, n_seeds, seed spread, ranks, change vs ERM.
+
+    Runs whose metric is NaN are not averaged but counted in `n_missing`. seed_low / seed_high /
+    seed_interval: pipeline.resampling.seed_interval (the seed range below 3 seeds). The 95 % interval
+    over test origins (ci_*) needs the predictions artifacts and is joined in by `attach_tests`.
+    rank = rank of the mean within its split (1 = best; ties averaged); mean_rank = average of a
+    combination's ranks over the splits. vs_erm_*: the penalty against the ERM run of the same split
+    and model (relative change of the mean, see the module docstring) and, per model x penalty,
+    win/tie/loss over splits (tie: within stats.TIE_TOLERANCE of the ERM mean).
     """
     column = metric_column(runs.columns, metric, rule)
     rows = []
     for key, group in runs.groupby(list(ID_COLUMNS), sort=True, dropna=False):
         values = group[column].to_numpy(np.float64)
         finite = values[np.isfinite(values)]
-        low, high = (stats.bootstrap_ci(finite, n_boot=n_boot, seed=seed) if finite.size
-                     else (np.nan, np.nan))
+        low, high, kind = resampling.seed_interval(finite)
         rows.append({**dict(zip(ID_COLUMNS, key)),
                      "combo": combo_label(key[3], key[5]), "split": split_label(key[1], key[2]),
                      "selection_rule": rule, "selection_label": selection.label(rule),
@@ -120,11 +205,12 @@ def summarise(runs: pd.DataFrame, metric: str, rule: str, n_boot: int = 2000, se
                      "mean": float(finite.mean()) if finite.size else np.nan,
                      "std": float(finite.std(ddof=1)) if finite.size > 1 else np.nan,
                      "n_seeds": int(finite.size), "n_missing": int(values.size - finite.size),
-                     "ci_low": low, "ci_high": high,
+                     "seed_low": low, "seed_high": high, "seed_interval": kind,
                      "run_ids": ";".join(group.sort_values("seed")["run_id"].astype(str))})
     summary = pd.DataFrame(rows)
     if summary.empty:
         raise InputError("no runs to summarise", field="runs")
+    summary["metric_label"] = grid_metric_label(runs, column)
     summary["loss"] = as_loss(summary["mean"], column)
     summary["rank"] = stats.rank_within(summary, ["split_id"], "loss")
     summary["mean_rank"] = summary.groupby("combo")["rank"].transform("mean")
@@ -135,7 +221,7 @@ def summarise(runs: pd.DataFrame, metric: str, rule: str, n_boot: int = 2000, se
 def _add_erm_comparison(summary: pd.DataFrame, column: str) -> pd.DataFrame:
     erm = summary[summary["penalty"] == BASELINE_PENALTY].set_index(["split_id", "model"])
     summary = summary.copy()
-    for name in ("vs_erm_change", "vs_erm_wins", "vs_erm_ties", "vs_erm_losses", "vs_erm_missing"):
+    for name in ("vs_erm_change", "vs_erm_outcome", "vs_erm_wins", "vs_erm_ties", "vs_erm_losses", "vs_erm_missing"):
         summary[name] = np.nan
     penalised = ~summary["penalty"].isin([BASELINE_PENALTY, NOT_APPLICABLE])
     for (model, penalty), group in summary[penalised].groupby(["model", "penalty"]):
@@ -143,88 +229,68 @@ def _add_erm_comparison(summary: pd.DataFrame, column: str) -> pd.DataFrame:
                  for split in group["split_id"]]
         base_mean = np.array([twin["mean"] if twin is not None else np.nan for twin in twins])
         summary.loc[group.index, "vs_erm_change"] = stats.relative_change(group["mean"].to_numpy(), base_mean)
+        codes = stats.outcome_codes(as_loss(group["mean"], column), as_loss(base_mean, column))
+        summary.loc[group.index, "vs_erm_outcome"] = codes  # -1 win, 0 tie, 1 loss, 2 no twin
         tally = stats.win_tie_loss(as_loss(group["mean"], column), as_loss(base_mean, column))
         for outcome in ("wins", "ties", "losses", "missing"):
             summary.loc[group.index, f"vs_erm_{outcome}"] = tally[outcome]
     return summary
 
 
+def attach_tests(summary: pd.DataFrame, dm: pd.DataFrame | None, intervals: pd.DataFrame | None) -> pd.DataFrame:
+    """Join the Diebold-Mariano row whose loss matches the summary's metric and its origin intervals.
+
+    dm: pipeline.window_stats.paired_dm rows with split_id, model, penalty, selection_rule, dm_loss and
+    dm_p_holm; intervals: cell_interval rows with a `metric` base column. Cells without either keep NaN.
+    """
+    keys = ["split_id", "model", "penalty", "selection_rule"]
+    base = metric_base(summary["metric"].iloc[0])
+    out = summary.drop(columns=[c for c in summary.columns if c.startswith(("dm_", "ci_"))])
+    if dm is not None and len(dm):
+        out = out.merge(dm[dm["dm_loss"] == loss_for(base)], on=keys, how="left")
+    if intervals is not None and len(intervals):
+        chosen = intervals[intervals["metric"] == base].drop(columns=["metric", "point"], errors="ignore")
+        out = out.merge(chosen, on=keys, how="left")
+    for column in ("dm_p", "dm_p_holm", "dm_mean_diff", "dm_loss", "ci_low", "ci_high", "ci_block"):
+        if column not in out.columns:
+            out[column] = np.nan
+    return out
+
+
 def gain_vs_erm(summary: pd.DataFrame) -> np.ndarray:
-    """Relative change turned so that positive = better than ERM, whatever the metric's direction."""
+    """Change turned so that positive = better than ERM, whatever the metric's direction (colour only)."""
     sign = np.where([higher_is_better(m) for m in summary["metric"]], 1.0, -1.0)
     return sign * summary["vs_erm_change"].to_numpy(np.float64)
 
 
-def friedman_over_splits(summary: pd.DataFrame) -> dict:
-    """Friedman test + Nemenyi CD over model x penalty combinations, splits as blocks (Demsar 2006).
+def friedman_over_targets(summary: pd.DataFrame, alpha: float = ALPHA) -> dict:
+    """Friedman + Iman-Davenport + Nemenyi CD over model x penalty combinations (Demsar 2006).
 
-    Only complete blocks enter: a combination missing (or NaN) in some split is left out and named in
-    `dropped_combos`. Needs >= 2 splits and >= 2 combinations; otherwise `available` is False with the
-    reason. Mean ranks are of the oriented loss, 1 = best.
+    Blocks must be independent: splits that share a target city are scored on the same target test
+    data, so their means are averaged into one block per target. Only combinations with a value in
+    every split enter (the others are named in `dropped_combos`). Needs >= 2 targets and >= 3
+    combinations; otherwise `available` is False with the reason. `rejects`: the Iman-Davenport p is
+    below alpha; only then is the critical difference read. Mean ranks are of the oriented loss, 1 = best.
     """
     metric = summary["metric"].iloc[0]
     table = summary.pivot_table(index="split_id", columns="combo", values="mean", aggfunc="first")
     complete = table.columns[table.notna().all(axis=0)]
     dropped = sorted(set(table.columns) - set(complete))
-    table = table[complete]
-    result = {"available": False, "n_splits": int(table.shape[0]), "k": int(table.shape[1]),
-              "dropped_combos": dropped, "caveat": MULTIPLE_COMPARISON_CAVEAT,
-              "selection_rule": summary["selection_rule"].iloc[0], "metric": metric}
-    if table.shape[0] < 2 or table.shape[1] < 2:
-        result["reason"] = (f"needs >= 2 splits and >= 2 complete combinations, got {table.shape[0]} "
-                            f"splits x {table.shape[1]} combinations")
+    target_of = summary.groupby("split_id")["target"].first()
+    blocks = table[complete].groupby(target_of.reindex(table.index)).mean()
+    result = {"available": False, "n_splits": int(table.shape[0]), "n_blocks": int(blocks.shape[0]),
+              "blocks": [str(t) for t in blocks.index], "k": int(blocks.shape[1]), "dropped_combos": dropped,
+              "caveat": MULTIPLE_COMPARISON_CAVEAT, "selection_rule": summary["selection_rule"].iloc[0],
+              "metric": metric, "alpha": alpha}
+    if blocks.shape[0] < 2 or blocks.shape[1] < 3:
+        result["reason"] = (f"needs >= 2 target cities (independent blocks) and >= 3 combinations present in "
+                            f"every split, got {blocks.shape[0]} targets x {blocks.shape[1]} combinations")
         return result
-    chi2, p_value, mean_ranks = stats.friedman(as_loss(table.to_numpy(), metric))
-    result.update({"available": True, "chi2": chi2, "p_value": p_value,
-                   "cd": stats.nemenyi_cd(int(table.shape[1]), int(table.shape[0])), "alpha": 0.05,
-                   "mean_ranks": dict(sorted(zip(table.columns, map(float, mean_ranks)),
+    n, k = int(blocks.shape[0]), int(blocks.shape[1])
+    chi2, p_value, mean_ranks = stats.friedman(as_loss(blocks.to_numpy(), metric))
+    f_stat, f_p, df1, df2 = stats.iman_davenport(chi2, n, k)
+    result.update({"available": True, "chi2": chi2, "p_value": p_value, "f_stat": f_stat, "f_p_value": f_p,
+                   "f_df": [df1, df2], "rejects": bool(f_p < alpha), "cd": stats.nemenyi_cd(k, n, alpha),
+                   "mean_ranks": dict(sorted(zip(blocks.columns, map(float, mean_ranks)),
                                              key=lambda item: item[1]))})
     return result
-
-
-def window_losses(predictions: pd.DataFrame, rule: str) -> pd.Series:
-    """Mean absolute error over the horizon of every forecast window, indexed by (station_id, origin).
-
-    `predictions` is a run's predictions artifact (y_hXX / p_hXX columns, one row per window and rule).
-    A window whose pairs are all NaN has no loss and is left out (the caller counts pairs).
-    """
-    chosen = predictions[predictions["selection"] == rule]
-    y_cols = sorted(col for col in chosen.columns if col.startswith("y_h"))
-    p_cols = [f"p{col[1:]}" for col in y_cols]
-    errors = np.abs(chosen[y_cols].to_numpy(np.float64) - chosen[p_cols].to_numpy(np.float64))
-    counts = np.isfinite(errors).sum(axis=1)
-    loss = np.where(counts > 0, np.nansum(errors, axis=1) / np.maximum(counts, 1), np.nan)
-    index = pd.MultiIndex.from_arrays([chosen["station_id"].astype(str).to_numpy(),
-                                       pd.to_datetime(chosen["origin"], utc=True).to_numpy()],
-                                      names=["station_id", "origin"])
-    return pd.Series(loss, index=index).dropna()
-
-
-def seed_mean(losses: list[pd.Series]) -> pd.Series:
-    """Average the window losses of several seeds, window by window (windows all seeds share)."""
-    joined = pd.concat(losses, axis=1, join="inner")
-    return joined.mean(axis=1)
-
-
-def paired_dm(penalised: list[pd.Series], erm: list[pd.Series], horizon: int) -> dict:
-    """Diebold-Mariano + HLN of a penalty's window losses against its ERM twin's.
-
-    Windows are paired by (station_id, origin) after averaging over seeds; the differences are then
-    averaged over stations at each origin, giving one time-ordered series at the forecast stride, on
-    which h = horizon (overlapping multi-step windows). d = loss(penalty) - loss(ERM): a negative
-    statistic means the penalty has the smaller error. `fallback` flags the h = 1 variance fallback.
-    """
-    empty = {"dm_stat": np.nan, "dm_hln": np.nan, "dm_p": np.nan, "dm_fallback": False,
-             "dm_n": 0, "dm_h": horizon, "dm_mean_diff": np.nan}
-    if not penalised or not erm:
-        return empty
-    pairs = pd.concat([seed_mean(penalised), seed_mean(erm)], axis=1, join="inner").dropna()
-    diff = (pairs.iloc[:, 0] - pairs.iloc[:, 1]).groupby(level="origin").mean().sort_index()
-    size = len(diff)
-    if size < 3:
-        return {**empty, "dm_n": size}
-    h = int(min(horizon, size - 1))
-    result = stats.diebold_mariano(diff.to_numpy(), h)
-    return {"dm_stat": result.statistic, "dm_hln": result.hln_statistic, "dm_p": result.p_value,
-            "dm_fallback": result.variance_fallback, "dm_n": size, "dm_h": h,
-            "dm_mean_diff": float(diff.mean())}

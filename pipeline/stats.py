@@ -1,13 +1,15 @@
-"""Statistics of the comparison grid: forecast-accuracy tests, rank tests, intervals and tallies.
+"""Statistics of the comparison grid: forecast-accuracy tests, multiplicity, rank tests and tallies.
 
 Pure numpy/scipy/pandas functions: they read arrays or tables handed over by the aggregation step
-and write nothing. No config keys are read here; levels, horizons and seeds are explicit arguments.
+and write nothing. No config keys are read here; levels, lags and horizons are explicit arguments.
+Resampling (block bootstrap, seed intervals) lives in pipeline.resampling.
 
 Sign convention everywhere: values are losses or errors, so smaller is better.
 """
 
 from __future__ import annotations
 
+import math
 from dataclasses import dataclass
 
 import numpy as np
@@ -23,11 +25,12 @@ ALTERNATIVES = ("two-sided", "less", "greater")
 class DMResult:
     """Outcome of a Diebold-Mariano test; `hln_statistic` is the one the p-value refers to."""
 
-    statistic: float  # DM, asymptotically N(0, 1)
-    hln_statistic: float  # DM* with the Harvey-Leybourne-Newbold small-sample factor
+    statistic: float  # DM = mean(d) / sqrt(Newey-West variance of the mean), asymptotically N(0, 1)
+    hln_statistic: float  # DM* = DM times the Harvey-Leybourne-Newbold factor with h = lags + 1
     p_value: float  # from Student t with `df` degrees of freedom
     df: int  # T - 1
-    variance_fallback: bool  # True when the long-run variance was <= 0 and h = 1 was used instead
+    lags: int  # Bartlett lags of the variance
+    n: int  # T: loss differences observed
 
 
 def _finite_vector(values, name: str) -> np.ndarray:
@@ -41,12 +44,68 @@ def _finite_vector(values, name: str) -> np.ndarray:
     return arr
 
 
-def _long_run_variance(d: np.ndarray, h: int) -> float:
-    """(gamma_0 + 2 sum_{k=1}^{h-1} gamma_k) / T with autocovariances of divisor T."""
-    size = d.size
+def _lag_count(lags, name: str = "lags") -> int:
+    if not isinstance(lags, (int, np.integer)) or isinstance(lags, bool) or lags < 0:
+        raise InputError(f"must be an integer >= 0, got {lags!r}", field=name)
+    return int(lags)
+
+
+def dm_lag_order(horizon_hours: int, stride_hours: int) -> int:
+    """Lags of the loss-differential autocovariance that forecast windows make: ceil(H / s) - 1.
+
+    Windows whose origins are k strides apart share target hours while k * s < H, so their errors are
+    correlated up to k = ceil(H / s) - 1 strides and (under the null of optimal forecasts) not beyond
+    (Diebold & Mariano 1995: an h-step forecast error is MA(h - 1); here h is counted in strides).
+    """
+    for value, name in ((horizon_hours, "horizon_hours"), (stride_hours, "stride_hours")):
+        if not isinstance(value, (int, np.integer)) or isinstance(value, bool) or value < 1:
+            raise InputError(f"must be an integer >= 1, got {value!r}", field=name)
+    return math.ceil(horizon_hours / stride_hours) - 1
+
+
+def _positions(positions, size: int) -> np.ndarray:
+    if positions is None:
+        return np.arange(size, dtype=np.int64)
+    arr = np.asarray(positions)
+    if arr.shape != (size,) or not np.issubdtype(arr.dtype, np.integer):
+        raise InputError(f"positions must be {size} integers (one per value), got {arr.dtype} {arr.shape}",
+                         field="positions")
+    if size > 1 and np.any(np.diff(arr) <= 0):
+        raise InputError("positions must be strictly increasing (sort by origin, one value per origin)",
+                         field="positions")
+    return arr.astype(np.int64)
+
+
+def hac_variance(d, lags: int, positions=None) -> float:
+    """Newey-West (1987) variance of mean(d): (gamma_0 + 2 sum_{k=1}^{L} (1 - k/(L+1)) gamma_k) / T.
+
+    gamma_k = (1/T) sum of c_t c_u over the pairs whose POSITIONS differ by exactly k (c = d - mean(d)),
+    T = number of values. `positions` are the values' places on the stride grid (origin index in
+    strides); None means contiguous. Origins dropped for missing data are not treated as contiguous: a
+    pair that straddles a dropped origin is k + 1 (or more) strides apart and counts for that lag, and a
+    dropped origin takes part in no pair. This equals the estimator on the full grid with the dropped
+    values' centred value set to 0 (an "amplitude-modulated" series, Parzen 1963), i.e.
+    V = z' W z / T^2 with W_ij = max(0, 1 - |i - j|/(L + 1)). W is a Bartlett (triangle) Toeplitz
+    matrix, which is positive semi-definite (the triangle is the autocorrelation of a box), so V can
+    never turn negative, with or without gaps. Without gaps this is statsmodels' OLS HAC variance of a
+    constant with maxlags = L and use_correction = False (checked in tests/test_stats.py).
+    Known cost: with L = h - 1 the Bartlett weights under-weight the autocovariances of an MA(h - 1)
+    error, so V is biased low and the test rejects somewhat too often (about 11 % at a nominal 5 % for
+    h = 4, T = 300 in tests/test_stats.py, against over 25 % when the overlap is ignored).
+    """
+    d = _finite_vector(d, "d")
+    lags = _lag_count(lags)
+    where = _positions(positions, d.size)
     centred = d - d.mean()
-    gammas = [float(np.dot(centred[k:], centred[:size - k])) / size for k in range(h)]
-    return (gammas[0] + 2.0 * sum(gammas[1:])) / size
+    total = float(np.dot(centred, centred))
+    for k in range(1, lags + 1):
+        partner = np.searchsorted(where, where + k)
+        inside = partner < where.size
+        match = np.zeros(where.size, dtype=bool)
+        match[inside] = where[partner[inside]] == where[inside] + k
+        weight = 1.0 - k / (lags + 1.0)
+        total += 2.0 * weight * float(np.dot(centred[match], centred[partner[match]]))
+    return total / d.size ** 2
 
 
 def _t_p_value(statistic: float, df: int, alternative: str) -> float:
@@ -57,78 +116,109 @@ def _t_p_value(statistic: float, df: int, alternative: str) -> float:
     return float(sps.t.sf(statistic, df))
 
 
-def diebold_mariano(d, h: int, *, alternative: str = "two-sided") -> DMResult:
-    """Diebold-Mariano test (1995) with the Harvey-Leybourne-Newbold (1997) correction.
+def diebold_mariano(d, lags: int, *, positions=None, alternative: str = "two-sided") -> DMResult:
+    """Diebold-Mariano test (1995) with a Newey-West variance and the HLN (1997) small-sample factor.
 
-    d_t = loss1_t - loss2_t in time order (e.g. squared errors of two models on the same windows),
-    h = forecast horizon in steps (h - 1 autocovariance lags enter the variance).
-    DM = mean(d) / sqrt(V), V = (gamma_0 + 2 sum_{k=1}^{h-1} gamma_k) / T (divisor T);
-    DM* = DM * sqrt((T + 1 - 2h + h(h-1)/T) / T); p from Student t with T - 1 df.
-    alternative: "two-sided"; "less" = model 1 has the smaller expected loss; "greater" = model 2.
+    d_t = loss1_t - loss2_t in time order (e.g. absolute errors of two models on the same windows),
+    lags = L from `dm_lag_order` (overlap of the forecast windows, in strides), positions = place of
+    each value on the stride grid when origins are missing (see `hac_variance`).
+    DM = mean(d) / sqrt(V). DM* = DM * sqrt((T + 1 - 2h + h(h-1)/T) / T) with h = L + 1; p from
+    Student t with T - 1 df. alternative: "two-sided"; "less" = model 1 has the smaller expected loss;
+    "greater" = model 2.
 
-    Fallback: with h > 1 the truncated variance estimate V can be <= 0. The test is then re-run with
-    h = 1 (gamma_0 only, and the h = 1 correction factor) and `variance_fallback` is True; the same
-    choice as the R forecast package's dm.test [from memory].
-    Degenerate input: when d is constant there is no variance at all; d == 0 everywhere gives
-    statistic 0 and p 1 (no difference), a non-zero constant gives +-inf and p 0 (one model is
-    better at every step by the same amount).
+    Harvey, Leybourne & Newbold derived their factor for the rectangular-kernel variance with h - 1 lags.
+    With L = 0 (windows that do not overlap) both variances are gamma_0 / T, the factor applies exactly
+    and DM* is the one-sample t statistic. For L > 0 the Bartlett weights used here (so that V >= 0;
+    the rectangular kernel can go negative) make the factor an approximation; we keep it with the
+    t(T - 1) reference because it is below 1 for every h < T and so only makes the test more
+    conservative in small samples, as HLN intended.
+    Degenerate input: a constant d has no variance; d == 0 everywhere gives statistic 0 and p 1, a
+    non-zero constant gives +-inf and p 0 (one model better at every origin by the same amount).
     """
     d = _finite_vector(d, "d")
     if alternative not in ALTERNATIVES:
         raise InputError(f"alternative must be one of {ALTERNATIVES}, got {alternative!r}",
                          field="alternative")
     size = d.size
-    if size < 2:
-        raise InputError(f"the Diebold-Mariano test needs at least 2 loss differences, got {size}",
+    if size < 3:
+        raise InputError(f"the Diebold-Mariano test needs at least 3 loss differences, got {size}",
                          field="d")
-    if not isinstance(h, (int, np.integer)) or isinstance(h, bool) or not 1 <= h < size:
-        raise InputError(f"horizon h must be an integer in [1, {size - 1}], got {h!r}", field="h")
+    lags = _lag_count(lags)
+    if lags > size - 2:
+        raise InputError(f"lags must be at most T - 2 = {size - 2} (the HLN factor vanishes at h = T), "
+                         f"got {lags}", field="lags")
     df = size - 1
     mean = float(d.mean())
-    if np.ptp(d) == 0.0:
+    variance = hac_variance(d, lags, positions)
+    if np.ptp(d) == 0.0 or variance <= 0.0:  # V > 0 unless d is constant (up to rounding)
         if mean == 0.0:
-            return DMResult(0.0, 0.0, 1.0, df, False)
+            return DMResult(0.0, 0.0, 1.0, df, lags, size)
         infinite = float(np.copysign(np.inf, mean))
-        return DMResult(infinite, infinite, _t_p_value(infinite, df, alternative), df, False)
-    variance = _long_run_variance(d, h)
-    fallback = variance <= 0.0
-    if fallback:
-        h = 1
-        variance = _long_run_variance(d, 1)
+        return DMResult(infinite, infinite, _t_p_value(infinite, df, alternative), df, lags, size)
     statistic = mean / np.sqrt(variance)
-    correction = np.sqrt((size + 1 - 2 * h + h * (h - 1) / size) / size)
-    hln = float(statistic * correction)
-    return DMResult(float(statistic), hln, _t_p_value(hln, df, alternative), df, bool(fallback))
+    h = lags + 1
+    hln = float(statistic * np.sqrt((size + 1 - 2 * h + h * (h - 1) / size) / size))
+    return DMResult(float(statistic), hln, _t_p_value(hln, df, alternative), df, lags, size)
+
+
+def holm(p_values) -> np.ndarray:
+    """Holm (1979) step-down adjusted p-values; NaN stays NaN and is not counted in the family.
+
+    Sorted ascending p_(1) <= ... <= p_(m): adjusted p_(i) = max_{j <= i} min(1, (m - j + 1) p_(j)).
+    Rejecting where the adjusted p is below alpha controls the family-wise error rate at alpha for any
+    dependence between the tests (the DM tests of one grid share targets, so they are dependent).
+    """
+    arr = np.asarray(p_values, dtype=np.float64).ravel()
+    finite = np.flatnonzero(np.isfinite(arr))
+    if np.any((arr[finite] < 0) | (arr[finite] > 1)):
+        raise InputError("p-values must lie in [0, 1]", field="p_values")
+    adjusted = np.full(arr.shape, np.nan)
+    order = finite[np.argsort(arr[finite], kind="stable")]
+    m = order.size
+    scaled = np.minimum(1.0, (m - np.arange(m)) * arr[order])
+    adjusted[order] = np.maximum.accumulate(scaled)
+    return adjusted
 
 
 def friedman(errors) -> tuple[float, float, np.ndarray]:
-    """Friedman test over N problems (rows) x k methods (columns) of errors (Demsar 2006).
+    """Friedman test over N independent blocks (rows) x k methods (columns) of errors (Demsar 2006).
 
     Ranks within each row: the smallest error gets rank 1, ties get the average rank. Returns
-    (chi2_F, p, mean_ranks) with p from chi-squared with k - 1 df. chi2_F carries the usual tie
-    correction (divide by 1 - sum(t^3 - t) / (N k (k^2 - 1)), as scipy.stats.friedmanchisquare
-    does); without ties it is Demsar's 12N/(k(k+1)) (sum R_j^2 - k(k+1)^2/4). When every row is one
-    big tie there is nothing to test: chi2 0, p 1.
+    (chi2_F, p, mean_ranks); the statistic and its chi-squared p (k - 1 df) come from
+    scipy.stats.friedmanchisquare (with the usual tie correction), which needs k >= 3: with two methods
+    the Friedman test is a sign test, and the paired Diebold-Mariano tests say more. When every row is
+    one big tie there is nothing to test: chi2 0, p 1.
     """
     table = np.asarray(errors, dtype=np.float64)
-    if table.ndim != 2 or table.shape[0] < 2 or table.shape[1] < 2:
-        raise InputError(f"Friedman test needs an (N >= 2, k >= 2) error table, got shape "
+    if table.ndim != 2 or table.shape[0] < 2 or table.shape[1] < 3:
+        raise InputError(f"Friedman test needs an (N >= 2, k >= 3) error table, got shape "
                          f"{table.shape}", field="errors")
     bad_rows = np.flatnonzero(~np.isfinite(table).all(axis=1))
     if bad_rows.size:
         raise InputError(f"{bad_rows.size} rows hold NaN/inf (first: row {bad_rows[0]}); drop "
-                         f"incomplete problems first so the count is reported", field="errors")
-    n_rows, k = table.shape
-    ranks = np.apply_along_axis(sps.rankdata, 1, table)
-    mean_ranks = ranks.mean(axis=0)
-    chi2 = 12.0 * n_rows / (k * (k + 1)) * (np.sum(mean_ranks ** 2) - k * (k + 1) ** 2 / 4.0)
-    tie_sizes = [np.unique(row, return_counts=True)[1] for row in table]
-    tie_term = sum(float(np.sum(sizes ** 3 - sizes)) for sizes in tie_sizes)
-    denominator = 1.0 - tie_term / (n_rows * k * (k * k - 1))
-    if denominator <= 0.0:
+                         f"incomplete blocks first so the count is reported", field="errors")
+    mean_ranks = np.apply_along_axis(sps.rankdata, 1, table).mean(axis=0)
+    if np.all(np.ptp(table, axis=1) == 0.0):
         return 0.0, 1.0, mean_ranks
-    chi2 = float(chi2 / denominator)
-    return chi2, float(sps.chi2.sf(chi2, k - 1)), mean_ranks
+    result = sps.friedmanchisquare(*table.T)
+    return float(result.statistic), float(result.pvalue), mean_ranks
+
+
+def iman_davenport(chi2: float, n: int, k: int) -> tuple[float, float, int, int]:
+    """Iman-Davenport F from Friedman's chi2 (Demsar 2006, the equation after Friedman's statistic).
+
+    F_F = (N - 1) chi2_F / (N (k - 1) - chi2_F), F-distributed with (k - 1, (k - 1)(N - 1)) df; less
+    conservative than chi2_F. Returns (F_F, p, df1, df2). chi2_F reaches N (k - 1) when every block
+    ranks the methods the same way: F_F is then infinite and p 0.
+    """
+    if not isinstance(n, (int, np.integer)) or n < 2 or not isinstance(k, (int, np.integer)) or k < 2:
+        raise InputError(f"needs N >= 2 blocks and k >= 2 methods, got N={n!r}, k={k!r}", field="n")
+    df1, df2 = k - 1, (k - 1) * (n - 1)
+    denominator = n * (k - 1) - chi2
+    if denominator <= 0.0:
+        return float("inf"), 0.0, df1, df2
+    statistic = (n - 1) * chi2 / denominator
+    return float(statistic), float(sps.f.sf(statistic, df1, df2)), df1, df2
 
 
 def nemenyi_q(k: int, alpha: float = 0.05) -> float:
@@ -143,7 +233,7 @@ def nemenyi_q(k: int, alpha: float = 0.05) -> float:
 def nemenyi_cd(k: int, n: int, alpha: float = 0.05) -> float:
     """Nemenyi critical difference of mean ranks, CD = q_alpha sqrt(k(k+1)/(6n)) (Demsar 2006)."""
     if not isinstance(n, (int, np.integer)) or n < 1:
-        raise InputError(f"the number of problems n must be a positive integer, got {n!r}",
+        raise InputError(f"the number of blocks n must be a positive integer, got {n!r}",
                          field="n")
     return nemenyi_q(k, alpha) * float(np.sqrt(k * (k + 1) / (6.0 * n)))
 
@@ -162,51 +252,35 @@ def rank_within(df: pd.DataFrame, group_cols: list[str], value_col: str) -> pd.S
                                                                       ascending=True)
 
 
-def bootstrap_ci(values, n_boot: int = 2000, level: float = 0.95,
-                 seed: int = 0) -> tuple[float, float]:
-    """Percentile bootstrap interval of the mean, from a seeded numpy Generator (no global RNG).
-
-    One value has no spread to resample: both bounds equal that value (a degenerate interval, not a
-    claim of certainty; report n next to it). Resampling is done in chunks so memory stays bounded.
-    """
-    data = _finite_vector(values, "values")
-    if data.size == 0:
-        raise InputError("cannot bootstrap an empty sample", field="values")
-    if not 0.0 < level < 1.0:
-        raise InputError(f"level must lie in (0, 1), got {level}", field="level")
-    if not isinstance(n_boot, (int, np.integer)) or n_boot < 1:
-        raise InputError(f"n_boot must be a positive integer, got {n_boot!r}", field="n_boot")
-    if data.size == 1:
-        return float(data[0]), float(data[0])
-    rng = np.random.default_rng(seed)
-    chunk = max(1, 2_000_000 // data.size)  # about 16 MB of indices per chunk
-    means = np.empty(n_boot)
-    for start in range(0, n_boot, chunk):
-        stop = min(n_boot, start + chunk)
-        means[start:stop] = data[rng.integers(0, data.size, size=(stop - start, data.size))].mean(1)
-    tail = (1.0 - level) / 2.0
-    low, high = np.quantile(means, [tail, 1.0 - tail])
-    return float(low), float(high)
+TIE_TOLERANCE = 0.01  # a penalty within 1 % of its ERM twin's mean neither wins nor loses
 
 
-def win_tie_loss(a, b, rel_tol: float = 0.01) -> dict[str, int]:
+def win_tie_loss(a, b, rel_tol: float = TIE_TOLERANCE) -> dict[str, int]:
     """Tally paired errors of method a against method b (smaller error wins).
 
     A pair is a tie when |a - b| <= rel_tol * max(|a|, |b|) (both 0 is a tie). Pairs with a NaN on
     either side are not judged but counted under "missing", so nothing disappears from the tally.
     Returns {"wins", "ties", "losses", "missing"} from a's point of view.
     """
+    return {key: int(np.sum(outcome_codes(a, b, rel_tol) == code))
+            for key, code in (("wins", -1), ("ties", 0), ("losses", 1), ("missing", 2))}
+
+
+def outcome_codes(a, b, rel_tol: float = TIE_TOLERANCE) -> np.ndarray:
+    """Per pair: -1 a wins (smaller error), 0 tie (see `win_tie_loss`), 1 a loses, 2 not judged (NaN)."""
     first = np.asarray(a, dtype=np.float64).ravel()
     second = np.asarray(b, dtype=np.float64).ravel()
     if first.shape != second.shape:
         raise InputError(f"a has {first.size} values but b has {second.size}", field="b")
     if rel_tol < 0:
         raise InputError(f"rel_tol must be >= 0, got {rel_tol}", field="rel_tol")
+    codes = np.full(first.shape, 2, dtype=np.int64)
     judged = np.isfinite(first) & np.isfinite(second)
-    first, second = first[judged], second[judged]
     tie = np.abs(first - second) <= rel_tol * np.maximum(np.abs(first), np.abs(second))
-    return {"wins": int(np.sum(~tie & (first < second))), "ties": int(np.sum(tie)),
-            "losses": int(np.sum(~tie & (first > second))), "missing": int(np.sum(~judged))}
+    codes[judged & tie] = 0
+    codes[judged & ~tie & (first < second)] = -1
+    codes[judged & ~tie & (first > second)] = 1
+    return codes
 
 
 def relative_change(new, base):

@@ -26,6 +26,9 @@ TARGET_MAE = {
     SPLIT_IDS[2]: {("lin", "erm"): [1.0, 1.0], ("lin", "irm"): [0.5, 0.7], ("persistence", "na"): [3.0]},
 }
 HORIZON = 3
+PARAMS = {"metrics.hourly_exceedance_threshold": "35.0", "forecast.target": "pm25", "forecast.stride_hours": "1",
+          "forecast.horizon_hours": str(HORIZON)}
+NAIVE_SCALE = {"s1": 2.0, "s2": 4.0}  # per-station MASE scales written into the predictions artifact
 RULES = ("source-holdout", "target-peek")
 CITIES = ("orra", "quist", "vell")
 
@@ -51,7 +54,8 @@ def predictions(mae: float, seed: int) -> pd.DataFrame:
     frames = []
     for rule, shift in (("source-holdout", 0.0), ("target-peek", -0.1)):
         for station in ("s1", "s2"):
-            frame = pd.DataFrame({"station_id": station, "origin": origins, "selection": rule})
+            frame = pd.DataFrame({"station_id": station, "origin": origins, "selection": rule,
+                                  "naive_scale": NAIVE_SCALE[station]})
             for h in range(1, HORIZON + 1):
                 y = rng.normal(20, 5, len(origins))
                 frame[f"y_h{h:02d}"] = y.astype("float32")
@@ -83,7 +87,7 @@ def build_grid_store(root: Path) -> tuple[list[Path], str]:
                         "sources": "+".join(sources), "target": target, "code_digest": "c0ffee",
                         "git.commit": "0123456789abcdef", "selection_label": "source-holdout"}
                 run_id = tracking.log_run(client, experiment_id, run_name=f"{split_id}/{model}/{penalty}/{seed}",
-                                          params={"metrics.exceedance_threshold": "35.0"}, metrics=metrics,
+                                          params=PARAMS, metrics=metrics,
                                           curves={}, tags=tags,
                                           artifacts={"predictions": work / "target_predictions.parquet"})
                 record = {"run_id": run_id, "experiment": "gridtest", "experiment_id": experiment_id,
@@ -126,7 +130,7 @@ def shift_table() -> pd.DataFrame:
                          "variables": ["pm25,temp_c"] * 3})
 
 
-def build_report(root: Path, report_cfg: dict, n_boot: int) -> tuple[str, Path]:
+def build_report(root: Path, report_cfg: dict, n_boot: int, ground_truth: dict | None = None) -> tuple[str, Path]:
     """The whole fixture (store, grid, QC, splits, shift) rendered to root/results/report.html."""
     from pipeline.aggregate import aggregate
     from pipeline.report.html import render_report
@@ -136,5 +140,6 @@ def build_report(root: Path, report_cfg: dict, n_boot: int) -> tuple[str, Path]:
     qc_paths, split_paths = write_side_inputs(root)
     shift_table().to_csv(root / "results" / "shift.csv", index=False)
     out = root / "results" / "report.html"
-    page = render_report(root / "results", out, report_cfg, qc_paths, split_paths, root / "results" / "shift.csv")
+    page = render_report(root / "results", out, report_cfg, qc_paths, split_paths, root / "results" / "shift.csv",
+                         ground_truth=ground_truth)
     return page, out

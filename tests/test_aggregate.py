@@ -6,6 +6,7 @@ import numpy as np
 import pandas as pd
 import pytest
 from scipy import stats as sps
+from statsmodels.stats.multitest import multipletests
 
 from grid_fixture import SPLIT_IDS, build_grid_store
 from pipeline import grid_stats, tracking
@@ -34,7 +35,7 @@ def test_one_row_per_run_with_metrics_and_tags(grid):
     runs = grid["runs"]
     assert len(runs) == 15 and runs["run_id"].is_unique
     assert {"source-holdout.target_mae", "target-peek.target_mae_h03", "tag.code_digest", "param.metrics."
-            "exceedance_threshold"} <= set(runs.columns)
+            "hourly_exceedance_threshold", "param.forecast.target"} <= set(runs.columns)
     assert grid["meta"]["rules"] == ["source-holdout", "target-peek"]
 
 
@@ -42,7 +43,9 @@ def test_means_spread_and_ranks_have_the_known_answers(grid):
     summary = grid["summary"]
     erm = cell(summary, SPLIT_IDS[0], "lin+erm")
     assert erm["mean"] == pytest.approx(1.1) and erm["std"] == pytest.approx(np.std([1.0, 1.2], ddof=1))
-    assert erm["n_seeds"] == 2 and erm["ci_low"] >= 1.0 - 1e-12 and erm["ci_high"] <= 1.2 + 1e-12
+    # two seeds: their min-max, called the seed range, never a confidence interval
+    assert erm["n_seeds"] == 2 and (erm["seed_low"], erm["seed_high"], erm["seed_interval"]) == (1.0, 1.2, "seed range")
+    assert erm["metric_label"] == "MAE of pm25, ug/m3"
     assert cell(summary, SPLIT_IDS[0], "persistence+n/a")["n_seeds"] == 1
     # ranks inside each split, lower MAE = rank 1
     assert [cell(summary, SPLIT_IDS[0], c)["rank"] for c in ("lin+irm", "lin+erm", "persistence+n/a")] == [1, 2, 3]
@@ -63,29 +66,63 @@ def test_penalty_against_erm_twin(grid):
     assert np.isnan(cell(summary, SPLIT_IDS[0], "lin+erm")["vs_erm_change"])
 
 
+def artifact_errors(runs, split_id, model, penalty, rule="source-holdout"):
+    """Per-window absolute errors of every seed of one cell, read straight from the predictions artifacts."""
+    frames = []
+    for row in runs[(runs.split_id == split_id) & (runs.model == model) & (runs.penalty == penalty)].itertuples():
+        frame = pd.read_parquet(f"{row.artifact_uri[len('file://'):]}/predictions/target_predictions.parquet")
+        frames.append(frame[frame.selection == rule])
+    return frames
+
+
 def test_diebold_mariano_recomputed_from_the_artifacts(grid):
     runs = grid["runs"]
 
     def losses(model, penalty):
         frames = []
-        for row in runs[(runs.split_id == SPLIT_IDS[2]) & (runs.model == model) & (runs.penalty == penalty)].itertuples():
-            frame = pd.read_parquet(f"{row.artifact_uri[len('file://'):]}/predictions/target_predictions.parquet")
-            frame = frame[frame.selection == "source-holdout"]
+        for frame in artifact_errors(runs, SPLIT_IDS[2], model, penalty):
             errors = np.mean([np.abs(frame[f"y_h0{h}"] - frame[f"p_h0{h}"]) for h in (1, 2, 3)], axis=0)
             frames.append(pd.Series(errors, index=[frame.station_id, frame.origin]))
         return pd.concat(frames, axis=1).mean(axis=1)
 
     d = (losses("lin", "irm") - losses("lin", "erm")).groupby(level=1).mean().sort_index()
-    expected = diebold_mariano(d.to_numpy(), 3)
+    # hourly origins, horizon 3 h: windows up to 2 origins apart overlap, so 2 Bartlett lags
+    expected = diebold_mariano(d.to_numpy(), 2)
     dm = pd.read_csv(grid["root"] / "results" / "grid_dm.csv")
-    row = dm[(dm.split_id == SPLIT_IDS[2]) & (dm.selection_rule == "source-holdout")].iloc[0]
-    assert row["dm_n"] == 40 and row["dm_h"] == 3
+    row = dm[(dm.split_id == SPLIT_IDS[2]) & (dm.selection_rule == "source-holdout") & (dm.dm_loss == "absolute")].iloc[0]
+    assert row["dm_n"] == 40 and row["dm_lags"] == 2
     assert row["dm_hln"] == pytest.approx(expected.hln_statistic) and row["dm_p"] == pytest.approx(expected.p_value)
     assert row["dm_hln"] < 0  # irm's errors are built smaller on this split
     assert cell(grid["summary"], SPLIT_IDS[2], "lin+irm")["dm_p"] == pytest.approx(expected.p_value)
 
 
-def test_friedman_and_nemenyi_over_splits(grid):
+def test_holm_family_is_every_penalised_comparison_of_a_rule(grid):
+    # statsmodels.stats.multitest.multipletests(method="holm") over the 3 lin+irm vs lin+erm tests of the rule
+    dm = pd.read_csv(grid["root"] / "results" / "grid_dm.csv")
+    family = dm[(dm.selection_rule == "source-holdout") & (dm.dm_loss == "absolute")]
+    assert len(family) == 3
+    np.testing.assert_allclose(family["dm_p_holm"], multipletests(family["dm_p"], method="holm")[1])
+    summary = grid["summary"]
+    irm = summary[(summary.combo == "lin+irm") & (summary.selection_rule == "source-holdout")]
+    assert set(irm["dm_loss"]) == {"absolute"}  # the loss that matches the grid metric (mae)
+    assert (irm["dm_p_holm"] >= irm["dm_p"]).all()
+
+
+def test_cells_carry_a_block_bootstrap_interval_over_test_origins(grid):
+    intervals = pd.read_csv(grid["root"] / "results" / "grid_intervals.csv")
+    assert set(intervals["metric"]) == {"mae", "mse", "rmse", "mase"}
+    erm = intervals[(intervals.split_id == SPLIT_IDS[0]) & (intervals.model == "lin") & (intervals.penalty == "erm")
+                    & (intervals.selection_rule == "source-holdout") & (intervals.metric == "mae")].iloc[0]
+    # the point is the seed-mean MAE of the artifacts' windows; blocks >= ceil(3 h / 1 h) origins
+    seeds = [np.mean(np.abs(np.concatenate([f[f"y_h0{h}"] - f[f"p_h0{h}"] for h in (1, 2, 3)])))
+             for f in artifact_errors(grid["runs"], SPLIT_IDS[0], "lin", "erm")]
+    assert erm["point"] == pytest.approx(np.mean(seeds), rel=1e-6)
+    assert erm["ci_low"] < erm["point"] < erm["ci_high"] and erm["ci_block"] >= 3 and erm["ci_origins"] == 40
+    row = cell(grid["summary"], SPLIT_IDS[0], "lin+erm")
+    assert (row["ci_low"], row["ci_high"]) == pytest.approx((erm["ci_low"], erm["ci_high"]))
+
+
+def test_friedman_iman_davenport_and_nemenyi_over_target_cities(grid):
     result = grid["meta"]["friedman"]["source-holdout"]
     table = pd.DataFrame({split: {combo: mean for combo, mean in grid["summary"].query(
         "split_id == @split and selection_rule == 'source-holdout'")[["combo", "mean"]].itertuples(index=False)}
@@ -95,11 +132,14 @@ def test_friedman_and_nemenyi_over_splits(grid):
     assert result["p_value"] == pytest.approx(reference.pvalue)
     # Demsar (2006) Table 5: q_0.05 = 2.343 for k = 3; CD = q sqrt(k(k+1)/(6N)), N = 3
     assert result["cd"] == pytest.approx(2.343 * np.sqrt(3 * 4 / 18), abs=2e-3)
-    assert "not corrected for multiple comparisons" in result["caveat"].lower()
+    # Demsar (2006) Iman-Davenport F_F = (N-1) chi2 / (N(k-1) - chi2) = 2 (2/3) / (6 - 2/3) = 0.25, df (2, 4)
+    assert result["f_stat"] == pytest.approx(0.25) and result["f_df"] == [2, 4]
+    assert result["f_p_value"] == pytest.approx(sps.f.sf(0.25, 2, 4)) and not result["rejects"]
+    assert result["n_blocks"] == 3 and "Holm" in result["caveat"]
 
 
 def test_higher_is_better_metric_ranks_the_largest_first(grid):
-    summary = grid_stats.summarise(grid["runs"], "csi", "source-holdout", n_boot=50)
+    summary = grid_stats.summarise(grid["runs"], "csi", "source-holdout")
     best = summary[summary.split_id == SPLIT_IDS[0]].sort_values("rank").iloc[0]
     assert best["combo"] == "lin+irm" and best["direction"] == "higher is better"
     assert summary.loc[summary["combo"] == "lin+irm", "vs_erm_wins"].iloc[0] == 2
@@ -148,3 +188,18 @@ def test_superseded_runs_are_skipped_and_counted(grid):
         client.delete_tag(run_id, tracking.SUPERSEDED_TAG)
     assert len(runs) == 14 and run_id not in set(runs["run_id"])
     assert skipped == {"superseded": [str(grid["records"][0])]}
+
+
+def test_splits_that_share_a_target_are_one_friedman_block():
+    # two splits with target vell are averaged into one block: 2 blocks, not 3
+    rows = []
+    for split_id, target, means in (("a", "vell", (1.0, 2.0, 3.0)), ("b", "vell", (3.0, 2.0, 1.0)),
+                                    ("c", "orra", (1.0, 2.0, 3.0))):
+        rows += [{"split_id": split_id, "target": target, "combo": combo, "mean": mean, "metric": "target_mae",
+                  "selection_rule": "source-holdout"} for combo, mean in zip(("x", "y", "z"), means)]
+    result = grid_stats.friedman_over_targets(pd.DataFrame(rows))
+    assert result["blocks"] == ["orra", "vell"] and result["n_splits"] == 3
+    # vell's block is (2, 2, 2): all tied; orra ranks x < y < z; scipy.stats.friedmanchisquare as reference
+    reference = sps.friedmanchisquare([2.0, 1.0], [2.0, 2.0], [2.0, 3.0])
+    assert result["chi2"] == pytest.approx(reference.statistic)
+    assert result["mean_ranks"] == pytest.approx({"x": 1.5, "y": 2.0, "z": 2.5})

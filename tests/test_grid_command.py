@@ -36,6 +36,8 @@ def test_table_fits_100_columns_and_marks_the_best_cell_with_a_symbol(results):
     assert len(best) == 3  # one per split
     assert any("persistence" in line for line in best) and sum("irm" in line for line in best) == 2
     assert "-9.1%" in text and "2/0/1" in text  # lin+irm vs ERM on the first split; its W/T/L
+    assert "negative = the penalty lowered the metric" in text and "MAE of pm25, ug/m3" in text
+    assert "seed range (min-max) below 3 seeds" in text and "Holm" in text
 
 
 def test_csv_and_json_carry_the_same_rows(results):
@@ -60,7 +62,7 @@ def test_filters_metric_and_selection(results):
     table = pd.read_csv(io.StringIO(text), keep_default_na=False)  # "n/a" is a penalty label here
     assert set(table["split_id"]) == {SPLIT_IDS[0]} and set(table["penalty"]) == {"irm", "n/a"}
     _, text = grid(results, "--selection", "target-peek", "--metric", "rmse")
-    assert "upper bound" in text.splitlines()[0] and "target_rmse" in text.splitlines()[0]
+    assert "upper bound" in text.splitlines()[0] and "RMSE of pm25, ug/m3" in " ".join(text.splitlines()[:2])
     _, text = grid(results, "--format", "json", "--metric", "csi")
     assert json.loads(text)[0]["rank"] == 1.0 and json.loads(text)[0]["mean"] == pytest.approx((1 / 1.9 + 1 / 2.1) / 2)
 
@@ -77,9 +79,21 @@ def test_top_of_grid_lists_combinations_by_mean_rank(results):
     text = top_of_grid(results, cfg)
     lines = text.splitlines()
     assert lines[2].split()[0] == "lin+irm" and lines[3].split()[0] == "lin+erm" and "persistence" not in lines[4]
-    assert "Friedman p = " in text
+    # 3 target cities, Iman-Davenport p 0.79 (tests/test_aggregate.py): no critical difference is claimed
+    assert "Friedman over 3 target cities: Iman-Davenport p = 0.79, ranks not distinguishable" in text
 
 
 def test_grid_takes_the_same_overrides_as_every_other_command(results):
     status, text = grid(results, "experiment=demo", "--format", "csv")
     assert status == 0 and "run_ids" in text.splitlines()[0]
+
+
+def test_csv_carries_holm_p_and_origin_intervals_read_from_the_aggregation(results):
+    _, text = grid(results, "--format", "csv")
+    table = pd.read_csv(io.StringIO(text))
+    dm = pd.read_csv(results / "grid_dm.csv")
+    irm = table[table["penalty"] == "irm"].set_index("split_id")
+    expected = dm[(dm.dm_loss == "absolute") & (dm.selection_rule == "source-holdout")].set_index("split_id")
+    assert irm["dm_p_holm"].to_dict() == pytest.approx(expected["dm_p_holm"].to_dict())
+    assert table["ci_low"].notna().all() and (table["ci_low"] <= table["ci_high"]).all()
+    assert set(table["seed_interval"]) == {"seed range"}  # 1 or 2 seeds per cell

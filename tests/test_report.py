@@ -1,6 +1,8 @@
 """The HTML report on the hand-made grid: self-contained, cautious, peek always labelled."""
 
 import base64
+import html
+import json
 import re
 import struct
 
@@ -11,16 +13,26 @@ import pytest
 from grid_fixture import build_report
 from pipeline import selection
 from pipeline.commands.demo import CAUTION
+from pipeline.commands import grid as grid_command
 from pipeline.report import figures
+from pipeline.report.html import ranks_section
+from pipeline.report.verdict_html import verdict_section
 
 PEEK_LABEL = selection.label("target-peek")
+
+
+# A declared ground truth for the hand-made cities (the form of config/data/demo.yaml): the link breaks in
+# quist and vell; orra+quist -> vell and orra+vell -> quist have disagreeing sources, so the penalty can help
+# there; orra keeps the link, so it cannot help on quist+vell -> orra.
+GROUND_TRUTH = {"about": "a made-up auxiliary link", "link": {"orra": "holds", "quist": "noise", "vell": "reversed"},
+                "holds": ["holds"]}
 
 
 @pytest.fixture(scope="module")
 def report(tmp_path_factory):
     root = tmp_path_factory.mktemp("report")
     page, out = build_report(root, {"selection": "source-holdout", "figure_dpi": 60, "top_rows": 5,
-                                    "title": "grid test"}, n_boot=200)
+                                    "title": "grid test"}, n_boot=200, ground_truth=GROUND_TRUTH)
     return {"root": root, "page": page, "path": out}
 
 
@@ -49,7 +61,7 @@ def test_every_embedded_image_is_a_png_of_nonzero_size(report):
 
 
 def test_sections_are_all_there(report):
-    for anchor in ("setup", "grid", "ranks", "horizon", "shift", "provenance"):
+    for anchor in ("verdict", "setup", "grid", "ranks", "horizon", "shift", "provenance"):
         assert f'id="{anchor}"' in report["page"]
     assert "Friedman" in report["page"] and "critical difference" in report["page"]
 
@@ -85,7 +97,7 @@ def test_peek_figure_titles_say_upper_bound(report):
     summary = pd.read_csv(report["root"] / "results" / "grid.csv")
     peek = summary[summary.selection_rule == "target-peek"]
     assert "upper bound" in _all_titles(figures.grid_heatmap(peek, "target-peek"))
-    assert "upper bound" in _all_titles(figures.horizon_curves(runs, "target-peek"))
+    assert "upper bound" in _all_titles(figures.horizon_curves(runs, "target-peek", "pm25"))
     assert "upper bound" in _all_titles(figures.exceedance_bars(runs, "target-peek"))
     assert "upper bound" in _all_titles(figures.selection_comparison(summary))
     assert "upper bound" not in _all_titles(figures.grid_heatmap(summary[summary.selection_rule == "source-holdout"],
@@ -95,3 +107,65 @@ def test_peek_figure_titles_say_upper_bound(report):
 def test_qc_summary_shows_rows_read_kept_and_drop_reasons(report):
     for shown in ("<td>1000</td>", "<td>990</td>", "exact_duplicate 10"):
         assert shown in report["page"]
+
+
+def _text(page: str) -> str:
+    return html.unescape(re.sub(r"<[^>]+>", " ", re.sub(r"base64,[^\"]+", "", page)))
+
+
+def test_the_report_opens_with_its_verdict(report):
+    page = report["page"]
+    sections = re.findall(r'<section id="([a-z]+)"', page)
+    assert sections[0] == "verdict"
+    verdict = _text(page.split('<section id="verdict">')[1].split("</section>")[0])
+    # lin+irm vs lin+erm over the 3 splits: means 1.0 vs 1.1, 2.3 vs 2.0, 0.6 vs 1.0 (tests/grid_fixture.py);
+    # the fixture's artifacts make all three DM tests significant after Holm, in the direction of the means
+    assert ("linear + irm (3 splits): wins 2, ties 0, losses 1; median change -9.1 %; significant after Holm: "
+            "wins 2, losses 1.") in verdict
+    assert "within 1% of its ERM twin" in verdict and "alpha = 0.05" in verdict
+    # against the declared ground truth: can help on 2 splits (both won), cannot help on 1 (lost)
+    assert "linear + irm (where it can help, 2 splits): wins 2" in verdict and "So it helped." in verdict
+    assert "linear + irm (where it cannot help, 1 splits): wins 0, ties 0, losses 1" in verdict
+
+
+def test_the_ground_truth_part_is_omitted_when_the_scenario_declares_none(report):
+    summary = pd.read_csv(report["root"] / "results" / "grid.csv")
+    summary = summary[summary.selection_rule == "source-holdout"]
+    meta = {"metric": "mae", "alpha": 0.05}
+    assert "ground truth" not in verdict_section(summary, meta, "source-holdout", None)
+    assert "ground truth" in verdict_section(summary, meta, "source-holdout", GROUND_TRUTH)
+
+
+def test_change_vs_erm_has_one_sign_in_heatmap_table_and_grid_command(report):
+    # lin+irm on the first split: MAE 1.0 against ERM's 1.1 -> (1.0 - 1.1) / 1.1 = -9.1 % (negative = lower)
+    summary = pd.read_csv(report["root"] / "results" / "grid.csv")
+    heatmap = figures.grid_heatmap(summary[summary.selection_rule == "source-holdout"], "source-holdout")
+    annotations = [text.get_text() for text in heatmap.axes[0].texts]
+    plt.close(heatmap)
+    assert any(a.endswith("\n-9.1%") for a in annotations) and not any("+9.1%" in a for a in annotations)
+    rows = re.findall(r"<tr>(.*?)</tr>", report["page"].split('id="grid"')[1].split("</section>")[0])
+    irm_row = next(row for row in rows if "vell" in row and "lin+irm" in row)
+    assert "<td>-9.1%</td>" in irm_row
+    table = grid_command.format_table(grid_command.grid_table(report["root"] / "results", "mae", "source-holdout"))
+    assert any("lin" in line and "irm" in line and " -9.1% " in line for line in table.splitlines())
+    assert "negative = the penalty lowered the metric" in _text(report["page"])
+
+
+def test_every_metric_label_names_the_variable_and_unit_and_the_threshold_is_honest(report):
+    text = _text(report["page"])
+    assert "MAE of pm25, ug/m3" in text
+    assert "research scoring threshold: hourly pm25 above 35 ug/m3, applied to each hourly value" in text
+    assert "24-h mean is formed" in text
+    # "95% CI" only ever for the origin bootstrap or a t interval over 3+ seeds; 2 seeds give a "seed range"
+    assert all(text[m.end():m.end() + 5] == " over" for m in re.finditer("95% CI", text))
+    assert "seed range" in text
+
+
+def test_no_critical_difference_chart_unless_the_omnibus_test_rejects(report):
+    # the fixture's Iman-Davenport p is 0.79 (tests/test_aggregate.py): no chart, and the page says why
+    page = report["page"]
+    assert "does not reject equal mean ranks" in page and "critical difference (alpha" not in page
+    meta = json.loads((report["root"] / "results" / "grid_meta.json").read_text())
+    summary = pd.read_csv(report["root"] / "results" / "grid.csv")
+    meta["friedman"]["source-holdout"]["rejects"] = True
+    assert "critical difference (alpha" in ranks_section(summary, meta, "source-holdout", 40)

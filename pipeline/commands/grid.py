@@ -1,15 +1,17 @@
 """`shiftgrid grid [OVERRIDES...] [--target T] [--model M] [--penalty P] [--metric NAME] [--selection RULE]
 [--format F]`.
 
-Reads results/grid.parquet (one row per run; no MLflow needed) and results/grid_dm.csv (Diebold-Mariano
-tests, when present); prints the ranked grid as a table readable at 100 columns (best cell per split
+Reads results/grid.parquet (one row per run; no MLflow needed), results/grid_dm.csv (Diebold-Mariano
+tests with Holm-adjusted p) and results/grid_intervals.csv (block-bootstrap intervals over test origins),
+when present; prints the ranked grid as a table readable at 100 columns (best cell per split
 marked with `*`, not colour), CSV, Markdown or JSON. Config keys obeyed: results_dir, report.metric,
-report.selection, report.bootstrap_samples, report.top_rows (for `top_of_grid`).
+report.selection, report.top_rows (for `top_of_grid`).
 """
 
 from __future__ import annotations
 
 import json
+import textwrap
 from pathlib import Path
 
 import numpy as np
@@ -17,12 +19,14 @@ import pandas as pd
 
 from pipeline import grid_stats, selection
 from pipeline.errors import InputError
+from pipeline.resampling import SEED_RANGE
 
 BEST = "*"
 FORMATS = ("table", "csv", "markdown", "json")
-COLUMNS = ["split", "best", "model", "penalty", "mean", "std", "n_seeds", "ci_low", "ci_high", "rank",
-           "mean_rank", "vs_erm_change", "vs_erm_wins", "vs_erm_ties", "vs_erm_losses", "dm_p", "dm_fallback",
-           "run_ids"]
+COLUMNS = ["split", "best", "model", "penalty", "metric_label", "mean", "std", "n_seeds", "ci_low", "ci_high",
+           "ci_block", "seed_low", "seed_high", "seed_interval", "rank", "mean_rank", "vs_erm_change", "vs_erm_wins",
+           "vs_erm_ties", "vs_erm_losses", "dm_loss", "dm_p", "dm_p_holm", "dm_mean_diff", "run_ids"]
+WIDTH = 100
 
 
 def _csv_list(text: str | None) -> list[str] | None:
@@ -48,7 +52,7 @@ def load_runs(results_dir: Path) -> pd.DataFrame:
     return pd.read_parquet(path)
 
 
-def grid_table(results_dir: Path, metric: str, rule: str, n_boot: int = 2000, targets=None, models=None,
+def grid_table(results_dir: Path, metric: str, rule: str, targets=None, models=None,
                penalties=None) -> pd.DataFrame:
     """The summary (pipeline.grid_stats.summarise) of the filtered runs, DM columns joined in."""
     runs = load_runs(results_dir)
@@ -60,15 +64,12 @@ def grid_table(results_dir: Path, metric: str, rule: str, n_boot: int = 2000, ta
                 raise InputError(f"no run has {column} {unknown}; known: {', '.join(sorted(runs[column].unique()))}",
                                  field=f"--{column}")
             runs = runs[runs[column].isin(wanted)]
-    summary = grid_stats.summarise(runs, metric, rule, n_boot=n_boot)
-    dm_path = Path(results_dir) / "grid_dm.csv"
-    if dm_path.exists():
-        dm = pd.read_csv(dm_path)
-        summary = summary.merge(dm[dm["selection_rule"] == rule], how="left",
-                                on=["split_id", "model", "penalty", "selection_rule"])
-    for column in ("dm_p", "dm_fallback"):
-        if column not in summary.columns:
-            summary[column] = np.nan
+    summary = grid_stats.summarise(runs, metric, rule)
+    # Tests and intervals were computed by the aggregation over the WHOLE grid (the Holm family is every
+    # comparison of the grid, whatever this view filters), so they are read, never recomputed here.
+    tables = {name: pd.read_csv(Path(results_dir) / f"grid_{name}.csv") if (Path(results_dir) / f"grid_{name}.csv").exists()
+              else None for name in ("dm", "intervals")}
+    summary = grid_stats.attach_tests(summary, tables["dm"], tables["intervals"])
     summary["best"] = np.where(summary["best_in_split"], BEST, "")
     summary["penalty"] = summary["penalty"].map(grid_stats.penalty_display)
     return summary.sort_values(["split", "rank", "model"]).reset_index(drop=True)
@@ -78,26 +79,39 @@ def _num(value, spec: str = ".3g") -> str:
     return format(value, spec) if isinstance(value, (int, float, np.number)) and np.isfinite(value) else "-"
 
 
+def _fit(text: str) -> list[str]:
+    """A header sentence wrapped to the table width."""
+    return textwrap.wrap(text, WIDTH, subsequent_indent="  ") or [""]
+
+
+def _seed_text(row) -> str:
+    if not np.isfinite(row.seed_low):
+        return "-"
+    return f"[{_num(row.seed_low)}, {_num(row.seed_high)}]" + ("" if row.seed_interval == SEED_RANGE else "t")
+
+
 def format_table(summary: pd.DataFrame) -> str:
-    """Fixed-width text, one block per split, lines under 100 characters."""
+    """Fixed-width text, one block per split, lines of at most 100 characters."""
     metric, rule = summary["metric"].iloc[0], summary["selection_rule"].iloc[0]
-    lines = [f"metric: {metric} ({grid_stats.direction_text(metric)}); selection: {selection.label(rule)}",
-             f"{BEST} = best in split; n = seeds; mrank = mean rank over splits",
-             "vs ERM = change of the mean against the ERM twin; W/T/L over splits;",
-             "DM p = Diebold-Mariano test with HLN correction against the ERM twin, + = h=1 fallback"]
-    header = f"  {'':1} {'model':<14} {'penalty':<8} {'mean':>8} {'std':>7} {'n':>2} {'95% CI':>17} " \
-             f"{'rank':>4} {'mrank':>5} {'vs ERM':>7} {'W/T/L':>6} {'DM p':>8}"
+    lines = _fit(f"selection: {selection.label(rule)}; metric: {summary['metric_label'].iloc[0]} "
+                 f"({grid_stats.direction_text(metric)})")
+    lines += [f"{BEST} = best in split; n = seeds; rank within the split",
+              "95% CI = moving-block bootstrap over test origins (blocks >= horizon / stride origins)",
+              "seeds = seed range (min-max) below 3 seeds; t = 95% CI over seeds (Student t) from 3 seeds",
+              "vs ERM = (penalty - ERM) / |ERM| of the means, %: negative = the penalty lowered the metric",
+              "W/T/L over splits (tie within 1 %); Holm p = Diebold-Mariano (HLN, Newey-West lags",
+              "  ceil(horizon / stride) - 1) vs the ERM twin, Holm-adjusted over the whole grid's comparisons"]
+    header = f"  {'':1} {'model':<12} {'penalty':<7} {'mean':>8} {'n':>2} {'95% CI':>15} {'seeds':>15} " \
+             f"{'rank':>4} {'vs ERM':>7} {'W/T/L':>6} {'Holm p':>8}"
     for split, group in summary.groupby("split", sort=True):
-        lines += ["", f"{split}  [{group['split_id'].iloc[0]}]"[:100], header]
+        lines += ["", f"{split}  [{group['split_id'].iloc[0]}]"[:WIDTH], header]
         for row in group.itertuples():
-            ci = f"[{_num(row.ci_low)}, {_num(row.ci_high)}]"
-            change = f"{row.vs_erm_change * 100:+.1f}%" if np.isfinite(row.vs_erm_change) else "-"
+            ci = f"[{_num(row.ci_low)}, {_num(row.ci_high)}]" if np.isfinite(row.ci_low) else "-"
             wtl = (f"{row.vs_erm_wins:.0f}/{row.vs_erm_ties:.0f}/{row.vs_erm_losses:.0f}"
                    if np.isfinite(row.vs_erm_wins) else "-")
-            dm = _num(row.dm_p) + ("+" if row.dm_fallback is True else "")
-            lines.append(f"  {row.best:1} {row.model[:14]:<14} {row.penalty[:8]:<8} {_num(row.mean, '.4g'):>8} "
-                         f"{_num(row.std):>7} {row.n_seeds:>2} {ci[:17]:>17} {row.rank:>4.1f} {row.mean_rank:>5.2f} "
-                         f"{change:>7} {wtl:>6} {dm:>8}")
+            lines.append(f"  {row.best:1} {row.model[:12]:<12} {row.penalty[:7]:<7} {_num(row.mean, '.4g'):>8} "
+                         f"{row.n_seeds:>2} {ci[:15]:>15} {_seed_text(row)[:15]:>15} {row.rank:>4.1f} "
+                         f"{grid_stats.format_change(row.vs_erm_change):>7} {wtl:>6} {_num(row.dm_p_holm):>8}")
     return "\n".join(lines)
 
 
@@ -108,7 +122,9 @@ def format_markdown(summary: pd.DataFrame) -> str:
     rows = ["| " + " | ".join(_num(v, ".4g") if isinstance(v, float) else str(v) for v in row) + " |"
             for row in table.itertuples(index=False)]
     label = selection.label(summary["selection_rule"].iloc[0])
-    return "\n".join([f"Selection: {label}; metric: {summary['metric'].iloc[0]}", "", head, rule, *rows])
+    notes = (f"Selection: {label}; metric: {summary['metric_label'].iloc[0]}; {grid_stats.CHANGE_NOTE}; seed_interval "
+             "names the seed spread; ci = moving-block bootstrap over test origins; dm_p_holm = Holm-adjusted")
+    return "\n".join([notes, "", head, rule, *rows])
 
 
 def render(summary: pd.DataFrame, fmt: str) -> str:
@@ -136,8 +152,7 @@ def run(args) -> int:
     results = Path(args.results) if args.results else root / (cfg.results_dir if cfg else "results")
     metric = args.metric or (cfg.report.metric if cfg else "mae")
     rule = args.selection or (cfg.report.selection if cfg else selection.HOLDOUT)
-    n_boot = int(cfg.report.bootstrap_samples) if cfg else 2000
-    summary = grid_table(results, metric, rule, n_boot, _csv_list(args.target), _csv_list(args.model),
+    summary = grid_table(results, metric, rule, _csv_list(args.target), _csv_list(args.model),
                          _csv_list(args.penalty))
     print(render(summary, args.format))
     return 0
@@ -146,10 +161,10 @@ def run(args) -> int:
 def top_of_grid(results_dir: Path, cfg) -> str:
     """A few lines for the end of `make demo`: combinations by mean rank, best cell per split, Friedman."""
     metric, rule = cfg.report.metric, cfg.report.selection
-    summary = grid_table(Path(results_dir), metric, rule, int(cfg.report.bootstrap_samples))
+    summary = grid_table(Path(results_dir), metric, rule)
     board = summary.groupby("combo").agg(mean_rank=("mean_rank", "first"), average=("mean", "mean"))
     board = board.sort_values("mean_rank").head(int(cfg.report.top_rows))
-    lines = [f"top of the grid — {summary['metric'].iloc[0]} ({grid_stats.direction_text(metric)}), "
+    lines = [f"top of the grid — {summary['metric_label'].iloc[0]} ({grid_stats.direction_text(metric)}), "
              f"selection: {selection.label(rule)}", f"  {'model+penalty':<28} {'mean rank':>9} {'mean':>10}"]
     lines += [f"  {name[:28]:<28} {row.mean_rank:>9.2f} {row.average:>10.4g}" for name, row in board.iterrows()]
     lines.append("best per split:")
@@ -159,6 +174,8 @@ def top_of_grid(results_dir: Path, cfg) -> str:
     if meta_path.exists():
         result = json.loads(meta_path.read_text()).get("friedman", {}).get(rule, {})
         if result.get("available"):
-            lines.append(f"Friedman p = {result['p_value']:.3g} over {result['n_splits']} splits, "
-                         f"Nemenyi CD = {result['cd']:.2f} (see the report for the caveats)")
+            outcome = (f"Nemenyi CD = {result['cd']:.2f}" if result["rejects"]
+                       else f"ranks not distinguishable at alpha {result['alpha']:g}")
+            lines.append(f"Friedman over {result['n_blocks']} target cities: Iman-Davenport p = "
+                         f"{result['f_p_value']:.3g}, {outcome} (see the report for the caveats)")
     return "\n".join(lines)

@@ -44,27 +44,30 @@ def _ordered_combos(summary: pd.DataFrame) -> list[str]:
 
 
 def grid_heatmap(summary: pd.DataFrame, rule: str):
-    """Rows source -> target, columns model x penalty; colour = gain vs ERM; numbers = mean metric."""
+    """Rows source -> target, columns model x penalty; numbers = mean metric and the change vs ERM written
+    exactly as the report table and `shiftgrid grid` write it (grid_stats.format_change: negative = the
+    penalty lowered the metric); colour = whether that change is better (blue) or worse (red)."""
     combos = _ordered_combos(summary)
     splits = sorted(summary["split"].unique())
     gain = summary.assign(gain=grid_stats.gain_vs_erm(summary) * 100.0)
     values = gain.pivot_table(index="split", columns="combo", values="mean", aggfunc="first").reindex(splits)
     colour = gain.pivot_table(index="split", columns="combo", values="gain", aggfunc="first", dropna=False)
     colour = colour.reindex(index=splits, columns=combos)
+    change = gain.pivot_table(index="split", columns="combo", values="vs_erm_change", aggfunc="first",
+                              dropna=False).reindex(index=splits, columns=combos)
     best = gain[gain["best_in_split"]].groupby("split")["combo"].apply(set)
     limit = max(1.0, float(np.nanmax(np.abs(colour.to_numpy()))) if np.isfinite(colour.to_numpy()).any() else 1.0)
     fig, ax = plt.subplots(figsize=(max(6.0, 1.25 * len(combos) + 2.5), 0.62 * len(splits) + 2.4))
     cmap = plt.get_cmap("RdBu").with_extremes(bad="#eeeeee")
     image = ax.imshow(np.ma.masked_invalid(colour.to_numpy(np.float64)), cmap=cmap, vmin=-limit, vmax=limit,
                       aspect="auto")
-    metric = summary["metric"].iloc[0]
+    metric, label = summary["metric"].iloc[0], summary["metric_label"].iloc[0]
     for i, split in enumerate(splits):
         for j, combo in enumerate(combos):
             mean = values.at[split, combo] if combo in values.columns else np.nan
-            change = colour.iat[i, j]
             text = "–" if not np.isfinite(mean) else f"{mean:.3g}"
-            if np.isfinite(change):
-                text += f"\n{change:+.1f}%"
+            if np.isfinite(change.iat[i, j]):
+                text += f"\n{grid_stats.format_change(change.iat[i, j])}"
             is_best = combo in best.get(split, set())
             if is_best:
                 text = f"{BEST_MARK} {text}"
@@ -72,16 +75,18 @@ def grid_heatmap(summary: pd.DataFrame, rule: str):
             ax.text(j, i, text, ha="center", va="center", fontsize=8, fontweight="bold" if is_best else "normal")
     ax.set_xticks(range(len(combos)), combos, rotation=30, ha="right")
     ax.set_yticks(range(len(splits)), splits)
-    ax.set_title(_title(f"Target {metric} by split and model+penalty ({grid_stats.direction_text(metric)}); "
-                        f"{BEST_MARK} = best in split", rule))
+    ax.set_title(_title(f"{label} by split and model+penalty ({grid_stats.direction_text(metric)}); "
+                        f"{BEST_MARK} = best in split\nsecond line: change vs ERM twin, % (negative = the penalty "
+                        "lowered the metric)", rule))
     bar = fig.colorbar(image, ax=ax, fraction=0.04, pad=0.02)
-    bar.set_label("gain vs ERM twin, % (blue = better, grey = no twin)")
+    bar.set_label("better (+) or worse (-) than the ERM twin, %\n(blue = better, grey = no twin)")
     fig.tight_layout()
     return fig
 
 
 def cd_chart(friedman: dict, rule: str):
-    """Mean ranks (1 = best) with the Nemenyi critical difference drawn from the best combination."""
+    """Mean ranks over target cities (1 = best) with the Nemenyi critical difference drawn from the best
+    combination. Drawn only when the omnibus test rejects (pipeline.report.html.ranks_section)."""
     ranks = friedman["mean_ranks"]
     names, values = list(ranks), np.array(list(ranks.values()))
     cd = friedman["cd"]
@@ -95,10 +100,10 @@ def cd_chart(friedman: dict, rule: str):
         ax.text(value + 0.05, y + 0.18, f"{value:.2f}", fontsize=8)
     ax.set_yticks(positions, names)
     ax.set_xlim(0.5, len(names) + 0.5)
-    ax.set_xlabel("mean rank over splits (1 = best)")
+    ax.set_xlabel(f"mean rank over {friedman['n_blocks']} target cities (1 = best)")
     ax.legend(loc="lower right", fontsize=8, frameon=False)
-    ax.set_title(_title(f"Mean ranks, Friedman p = {friedman['p_value']:.3g} "
-                        f"({friedman['n_splits']} splits x {friedman['k']} combinations)", rule))
+    ax.set_title(_title(f"Mean ranks, Iman-Davenport p = {friedman['f_p_value']:.3g} "
+                        f"({friedman['n_blocks']} target cities x {friedman['k']} combinations)", rule))
     fig.tight_layout()
     return fig
 
@@ -108,7 +113,7 @@ def horizon_columns(runs: pd.DataFrame, rule: str) -> list[str]:
     return sorted((col for col in runs.columns if col.startswith(prefix)), key=lambda c: int(c[len(prefix):]))
 
 
-def horizon_curves(runs: pd.DataFrame, rule: str):
+def horizon_curves(runs: pd.DataFrame, rule: str, variable: str):
     """Target MAE per horizon step, averaged over seeds then splits, one line per model+penalty;
     one panel per target city."""
     columns = horizon_columns(runs, rule)
@@ -128,7 +133,7 @@ def horizon_curves(runs: pd.DataFrame, rule: str):
         ax.grid(alpha=0.3)
     for ax in axes.ravel()[len(targets):]:
         ax.set_visible(False)
-    axes[0, 0].set_ylabel("MAE (target units)")
+    axes[0, 0].set_ylabel(grid_stats.metric_label("target_mae", variable))
     handles, labels = axes[0, 0].get_legend_handles_labels()
     fig.legend(handles, labels, loc="lower center", ncol=min(5, len(labels)), fontsize=8, frameon=False)
     fig.suptitle(_title("Target MAE by forecast horizon (dashed = ERM)", rule))
@@ -139,8 +144,9 @@ def horizon_curves(runs: pd.DataFrame, rule: str):
 EXCEEDANCE_SCORES = ("pod", "far", "csi", "ets")
 
 
-def exceedance_bars(runs: pd.DataFrame, rule: str, threshold: str | None = None):
-    """POD, FAR, CSI, ETS of each model+penalty, averaged over seeds and splits (NaN-aware)."""
+def exceedance_bars(runs: pd.DataFrame, rule: str, event: str | None = None):
+    """POD, FAR, CSI, ETS of each model+penalty, averaged over seeds and splits (NaN-aware); `event` names
+    the scored event (grid_stats.threshold_note)."""
     columns = [f"{rule}.target_{score}" for score in EXCEEDANCE_SCORES if f"{rule}.target_{score}" in runs.columns]
     table = runs.assign(combo=[grid_stats.combo_label(m, p) for m, p in zip(runs["model"], runs["penalty"])])
     means = table.groupby(["combo", "split_id"])[columns].mean().groupby(level="combo").mean()
@@ -154,15 +160,15 @@ def exceedance_bars(runs: pd.DataFrame, rule: str, threshold: str | None = None)
     ax.set_xticks(np.arange(len(means)) + width * (len(columns) - 1) / 2, means.index, rotation=30, ha="right")
     ax.set_ylim(0, 1)
     ax.legend(ncol=len(columns), fontsize=8, frameon=False, loc="upper right")
-    event = f" (event: target > {threshold})" if threshold else ""
-    ax.set_title(_title(f"Exceedance scores{event}; ↑ higher is better, ↓ lower is better", rule))
+    ax.set_title(_title(f"Exceedance scores; ↑ higher is better, ↓ lower is better"
+                        + (f"\nevent: {event}" if event else ""), rule))
     fig.tight_layout()
     return fig
 
 
 def selection_comparison(summary_all: pd.DataFrame):
     """Mean metric of each model+penalty under every logged selection rule (peek = upper bound)."""
-    metric = summary_all["metric"].iloc[0]
+    metric = summary_all["metric_label"].iloc[0]
     per_rule = summary_all.groupby(["combo", "selection_rule"])["mean"].mean().unstack("selection_rule")
     rules = [rule for rule in selection.RULES if rule in per_rule.columns]
     fig, ax = plt.subplots(figsize=(max(6.5, 0.9 * len(per_rule) + 2.5), 3.8))
@@ -174,7 +180,7 @@ def selection_comparison(summary_all: pd.DataFrame):
     ax.set_xticks(np.arange(len(per_rule)) + width * (len(rules) - 1) / 2, per_rule.index, rotation=30, ha="right")
     ax.set_ylabel(f"mean {metric} over splits")
     ax.legend(fontsize=8, frameon=False)
-    ax.set_title(f"Target {metric} under each selection rule; selection: "
+    ax.set_title(f"{metric} under each selection rule; selection: "
                  f"{', '.join(selection.label(rule) for rule in rules)}")
     fig.tight_layout()
     return fig
@@ -195,7 +201,7 @@ def shift_figure(shift: pd.DataFrame, points: pd.DataFrame, rule: str, rho: floa
         for row in points.itertuples():
             right.annotate(row.split, (row.shift, row.mean), fontsize=7, xytext=(3, 3), textcoords="offset points")
     right.set_xlabel("mean source–target energy distance")
-    right.set_ylabel(f"target {points['metric'].iloc[0] if not points.empty else 'error'} (best combination)")
+    right.set_ylabel(f"{points['metric'].iloc[0] if not points.empty else 'target error'}\n(mean over combinations)")
     right.set_title(_title(f"Target error vs shift (Spearman ρ = {rho:.2f}, p = {p_value:.2g})", rule))
     fig.tight_layout()
     return fig

@@ -3,7 +3,8 @@
 Reads (paths handed over by the `render_report` rule or a caller): results/grid.parquet, grid.csv,
 grid_meta.json, results/shift.csv (optional), data/qc/<city>.json and results/splits/<split_id>.json.
 Writes the HTML file. Config keys obeyed (the report slice): report.title, report.selection,
-report.figure_dpi, report.top_rows (rows of the summary table shown per split, best first).
+report.figure_dpi, report.top_rows (rows of the summary table shown per split, best first); and
+data.ground_truth for the verdict (pipeline.report.verdict_html), which opens the page.
 Every figure and table that shows numbers of one selection rule names it with
 pipeline.selection.label, so anything from target-peek reads "upper bound".
 """
@@ -24,6 +25,7 @@ from pipeline.commands.demo import CAUTION  # one wording of the caution for the
 from pipeline.ingest.qc import summary_row
 from pipeline.report import figures, shift_data
 from pipeline.report.style import CSS
+from pipeline.report.verdict_html import verdict_section
 
 E = html.escape
 
@@ -65,7 +67,7 @@ def setup_section(meta: dict, runs: pd.DataFrame, qc: dict[str, dict], splits: l
     facts = [("experiment", ", ".join(meta.get("experiment", []))),
              ("tracking store", ", ".join(meta.get("tracking_uris", []))),
              ("runs in the grid", f"{meta['n_runs']} of {meta['n_records']} run records (skipped: {skipped})"),
-             ("metric", meta["metric"]),
+             ("metric", meta.get("metric_label", meta["metric"])),
              ("selection rules logged", ", ".join(selection.label(rule) for rule in meta["rules"])),
              ("models", ", ".join(sorted(runs["model"].unique()))),
              ("penalties", ", ".join(grid_stats.penalty_display(p) for p in sorted(runs["penalty"].unique()))),
@@ -85,20 +87,28 @@ def setup_section(meta: dict, runs: pd.DataFrame, qc: dict[str, dict], splits: l
     return "".join(parts) + "</section>"
 
 
+def _pair(low, high) -> str:
+    return f"[{low:.3g}, {high:.3g}]" if np.isfinite(low) and np.isfinite(high) else "–"
+
+
 def summary_table(summary: pd.DataFrame, top_rows: int) -> pd.DataFrame:
+    """The grid table of one rule; column names carry the metric label, the interval kinds and the sign rule."""
     table = summary.sort_values(["split", "rank"]).groupby("split", sort=True).head(top_rows)
     wtl = [f"{w:.0f}/{t:.0f}/{l:.0f}" if np.isfinite(w) else "–"
            for w, t, l in zip(table["vs_erm_wins"], table["vs_erm_ties"], table["vs_erm_losses"])]
-    dm = [("–" if not np.isfinite(p) else f"{p:.3g}{'†' if fb is True else ''}")
-          for p, fb in zip(table.get("dm_p", pd.Series(np.nan, index=table.index)),
-                           table.get("dm_fallback", pd.Series(False, index=table.index)))]
+    pvalue = [f"{p:.3g}" if np.isfinite(p) else "–" for p in table["dm_p"]]
+    holm = [f"{p:.3g}" if np.isfinite(p) else "–" for p in table["dm_p_holm"]]
+    seeds = [f"{_pair(lo, hi)} {kind}" if np.isfinite(lo) else "–"
+             for lo, hi, kind in zip(table["seed_low"], table["seed_high"], table["seed_interval"])]
     return pd.DataFrame({"split": table["split"], "best": np.where(table["best_in_split"], figures.BEST_MARK, ""),
-                         "model+penalty": table["combo"], "mean": table["mean"], "std": table["std"],
-                         "n seeds": table["n_seeds"],
-                         "95% CI": [f"[{lo:.3g}, {hi:.3g}]" for lo, hi in zip(table["ci_low"], table["ci_high"])],
-                         "rank": table["rank"], "mean rank": table["mean_rank"],
-                         "vs ERM": [f"{c * 100:+.1f}%" if np.isfinite(c) else "–" for c in table["vs_erm_change"]],
-                         "W/T/L vs ERM": wtl, "DM p": dm})
+                         "model+penalty": table["combo"], f"mean {table['metric_label'].iloc[0]}": table["mean"],
+                         "std over seeds": table["std"], "n seeds": table["n_seeds"],
+                         "95% CI over test origins (block bootstrap)": [
+                             _pair(lo, hi) for lo, hi in zip(table["ci_low"], table["ci_high"])],
+                         "spread over seeds": seeds, "rank": table["rank"], "mean rank": table["mean_rank"],
+                         "change vs ERM, % (negative = lower)": [grid_stats.format_change(c)
+                                                                 for c in table["vs_erm_change"]],
+                         "W/T/L vs ERM": wtl, "DM p": pvalue, "DM p, Holm": holm})
 
 
 def other_rule_columns(table: pd.DataFrame, summary_all: pd.DataFrame, meta: dict,
@@ -116,15 +126,22 @@ def other_rule_columns(table: pd.DataFrame, summary_all: pd.DataFrame, meta: dic
 def grid_section(summary_all: pd.DataFrame, meta: dict, rule: str, dpi: int, top_rows: int) -> str:
     """One grid: the headline rule's heatmap and table; every other rule is a column of that table."""
     summary = summary_all[summary_all["selection_rule"] == rule]
+    label = summary["metric_label"].iloc[0]
+    loss = summary["dm_loss"].dropna().iloc[0] if summary["dm_loss"].notna().any() else "absolute"
     parts = ['<section id="grid"><h2>The grid</h2>',
-             "<p>Cells: mean of the metric over seeds; colour: relative change against the ERM run of the same "
-             f"split and model (blue = better); {figures.BEST_MARK} and a frame mark the best cell of each split. "
-             "DM p: Diebold-Mariano test with the Harvey-Leybourne-Newbold correction on paired per-window "
-             "absolute errors against the ERM twin (two-sided; † = variance estimate not positive, h = 1 "
-             "fallback). Ranks, spread and tests use the headline selection rule; the last columns give the "
-             "same cell's mean under each other logged rule.</p>",
+             f"<p>Cells: mean {E(label)} over seeds; {E(grid_stats.change_note(summary['metric'].iloc[0]))}; the "
+             f"heatmap's colour shows whether that is better (blue) or worse (red); {figures.BEST_MARK} and a frame "
+             "mark the best cell of each split. 95% CI over test origins: moving-block bootstrap of the forecast "
+             "origins (blocks of at least ceil(horizon / stride) origins, so overlapping windows stay together; "
+             f"{meta.get('bootstrap_samples', '')} resamples), the same blocks for every seed and station. Spread "
+             "over seeds: the seed range (min-max) below 3 seeds, a Student t interval from 3 seeds. DM p: "
+             f"Diebold-Mariano test on paired per-window {E(loss.replace('_', ' '))} errors against the ERM twin "
+             "(two-sided; Newey-West variance with ceil(horizon / stride) - 1 Bartlett lags, origins dropped for "
+             "missing data kept apart; Harvey-Leybourne-Newbold factor, Student t); DM p, Holm: adjusted over every "
+             "penalised-vs-ERM comparison of the grid under this selection rule. Ranks, spread and tests use the "
+             "headline selection rule; the last columns give the same cell's mean under each other logged rule.</p>",
              _figure(figures.grid_heatmap(summary, rule), dpi,
-                     _rule_caption(f"Grid heatmap of target {meta['metric']}", rule), rule)]
+                     _rule_caption(f"Grid heatmap of {label}", rule), rule)]
     table, column_rules = other_rule_columns(summary_table(summary, top_rows), summary_all, meta, rule)
     parts.append(_table(table, _rule_caption(f"Summary per split (best {top_rows} per split)", rule), rule, "grid",
                         column_rules))
@@ -132,6 +149,7 @@ def grid_section(summary_all: pd.DataFrame, meta: dict, rule: str, dpi: int, top
 
 
 def ranks_section(summary_all: pd.DataFrame, meta: dict, rule: str, dpi: int) -> str:
+    """Friedman and Iman-Davenport over target cities; the critical-difference chart only when they reject."""
     parts = ['<section id="ranks"><h2>Ranks and critical difference</h2>']
     for each in meta["rules"]:
         result = meta["friedman"].get(each, {})
@@ -139,31 +157,45 @@ def ranks_section(summary_all: pd.DataFrame, meta: dict, rule: str, dpi: int) ->
             parts.append(f'<p data-selection="{E(each)}">Friedman test not available under '
                          f"{E(selection.label(each))}: {E(result.get('reason', 'no result'))}.</p>")
             continue
-        if each == rule or len(meta["rules"]) == 1:
-            parts.append(_figure(figures.cd_chart(result, each), dpi,
-                                 _rule_caption("Mean ranks and Nemenyi critical difference (alpha 0.05)", each), each))
         dropped = ", ".join(result["dropped_combos"]) or "none"
-        parts.append(f'<p data-selection="{E(each)}"><strong>{E(selection.label(each))}</strong>: Friedman '
-                     f"chi² = {result['chi2']:.3g}, p = {result['p_value']:.3g} over {result['n_splits']} splits "
-                     f"and {result['k']} combinations; Nemenyi CD = {result['cd']:.3g}. Combinations left out "
-                     f"(incomplete blocks): {E(dropped)}.</p>")
+        verdict = (f"the omnibus test rejects equal mean ranks at alpha {result['alpha']:g}; Nemenyi CD = "
+                   f"{result['cd']:.3g}" if result["rejects"] else
+                   f"the omnibus test does not reject equal mean ranks at alpha {result['alpha']:g}, so no "
+                   "critical-difference chart is drawn: the ranks below are not distinguishable")
+        parts.append(f'<p data-selection="{E(each)}"><strong>{E(selection.label(each))}</strong>: blocks = '
+                     f"{result['n_blocks']} target cities ({E(', '.join(result['blocks']))}; {result['n_splits']} "
+                     f"splits, those sharing a target averaged), {result['k']} combinations: Friedman "
+                     f"chi² = {result['chi2']:.3g} (p = {result['p_value']:.3g}), Iman-Davenport F = "
+                     f"{result['f_stat']:.3g} with ({result['f_df'][0]}, {result['f_df'][1]}) df, p = "
+                     f"{result['f_p_value']:.3g}: {E(verdict)}. Combinations left out (missing in some split): "
+                     f"{E(dropped)}.</p>")
+        if result["rejects"] and (each == rule or len(meta["rules"]) == 1):
+            parts.append(_figure(figures.cd_chart(result, each), dpi,
+                                 _rule_caption("Mean ranks over target cities and Nemenyi critical difference "
+                                               f"(alpha {result['alpha']:g})", each), each))
     parts.append(f'<p class="note">{E(grid_stats.MULTIPLE_COMPARISON_CAVEAT)}</p>')
     if len(meta["rules"]) > 1:
         parts.append(_figure(figures.selection_comparison(summary_all), dpi,
-                             "Target metric under each selection rule: "
+                             f"{summary_all['metric_label'].iloc[0]} under each selection rule: "
                              + "; ".join(selection.label(r) for r in meta["rules"]),
                              selection.PEEK if selection.PEEK in meta["rules"] else None))
     return "".join(parts) + "</section>"
 
 
-def curves_section(runs: pd.DataFrame, rule: str, dpi: int, threshold: str | None) -> str:
+def curves_section(runs: pd.DataFrame, rule: str, dpi: int) -> str:
+    variable = str(grid_stats.run_setting(runs, "forecast.target", "forecast.target"))
     parts = ['<section id="horizon"><h2>Error by horizon and exceedance scores</h2>']
     if figures.horizon_columns(runs, rule):
-        parts.append(_figure(figures.horizon_curves(runs, rule), dpi,
-                             _rule_caption("Target MAE per forecast hour", rule), rule))
+        parts.append(_figure(figures.horizon_curves(runs, rule, variable), dpi,
+                             _rule_caption(f"{grid_stats.metric_label('target_mae', variable)} per forecast hour",
+                                           rule), rule))
     if any(col.startswith(f"{rule}.target_csi") for col in runs.columns):
-        parts.append(_figure(figures.exceedance_bars(runs, rule, threshold), dpi,
-                             _rule_caption("Exceedance scores (POD, FAR, CSI, ETS)", rule), rule))
+        threshold = float(grid_stats.run_setting(runs, "metrics.hourly_exceedance_threshold",
+                                                 "metrics.hourly_exceedance_threshold"))
+        note = grid_stats.threshold_note(variable, threshold)
+        parts.append(f"<p>Exceedance scores count the event of a {E(note)}.</p>")
+        parts.append(_figure(figures.exceedance_bars(runs, rule, note), dpi,
+                             _rule_caption(f"Exceedance scores (POD, FAR, CSI, ETS); {note}", rule), rule))
     return "".join(parts) + "</section>"
 
 
@@ -172,6 +204,8 @@ def shift_section(shift: pd.DataFrame | None, summary: pd.DataFrame, rule: str, 
     if shift is None or shift.empty:
         return "".join(parts) + "<p>No shift table (fewer than two cities).</p></section>"
     points, rho, p_value = shift_data.error_vs_shift(shift, summary)
+    if not points.empty:  # the figure's axis names the metric with its variable and unit
+        points["metric"] = summary["metric_label"].iloc[0]
     parts.append("<p>Energy distance and mean per-variable Wasserstein-1 distance between cities on features "
                  "standardised over all cities, next to the distance between city centroids. Right panel: each "
                  "split's target error (mean over model+penalty combinations) against the mean shift between "
@@ -208,23 +242,24 @@ def load_inputs(grid_dir: Path, qc_paths, split_paths, shift_path):
 
 
 def render_report(grid_dir: Path | str, out_path: Path | str, report_cfg: dict, qc_paths=(), split_paths=(),
-                  shift_path: Path | str | None = None) -> str:
-    """Build the page and write it to `out_path`; returns the HTML text."""
+                  shift_path: Path | str | None = None, ground_truth: dict | None = None) -> str:
+    """Build the page and write it to `out_path`; returns the HTML text. The verdict comes first."""
     runs, summary_all, meta, qc, splits, shift = load_inputs(Path(grid_dir), qc_paths, split_paths, shift_path)
     rule = report_cfg.get("selection", selection.HOLDOUT)
     rule = rule if rule in meta["rules"] else meta["rules"][0]
     dpi, top_rows = int(report_cfg.get("figure_dpi", 100)), int(report_cfg.get("top_rows", 12))
-    threshold = runs.get("param.metrics.exceedance_threshold")
-    threshold = str(threshold.dropna().iloc[0]) if threshold is not None and threshold.notna().any() else None
     summary = summary_all[summary_all["selection_rule"] == rule]
     title = report_cfg.get("title", "shiftgrid comparison")
-    body = [f"<header><h1>{E(title)}</h1><p class='meta'>metric: {E(meta['metric'])} · headline selection: "
+    label = meta.get("metric_label", meta["metric"])
+    body = [f"<header><h1>{E(title)}</h1><p class='meta'>metric: {E(label)} · headline selection: "
             f"{E(selection.label(rule))} · generated {dt.datetime.now(dt.timezone.utc):%Y-%m-%d %H:%M} UTC</p>"
             f'<p class="caution" role="note">{E(CAUTION)}</p></header>',
-            '<nav><a href="#setup">Setup</a><a href="#grid">Grid</a><a href="#ranks">Ranks</a>'
-            '<a href="#horizon">Horizons</a><a href="#shift">Shift</a><a href="#provenance">Provenance</a></nav>',
+            '<nav><a href="#verdict">Verdict</a><a href="#setup">Setup</a><a href="#grid">Grid</a>'
+            '<a href="#ranks">Ranks</a><a href="#horizon">Horizons</a><a href="#shift">Shift</a>'
+            '<a href="#provenance">Provenance</a></nav>',
+            verdict_section(summary, meta, rule, ground_truth),
             setup_section(meta, runs, qc, splits), grid_section(summary_all, meta, rule, dpi, top_rows),
-            ranks_section(summary_all, meta, rule, dpi), curves_section(runs, rule, dpi, threshold),
+            ranks_section(summary_all, meta, rule, dpi), curves_section(runs, rule, dpi),
             shift_section(shift, summary, rule, dpi), provenance_section(runs, meta, rule),
             f'<footer><p class="caution">{E(CAUTION)}</p></footer>']
     page = (f'<!DOCTYPE html><html lang="en"><head><meta charset="utf-8"><title>{E(title)}</title>'

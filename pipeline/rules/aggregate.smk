@@ -10,6 +10,12 @@ def report_slice_json(keys=None):
     return canonical_json({k: v for k, v in options.items() if keys is None or k in keys})
 
 
+def ground_truth_json():
+    from pipeline.config import canonical_json
+
+    return canonical_json(PLAN.cfg.data.ground_truth)  # null when the scenario declares none
+
+
 rule aggregate_grid:
     input:
         records=PLAN.all_run_records(),
@@ -17,6 +23,7 @@ rule aggregate_grid:
         runs=f"{RESULTS}/grid.parquet",
         summary=f"{RESULTS}/grid.csv",
         dm=f"{RESULTS}/grid_dm.csv",
+        intervals=f"{RESULTS}/grid_intervals.csv",
         meta=f"{RESULTS}/grid_meta.json",
     log:
         f"{RESULTS}/logs/aggregate_grid.log",
@@ -57,6 +64,7 @@ rule render_report:
         f"{RESULTS}/logs/render_report.log",
     params:
         report=report_slice_json(),
+        ground_truth=ground_truth_json(),
         code=PLAN.stage_digest("aggregate"),
     script:
         "../scripts/render_report.py"

@@ -10,7 +10,7 @@ from pipeline.scripts._step import run_step
 def work(snakemake):
     render_report(Path(snakemake.input.runs).parent, snakemake.output[0], json.loads(snakemake.params.report),
                   qc_paths=list(snakemake.input.qc), split_paths=list(snakemake.input.splits),
-                  shift_path=snakemake.input.shift)
+                  shift_path=snakemake.input.shift, ground_truth=json.loads(snakemake.params.ground_truth))
     print(f"report: {snakemake.output[0]}")
 
 
