@@ -4,8 +4,9 @@ Reads: the station table (a DataFrame from pipeline.stations.load_stations) for 
 only the `station_id` and `time` columns of data/clean/<city>.parquet plus the file bytes (digests).
 Writes: results/splits/<split_id>.json through `write_split` (atomic, sorted keys).
 Config keys obeyed: the `split` group, schema `SplitConfig` (schemes, cities, subset_sizes, subset_limit,
-pairs, within_city, within_target_stations, environment, cluster_km, blocks, gap_hours,
-target_train_fraction) and, through the callers' arguments, `forecast.lookback_hours`/`horizon_hours`.
+pairs, within_city, within_target_stations, environment, environment_fallback, cluster_km, blocks,
+gap_hours, target_train_fraction) and, through the callers' arguments,
+`forecast.lookback_hours`/`horizon_hours`.
 
 Planning is pure and uses the configuration and station table only, so new data never changes the list
 of splits. A split id is `<scheme>-<sources joined by +>-to-<target>-<6 hex>`, the hex being the first
@@ -13,6 +14,12 @@ six digits of the sha256 of every other plan field (canonical JSON), scheme excl
 produce the same content (e.g. leave-one-city-out and the largest source subset) are listed once, under
 the first scheme in the precedence loco > pairs > subsets > within; the plan is ordered by that
 precedence, whatever the order of `split.schemes`.
+
+Environment fallback: a split whose sources form fewer than two training environments in the configured
+unit (e.g. one source city with `environment: city`) cannot host a penalised run (pipeline.environments).
+With `environment_fallback: station` (or `cluster`) such a split uses that finer unit instead, and its
+plan item records the unit it fell back from (`environment_fallback_from`), which runs carry as a tag
+and the grid shows. Splits that need no fallback keep their content, hence their ids.
 """
 
 from __future__ import annotations
@@ -28,6 +35,7 @@ from typing import Any, Dict, List, Optional
 import pandas as pd
 
 from pipeline.atomic import write_json_atomic
+from pipeline.environments import training_environment_count
 from pipeline.errors import InputError
 from pipeline.geo import cluster_stations
 from pipeline.provenance import file_digest
@@ -49,6 +57,9 @@ class SplitConfig:
     within_city: Optional[str] = None
     within_target_stations: List[str] = field(default_factory=list)  # empty: every 3rd sorted id
     environment: str = "city"  # unit the invariance penalty sees: city | station | cluster
+    # Finer unit used where `environment` gives a split fewer than two training environments (a penalised
+    # run there would be ERM in disguise): station | cluster; None = no fallback (such runs are refused).
+    environment_fallback: Optional[str] = None
     cluster_km: float = 10.0
     blocks: Dict[str, float] = field(default_factory=lambda: {"train": 0.6, "val": 0.2, "test": 0.2})
     gap_hours: Optional[int] = None  # None = lookback + horizon (the least that is allowed)
@@ -90,6 +101,10 @@ def _validate(cfg: SplitConfig, all_cities: list[str], lookback: int, horizon: i
     if cfg.environment not in ENVIRONMENT_UNITS:
         raise InputError(f"unknown unit {cfg.environment!r} (known: {', '.join(ENVIRONMENT_UNITS)})",
                          field="split.environment")
+    if cfg.environment_fallback is not None and (cfg.environment_fallback not in ENVIRONMENT_UNITS[1:]
+                                                 or cfg.environment_fallback == cfg.environment):
+        raise InputError(f"must be station or cluster and differ from split.environment "
+                         f"({cfg.environment}), got {cfg.environment_fallback!r}", field="split.environment_fallback")
     if not (isinstance(cfg.cluster_km, (int, float)) and cfg.cluster_km > 0):
         raise InputError(f"must be a number > 0, got {cfg.cluster_km!r}", field="split.cluster_km")
     if not isinstance(cfg.blocks, dict) or sorted(cfg.blocks) != sorted(BLOCK_NAMES):
@@ -226,13 +241,21 @@ def _environments(unit: str, station_ids: list[str], stations: pd.DataFrame, clu
 
 def _make_item(scheme, sources, target, source_stations, target_stations, cfg, stations, gap) -> dict:
     within = scheme == "within"
+    unit = cfg.environment
+    environments = _environments(unit, source_stations, stations, cfg.cluster_km)
+    fallback = {}
+    counted = {"environments": environments, "target_train_fraction": cfg.target_train_fraction}
+    if cfg.environment_fallback and training_environment_count(counted) < 2:
+        fallback = {"environment_fallback_from": unit}  # only where applied: other split ids stay as they were
+        unit = cfg.environment_fallback
+        environments = _environments(unit, source_stations, stations, cfg.cluster_km)
     item = {
         "scheme": scheme, "sources": list(sources), "target": target,
         "source_stations": sorted(source_stations), "target_stations": sorted(target_stations),
-        "environment": cfg.environment,
-        "environments": _environments(cfg.environment, source_stations, stations, cfg.cluster_km),
+        "environment": unit, **fallback,
+        "environments": environments,
         # evaluation environments of the target; names never collide with the source ones
-        "target_environments": _environments(cfg.environment, target_stations, stations, cfg.cluster_km,
+        "target_environments": _environments(unit, target_stations, stations, cfg.cluster_km,
                                              city_name=f"{target}-heldout" if within else target,
                                              cluster_label="h" if within else "c"),
         "target_train_fraction": float(cfg.target_train_fraction),

@@ -16,6 +16,7 @@ import numpy as np
 import pandas as pd
 
 from pipeline import selection
+from pipeline.environments import rotation_groups
 from pipeline.metrics import forecast_scores, mse
 from pipeline.models import build_model
 from pipeline.penalties import build_penalty
@@ -30,14 +31,6 @@ def subset(window_set, mask: np.ndarray):
 
 def station_city_map(tables: dict[str, pd.DataFrame]) -> dict[str, str]:
     return {station: city for city, table in tables.items() for station in table["station_id"].unique()}
-
-
-def _rotation_groups(split: dict, station_city: dict[str, str]) -> dict[str, set[str]]:
-    """Groups left out one at a time: source cities, or source environments within one city."""
-    if len(split["sources"]) >= 2:
-        return {city: {s for s in split["source_stations"] if station_city.get(s) == city}
-                for city in split["sources"]}
-    return {env: set(stations) for env, stations in split["environments"].items()}
 
 
 def _make_penalty(job: dict):
@@ -56,7 +49,7 @@ def _fit(job: dict, seed: int, train, val: dict):
 
 def rotation_curves(job: dict, seed: int, windows, split: dict, station_city: dict) -> dict[str, dict]:
     curves = {}
-    for group, stations in _rotation_groups(split, station_city).items():
+    for group, stations in rotation_groups(split, station_city).items():
         keep = ~np.isin(windows.train.station, list(stations))
         held = np.isin(windows.val_source.station, list(stations))
         if keep.sum() == 0 or held.sum() == 0:

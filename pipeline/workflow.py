@@ -14,7 +14,7 @@ from pathlib import Path
 
 from omegaconf import DictConfig
 
-from pipeline import provenance
+from pipeline import environments, provenance, twins
 from pipeline.config import (NOT_APPLICABLE, canonical_json, compose_config, expand_sweep_overrides, job_slice,
                              to_container, validate)
 from pipeline.errors import InputError
@@ -139,6 +139,11 @@ def plan_workflow(overrides: str | list | None = None, root: Path | str = ".") -
             validate(pair_cfg)
             units += [{"model": model_name, "penalty": penalty_name, "seed": seed,
                        "job": job_slice(pair_cfg, model_name, penalty_name)} for seed in cfg.sweep.seeds]
+        # Plan time, not job time: a penalised run with one training environment is ERM in disguise, and
+        # an ERM twin trained under another protocol is no twin (pipeline.environments, pipeline.twins).
+        environments.check_units(splits, units, dict(zip(stations["station_id"].astype(str),
+                                                         stations["city"].astype(str))))
+        twins.check_units(units)
         digest = provenance.training_code_digest([family])
         for split_id in splits:
             plan.jobs[(split_id, model_name)] = TrainJob(split_id, model_name,

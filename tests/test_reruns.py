@@ -27,7 +27,9 @@ OVERRIDES = ["experiment=rerun"]
 PAIRS = [{"sources": ["arlenvik"], "target": "brumeholt"}, {"sources": ["brumeholt"], "target": "corvessa"}]
 EXPERIMENT = {
     "data": {"generator": {"days": 12}},
-    "split": {"schemes": ["pairs"], "pairs": PAIRS, "cities": ["arlenvik", "brumeholt", "corvessa"]},
+    # One source city per pair: its stations are the environments, so the irm runs are really penalised.
+    "split": {"schemes": ["pairs"], "pairs": PAIRS, "cities": ["arlenvik", "brumeholt", "corvessa"],
+              "environment_fallback": "station"},
     "forecast": {"lookback_hours": 24, "horizon_hours": 6, "stride_hours": 2},
     "sweep": {"models": ["persistence", "ridge", "linear"], "penalties": ["erm", "irm"], "seeds": [0]},
     "fit": {"max_steps": 30, "eval_every": 10, "batch_size": 64},
