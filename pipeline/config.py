@@ -26,6 +26,7 @@ from omegaconf.errors import OmegaConfBaseException
 
 from pipeline import selection
 from pipeline.errors import InputError
+from pipeline.names import check_name
 from pipeline.splits import SplitConfig
 from pipeline.train_loop import FitConfig
 from pipeline.windows import ForecastConfig
@@ -204,6 +205,9 @@ def validate(cfg: DictConfig) -> None:
     from pipeline.models import MODEL_FAMILIES, build_model
     from pipeline.penalties import build_penalty
 
+    for key in ("models", "penalties"):  # they become parts of file names, wildcards and tags
+        for name in cfg.sweep[key]:
+            check_name(name, file="config", field=f"sweep.{key}")
     for rule in [cfg.selection.rule, *cfg.selection.also, cfg.report.selection]:
         if rule not in selection.RULES:
             raise InputError(f"unknown selection rule {rule!r}; expected one of {', '.join(selection.RULES)}",

@@ -7,19 +7,17 @@ first station is line 2.
 """
 
 import io
-import re
 from pathlib import Path
 
 import pandas as pd
 
 from pipeline.errors import InputError
+from pipeline.names import CITY_NAME, SAFE_NAME, check_name
 from pipeline.textfile import read_text
 
 REQUIRED_COLUMNS = ("station_id", "city", "lat", "lon", "elevation_m", "site_type")
 SITE_TYPES = frozenset({"urban_traffic", "urban_background", "suburban", "rural_background",
                         "industrial", "airport"})
-STATION_ID_PATTERN = re.compile(r"^[a-z][a-z0-9_]*$")  # safe as a file-name part
-CITY_PATTERN = re.compile(r"^[a-z][a-z0-9]*$")
 _HEADER_LINES = 1
 
 
@@ -50,17 +48,12 @@ def validate_stations(table: pd.DataFrame, file: str) -> pd.DataFrame:
     lines = table["_line"].tolist() if "_line" in table else [_line(p) for p in range(len(table))]
     table = table.drop(columns="_line", errors="ignore")
     for line, row in zip(lines, table.itertuples(index=False)):
-        station_id, city = str(row.station_id).strip(), str(row.city).strip()
-        if not STATION_ID_PATTERN.match(station_id):
-            raise InputError(f"'{station_id}' must match {STATION_ID_PATTERN.pattern} "
-                             f"(it becomes part of file names)", file=file, row=line, field="station_id")
+        station_id = check_name(row.station_id, SAFE_NAME, file=file, row=line, field="station_id")
         if station_id in seen:
             raise InputError(f"'{station_id}' already used on line {seen[station_id]}",
                              file=file, row=line, field="station_id")
         seen[station_id] = line
-        if not CITY_PATTERN.match(city):
-            raise InputError(f"'{city}' must match {CITY_PATTERN.pattern}", file=file, row=line,
-                             field="city")
+        check_name(row.city, CITY_NAME, file=file, row=line, field="city")
         lats.append(_number(row.lat, file, line, "lat", -90.0, 90.0))
         lons.append(_number(row.lon, file, line, "lon", -180.0, 180.0))
         # Lowest land surface is about -430 m, highest about 8850 m (common knowledge).

@@ -99,12 +99,26 @@ def compare_curves(client, original_id: str, new_id: str, names: list[str]) -> l
     return differences
 
 
+def load_weights(path: Path) -> dict:
+    """A saved state dict through torch's weights-only loader: tensors and plain containers, never an
+    arbitrary pickled object (an artifact store is shared; a weights file is not trusted to be harmless)."""
+    import pickle
+
+    import torch
+
+    try:
+        return torch.load(path, weights_only=True)
+    except (pickle.UnpicklingError, RuntimeError, EOFError) as error:
+        reason = str(error).strip().splitlines()[0] if str(error).strip() else type(error).__name__
+        raise InputError(f"not a plain weights file; torch's weights-only loader refused it ({reason})",
+                         file=str(path), field="model_state.pt") from None
+
+
 def compare_weights(original_path: Path, new_path: Path) -> list[str]:
     """Tensor-by-tensor exact equality of two saved state dicts."""
     import torch
 
-    a = torch.load(original_path, weights_only=True)
-    b = torch.load(new_path, weights_only=True)
+    a, b = load_weights(original_path), load_weights(new_path)
     differences = [f"weights {key}: only in the {'original' if key in a else 'new'} run"
                    for key in sorted(set(a) ^ set(b))]
     for key in sorted(set(a) & set(b)):
