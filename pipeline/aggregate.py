@@ -30,7 +30,7 @@ from urllib.parse import unquote, urlparse
 import numpy as np
 import pandas as pd
 
-from pipeline import grid_stats, stats, tracking, window_stats
+from pipeline import environments, grid_stats, stats, tracking, window_stats
 from pipeline.atomic import write_csv_atomic, write_parquet_atomic, write_text_atomic
 from pipeline.errors import InputError
 
@@ -103,7 +103,13 @@ def run_row(record: dict, run, record_path: str) -> dict:
            "split_id": record["split_id"], "sources": "+".join(record["sources"]), "target": record["target"],
            "model": record["model"], "family": record["family"], "penalty": record["penalty"],
            "seed": int(record["seed"]), "selection_rule": record.get("selection_rule"),
-           "tracking_uri": record["tracking_uri"], "artifact_uri": run.info.artifact_uri, "start_time": run.info.start_time}
+           "tracking_uri": record["tracking_uri"], "artifact_uri": run.info.artifact_uri, "start_time": run.info.start_time,
+           # the protocol twins must share (runs logged before the tag existed drew balanced batches), and the
+           # environment unit, naming a fallback (pipeline.environments)
+           "sampling": run.data.tags.get("sampling", grid_stats.PROTOCOL_DEFAULTS["sampling"]),
+           "environment": environments.describe({"environment": run.data.tags.get("environment", ""),
+                                                 "environment_fallback_from":
+                                                     run.data.tags.get("environment_fallback_from")})}
     row.update({name: float(value) for name, value in run.data.metrics.items()})
     row.update({f"tag.{name}": value for name, value in run.data.tags.items() if not name.startswith("mlflow.")})
     row.update({f"param.{name}": value for name, value in run.data.params.items()})
@@ -167,10 +173,12 @@ def window_tables(runs: pd.DataFrame, rules: list[str], load=predictions_of) -> 
 
 
 def dm_tests(runs: pd.DataFrame, rules: list[str], tables: dict[str, dict]) -> pd.DataFrame:
-    """Diebold-Mariano + HLN of every penalty against its ERM twin (same split and model), per rule and
+    """Diebold-Mariano + HLN of every penalty against its ERM twin (same split, model and sampling), per rule and
     loss, with Holm-adjusted p-values over each rule's family of comparisons."""
     rows = []
-    for (split_id, model), group in runs.groupby(["split_id", "model"], sort=True):
+    sampling = runs["sampling"] if "sampling" in runs else grid_stats.PROTOCOL_DEFAULTS["sampling"]
+    for (split_id, model, _), group in runs.assign(sampling=sampling).groupby(["split_id", "model", "sampling"],
+                                                                               sort=True):
         erm = group[group["penalty"] == grid_stats.BASELINE_PENALTY]["run_id"].tolist()
         others = group[~group["penalty"].isin([grid_stats.BASELINE_PENALTY, grid_stats.NOT_APPLICABLE])]
         if not erm or others.empty:

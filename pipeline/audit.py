@@ -15,7 +15,7 @@ from pathlib import Path
 
 import yaml
 
-from pipeline import provenance, tracking
+from pipeline import environments, provenance, tracking
 from pipeline.errors import InputError
 
 CONFIG_ARTIFACT = "config/resolved_config.yaml"
@@ -167,9 +167,10 @@ def describe_run(client, run, root: Path | str, results_dir: str, clean_dir: str
         "run_id": run_id, "experiment_id": run.info.experiment_id, "status": run.info.status,
         "started": when(run.info.start_time), "run_name": run.info.run_name,
         "identity": {k: tags.get(k) for k in ("split_id", "model", "family", "penalty", "seed", "selection_rule",
-                                               "selection_label")},
+                                               "selection_label", "sampling")},
         "split": {k: logged["split"].get(k) for k in ("split_id", "scheme", "sources", "target", "environment",
-                                                      "time_blocks", "gap_hours", "target_train_fraction")},
+                                                      "environment_fallback_from", "time_blocks", "gap_hours",
+                                                      "target_train_fraction")},
         "config": logged,
         "data_then": then, "data_now": now, "data_changed": changed_cities(then, now),
         "code_digest": tags.get("code_digest"), "package_digest": tags.get("package_digest"),
@@ -212,7 +213,8 @@ def format_show(info: dict, all_metrics: bool = False) -> str:
     else:
         lines.append("state: current")
     lines += ["", "split",
-              f"  id          {split['split_id']}  (scheme {split['scheme']}, environments: {split['environment']})",
+              f"  id          {split['split_id']}  (scheme {split['scheme']}, environments: "
+              f"{environments.describe(split)})",
               f"  sources     {', '.join(split['sources'] or [])}",
               f"  target      {split['target']}"]
     blocks = split.get("time_blocks") or {}
@@ -223,7 +225,9 @@ def format_show(info: dict, all_metrics: bool = False) -> str:
     lines.append(f"  gap hours   {split['gap_hours']}; target train fraction {split['target_train_fraction']}")
     lines += ["", "model",
               f"  {ident['model']} (family {ident['family']}), penalty {ident['penalty']}, seed {ident['seed']}",
-              f"  selection   {ident['selection_label'] or ident['selection_rule']}"]
+              f"  selection   {ident['selection_label'] or ident['selection_rule']}",
+              # runs logged before fit.sampling existed drew balanced batches
+              f"  sampling    {ident.get('sampling') or 'balanced (not tagged)'}"]
     lines += ["", "data digests (sha256 of the clean Parquet: when trained -> now)"]
     for city, digest in info["data_then"].items():
         now = info["data_now"].get(city)

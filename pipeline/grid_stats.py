@@ -29,7 +29,10 @@ HIGHER_IS_BETTER = frozenset({"pod", "csi", "ets"})
 BEST_AT_ONE = frozenset({"bias"})
 BASELINE_PENALTY = "erm"
 NOT_APPLICABLE = "na"  # penalty of families that are not gradient-trained
-ID_COLUMNS = ("split_id", "sources", "target", "model", "family", "penalty")
+# sampling and environment last: combo_label and split_label index the first six. A penalty is compared
+# with the ERM run of the same split, model AND sampling (pipeline.twins): other batches, other protocol.
+ID_COLUMNS = ("split_id", "sources", "target", "model", "family", "penalty", "sampling", "environment")
+PROTOCOL_DEFAULTS = {"sampling": "balanced", "environment": ""}  # run tables from before the columns existed
 ALPHA = 0.05  # level of every test, family-wise after the Holm correction
 MULTIPLE_COMPARISON_CAVEAT = (
     "Diebold-Mariano p-values are Holm-adjusted over every penalised-vs-ERM-twin comparison of the grid under "
@@ -188,11 +191,12 @@ def summarise(runs: pd.DataFrame, metric: str, rule: str) -> pd.DataFrame:
     seed_interval: pipeline.resampling.seed_interval (the seed range below 3 seeds). The 95 % interval
     over test origins (ci_*) needs the predictions artifacts and is joined in by `attach_tests`.
     rank = rank of the mean within its split (1 = best; ties averaged); mean_rank = average of a
-    combination's ranks over the splits. vs_erm_*: the penalty against the ERM run of the same split
-    and model (relative change of the mean, see the module docstring) and, per model x penalty,
+    combination's ranks over the splits. vs_erm_*: the penalty against the ERM run of the same split,
+    model and sampling (relative change of the mean, see the module docstring) and, per model x penalty,
     win/tie/loss over splits (tie: within stats.TIE_TOLERANCE of the ERM mean).
     """
     column = metric_column(runs.columns, metric, rule)
+    runs = runs.assign(**{c: runs[c] if c in runs else v for c, v in PROTOCOL_DEFAULTS.items()})
     rows = []
     for key, group in runs.groupby(list(ID_COLUMNS), sort=True, dropna=False):
         values = group[column].to_numpy(np.float64)
@@ -219,14 +223,14 @@ def summarise(runs: pd.DataFrame, metric: str, rule: str) -> pd.DataFrame:
 
 
 def _add_erm_comparison(summary: pd.DataFrame, column: str) -> pd.DataFrame:
-    erm = summary[summary["penalty"] == BASELINE_PENALTY].set_index(["split_id", "model"])
+    erm = summary[summary["penalty"] == BASELINE_PENALTY].set_index(["split_id", "model", "sampling"])
     summary = summary.copy()
     for name in ("vs_erm_change", "vs_erm_outcome", "vs_erm_wins", "vs_erm_ties", "vs_erm_losses", "vs_erm_missing"):
         summary[name] = np.nan
     penalised = ~summary["penalty"].isin([BASELINE_PENALTY, NOT_APPLICABLE])
     for (model, penalty), group in summary[penalised].groupby(["model", "penalty"]):
-        twins = [erm.loc[(split, model)] if (split, model) in erm.index else None
-                 for split in group["split_id"]]
+        twins = [erm.loc[(split, model, sampling)] if (split, model, sampling) in erm.index else None
+                 for split, sampling in zip(group["split_id"], group["sampling"])]
         base_mean = np.array([twin["mean"] if twin is not None else np.nan for twin in twins])
         summary.loc[group.index, "vs_erm_change"] = stats.relative_change(group["mean"].to_numpy(), base_mean)
         codes = stats.outcome_codes(as_loss(group["mean"], column), as_loss(base_mean, column))

@@ -17,7 +17,7 @@ from pathlib import Path
 import pandas as pd
 import yaml
 
-from pipeline import provenance, selection, tracking
+from pipeline import provenance, selection, tracking, twins
 from pipeline.config import canonical_json
 from pipeline.atomic import write_json_atomic
 from pipeline.train import history_curves, predictions_frame, run_seed, state_for_saving, station_city_map
@@ -39,6 +39,11 @@ def tags_for(split: dict, job: dict, seed: int, code_digest: str) -> dict[str, s
             "selection_rule": job["selection"]["rule"], "code_digest": code_digest,
             "family_code_digest": provenance.training_code_digest([job["model"]["family"]]),
             "package_digest": provenance.source_digest(["."])}
+    # The protocol a run shares with its ERM twin (pipeline.twins): how its batches were drawn ("na" for
+    # closed-form families, which draw none), and whether its split fell back to a finer environment unit.
+    tags["sampling"] = job["fit"].get("sampling", twins.DEFAULT_SAMPLING) if job["penalty"] is not None else "na"
+    if split.get("environment_fallback_from"):
+        tags["environment_fallback_from"] = split["environment_fallback_from"]
     tags.update({f"data_digest.{city}": digest for city, digest in split["input_digests"].items()})
     tags.update({f"git.{k}": v for k, v in provenance.git_state().items()})
     tags.update({f"version.{k}": v for k, v in provenance.package_versions().items()})
