@@ -35,8 +35,7 @@ def run(args) -> int:
     if grid_path.exists():
         from pipeline.commands.grid import grid_table
 
-        summary = grid_table(root / cfg.results_dir, cfg.report.metric, cfg.report.selection,
-                             int(cfg.report.bootstrap_samples))
+        summary = grid_table(root / cfg.results_dir, cfg.report.metric, cfg.report.selection)
         points, rho, p_value = shift_data.error_vs_shift(shift, summary, args.measure)
         correlation = {"measure": args.measure, "metric": summary["metric"].iloc[0], "rho": rho, "p_value": p_value,
                        "n_splits": len(points), "selection": selection.label(cfg.report.selection),
