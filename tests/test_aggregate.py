@@ -89,7 +89,8 @@ def test_diebold_mariano_recomputed_from_the_artifacts(grid):
     # hourly origins, horizon 3 h: windows up to 2 origins apart overlap, so 2 Bartlett lags
     expected = diebold_mariano(d.to_numpy(), 2)
     dm = pd.read_csv(grid["root"] / "results" / "grid_dm.csv")
-    row = dm[(dm.split_id == SPLIT_IDS[2]) & (dm.selection_rule == "source-holdout") & (dm.dm_loss == "absolute")].iloc[0]
+    chosen = (dm.split_id == SPLIT_IDS[2]) & (dm.selection_rule == "source-holdout") & (dm.dm_loss == "absolute")
+    row = dm[chosen].iloc[0]
     assert row["dm_n"] == 40 and row["dm_lags"] == 2
     assert row["dm_hln"] == pytest.approx(expected.hln_statistic) and row["dm_p"] == pytest.approx(expected.p_value)
     assert row["dm_hln"] < 0  # irm's errors are built smaller on this split

@@ -155,7 +155,8 @@ def test_after_holm_the_penalty_wins_where_the_mechanism_changes_and_loses_where
     # The report opens with that verdict, split by the scenario's declared ground truth (config/data/sem.yaml)
     page = (results / "report.html").read_text()
     assert re.findall(r'<section id="([a-z]+)"', page)[0] == "verdict"
-    verdict = html.unescape(re.sub(r"<[^>]+>", " ", page.split('<section id="verdict">')[1].split("</section>")[0]))
+    section = page.split('<section id="verdict">')[1].split("</section>")[0]
+    verdict = html.unescape(re.sub(r"<[^>]+>", " ", section))
     assert "linear + irm (where it can help, 1 splits): wins 1," in verdict
     assert "significant after Holm: wins 1, losses 0. So it helped." in verdict
     assert "linear + irm (where it cannot help, 1 splits): wins 0, ties 0, losses 1" in verdict

@@ -67,8 +67,8 @@ def grid_table(results_dir: Path, metric: str, rule: str, targets=None, models=N
     summary = grid_stats.summarise(runs, metric, rule)
     # Tests and intervals were computed by the aggregation over the WHOLE grid (the Holm family is every
     # comparison of the grid, whatever this view filters), so they are read, never recomputed here.
-    tables = {name: pd.read_csv(Path(results_dir) / f"grid_{name}.csv") if (Path(results_dir) / f"grid_{name}.csv").exists()
-              else None for name in ("dm", "intervals")}
+    paths = {name: Path(results_dir) / f"grid_{name}.csv" for name in ("dm", "intervals")}
+    tables = {name: pd.read_csv(path) if path.exists() else None for name, path in paths.items()}
     summary = grid_stats.attach_tests(summary, tables["dm"], tables["intervals"])
     summary["best"] = np.where(summary["best_in_split"], BEST, "")
     summary["penalty"] = summary["penalty"].map(grid_stats.penalty_display)

@@ -136,7 +136,8 @@ def horizon_curves(runs: pd.DataFrame, rule: str, variable: str):
     axes[0, 0].set_ylabel(grid_stats.metric_label("target_mae", variable))
     handles, labels = axes[0, 0].get_legend_handles_labels()
     fig.legend(handles, labels, loc="lower center", ncol=min(5, len(labels)), fontsize=8, frameon=False)
-    fig.suptitle(_title("Target MAE by forecast horizon (dashed = ERM)", rule))
+    fig.suptitle(_title(f"{grid_stats.metric_label('target_mae', variable)} by forecast horizon (dashed = ERM)",
+                        rule))
     fig.tight_layout(rect=(0, 0.1, 1, 1))
     return fig
 

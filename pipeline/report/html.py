@@ -171,8 +171,9 @@ def ranks_section(summary_all: pd.DataFrame, meta: dict, rule: str, dpi: int) ->
                      f"{E(dropped)}.</p>")
         if result["rejects"] and (each == rule or len(meta["rules"]) == 1):
             parts.append(_figure(figures.cd_chart(result, each), dpi,
-                                 _rule_caption("Mean ranks over target cities and Nemenyi critical difference "
-                                               f"(alpha {result['alpha']:g})", each), each))
+                                 _rule_caption(f"Mean ranks over target cities of {summary_all['metric_label'].iloc[0]}"
+                                               f" and Nemenyi critical difference (alpha {result['alpha']:g})",
+                                               each), each))
     parts.append(f'<p class="note">{E(grid_stats.MULTIPLE_COMPARISON_CAVEAT)}</p>')
     if len(meta["rules"]) > 1:
         parts.append(_figure(figures.selection_comparison(summary_all), dpi,
@@ -222,7 +223,9 @@ def provenance_section(runs: pd.DataFrame, meta: dict, rule: str) -> str:
     column = grid_stats.metric_column(runs.columns, meta["metric"], rule)
     table = pd.DataFrame({"split": [grid_stats.split_label(s, t) for s, t in zip(runs["sources"], runs["target"])],
                           "model": runs["model"], "penalty": runs["penalty"].map(grid_stats.penalty_display),
-                          "seed": runs["seed"], column: runs[column], "run_id": runs["run_id"],
+                          "seed": runs["seed"],
+                          f"{grid_stats.grid_metric_label(runs, column)} ({column})": runs[column],
+                          "run_id": runs["run_id"],
                           "code": runs.get("tag.code_digest", ""), "commit": runs.get("tag.git.commit", "")})
     table["commit"] = table["commit"].astype(str).str[:10]
     return ('<section id="provenance"><h2>Provenance</h2><p>Every number above is a mean over the runs below; '
