@@ -205,11 +205,9 @@ def cell_intervals(runs: pd.DataFrame, rules: list[str], tables: dict[str, dict]
         run_ids = group.sort_values("seed")["run_id"].tolist()
         horizon, stride = tables[run_ids[0]]["horizon"], tables[run_ids[0]]["stride"]
         for rule in rules:
-            for metric in window_stats.INTERVAL_METRICS:
-                result = window_stats.cell_interval([tables[r]["errors"][rule] for r in run_ids], metric, horizon,
-                                                    stride, n_boot)
-                rows.append({**dict(zip(["split_id", "model", "penalty"], key)), "selection_rule": rule,
-                             "metric": metric, **result})
+            results = window_stats.cell_intervals([tables[r]["errors"][rule] for r in run_ids], horizon, stride, n_boot)
+            rows += [{**dict(zip(["split_id", "model", "penalty"], key)), "selection_rule": rule, "metric": metric,
+                      **result} for metric, result in results.items()]
     return pd.DataFrame(rows, columns=["split_id", "model", "penalty", "selection_rule", "metric", "ci_low",
                                       "ci_high", "ci_block", "ci_origins", "point"])
 

@@ -64,7 +64,8 @@ def moving_block_replicates(values: np.ndarray, statistic: Callable[[np.ndarray]
                             n_boot: int, seed: int = 0, chunk: int = 500) -> np.ndarray:
     """`statistic` of each moving-block resample of the rows of `values` (n, features).
 
-    `statistic` maps resampled column sums (r, features) to r values; using sums keeps ratio statistics
+    `statistic` maps resampled column sums (r, features) to r values (or to (r, m) for m statistics read
+    off the same resamples); using sums keeps ratio statistics
     (an MAE is a sum of errors over a count of pairs) exact for rows of unequal weight and for origins
     missing from the grid (a row of zeros). Chunks bound memory; the draws are those of
     `moving_block_starts` whatever the chunk size.

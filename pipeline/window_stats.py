@@ -139,44 +139,51 @@ def _metric_from_sums(metric: str, sums: np.ndarray, scales: np.ndarray) -> np.n
     return per_seed.mean(axis=-1)
 
 
-def cell_interval(seed_errors: list[pd.DataFrame], metric: str, horizon: int, stride: int, n_boot: int,
-                  seed: int = 0) -> dict:
-    """95 % moving-block bootstrap interval over test origins of one cell's metric (mean over seeds).
+def cell_intervals(seed_errors: list[pd.DataFrame], horizon: int, stride: int, n_boot: int,
+                   seed: int = 0) -> dict[str, dict]:
+    """95 % moving-block bootstrap interval over test origins of one cell, for every metric in
+    INTERVAL_METRICS (each the mean over seeds); {metric: {ci_low, ci_high, ci_block, ci_origins, point}}.
 
     Every seed's windows are laid on the stride grid of the cell's origins (a missing origin is a row of
     zeros: it adds neither error nor pairs), and blocks of `resampling.block_length` consecutive grid
     origins are resampled for all seeds and stations at once, so the dependence between overlapping
     windows, between stations on the same hours and between seeds on the same test data stays inside a
-    block. `point` is the statistic on the original sample: it equals the cell mean (checked in tests).
+    block. All metrics are read off the same resamples (one pass). `point` is the statistic on the
+    original sample: it equals the cell mean of the logged metric (checked in tests/test_window_stats.py).
     """
     empty = {"ci_low": np.nan, "ci_high": np.nan, "ci_block": np.nan, "ci_origins": 0, "point": np.nan}
-    if metric not in INTERVAL_METRICS or not seed_errors:
-        return empty
     frames = [e for e in seed_errors if len(e)]
-    if len(frames) != len(seed_errors):
-        return empty
-    stations = sorted(set().union(*(e.index.get_level_values("station_id") for e in frames)))
-    origins = pd.DatetimeIndex(sorted(set().union(*(e.index.get_level_values("origin") for e in frames))))
+    if not frames or len(frames) != len(seed_errors):
+        return {metric: dict(empty) for metric in INTERVAL_METRICS}
+    stations = np.unique(np.concatenate([e.index.get_level_values("station_id").to_numpy(str) for e in frames]))
+    origins = pd.DatetimeIndex(np.unique(np.concatenate(
+        [e.index.get_level_values("origin").to_numpy("datetime64[ns]") for e in frames]))).tz_localize("UTC")
     n = int(positions_on_grid(origins, stride).max()) + 1
     values = np.zeros((n, len(frames), len(stations), 3))
     scales = np.full((len(frames), len(stations)), np.nan)
     for k, errors in enumerate(frames):
         rows = positions_on_grid(pd.DatetimeIndex(errors.index.get_level_values("origin")), stride, origins.min())
-        cols = np.searchsorted(stations, errors.index.get_level_values("station_id"))
+        cols = np.searchsorted(stations, errors.index.get_level_values("station_id").to_numpy(str))
         np.add.at(values, (rows, k, cols), errors[["abs_sum", "sq_sum", "count"]].to_numpy(np.float64))
         scales[k] = errors.groupby(level="station_id")["naive_scale"].first().reindex(stations).to_numpy()
     block = resampling.block_length(horizon, stride, n)
     flat = values.reshape(n, -1)
 
-    def statistic(sums: np.ndarray) -> np.ndarray:
-        return _metric_from_sums(metric, sums.reshape(len(sums), len(frames), len(stations), 3), scales)
+    def statistic(sums: np.ndarray) -> np.ndarray:  # (r, metrics)
+        shaped = sums.reshape(len(sums), len(frames), len(stations), 3)
+        return np.stack([_metric_from_sums(metric, shaped, scales) for metric in INTERVAL_METRICS], axis=1)
 
-    point = float(statistic(flat.sum(axis=0, keepdims=True))[0])
+    points = statistic(flat.sum(axis=0, keepdims=True))[0]
     if n < 2:
-        return {**empty, "ci_origins": n, "point": point}
-    low, high = resampling.percentile_interval(
-        resampling.moving_block_replicates(flat, statistic, block, n_boot, seed))
-    return {"ci_low": low, "ci_high": high, "ci_block": block, "ci_origins": n, "point": point}
+        return {metric: {**empty, "ci_origins": n, "point": float(point)}
+                for metric, point in zip(INTERVAL_METRICS, points)}
+    replicates = resampling.moving_block_replicates(flat, statistic, block, n_boot, seed)
+    results = {}
+    for j, metric in enumerate(INTERVAL_METRICS):
+        low, high = resampling.percentile_interval(replicates[:, j])
+        results[metric] = {"ci_low": low, "ci_high": high, "ci_block": block, "ci_origins": n,
+                           "point": float(points[j])}
+    return results
 
 
 def holm_by_family(dm: pd.DataFrame) -> pd.Series:

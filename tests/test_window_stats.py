@@ -41,7 +41,7 @@ def logged_scores(frame: pd.DataFrame) -> dict:
 def test_interval_point_is_the_cell_mean_of_the_logged_metric_and_lies_inside(metric):
     frames = [predictions(seed) for seed in (0, 1, 2)]
     errors = [window_stats.window_errors(f, RULE) for f in frames]
-    result = window_stats.cell_interval(errors, metric, HORIZON, STRIDE, n_boot=400)
+    result = window_stats.cell_intervals(errors, HORIZON, STRIDE, n_boot=400)[metric]
     cell_mean = np.mean([logged_scores(f)[metric] for f in frames])  # the grid's cell mean over seeds
     assert result["point"] == pytest.approx(cell_mean, rel=1e-10)
     assert result["ci_low"] < cell_mean < result["ci_high"]
@@ -49,9 +49,11 @@ def test_interval_point_is_the_cell_mean_of_the_logged_metric_and_lies_inside(me
     assert result["ci_block"] >= HORIZON // STRIDE
 
 
-def test_metrics_without_a_per_window_form_get_no_interval():
+def test_only_metrics_with_a_per_window_form_get_an_interval_and_an_empty_seed_gives_none():
     errors = [window_stats.window_errors(predictions(0), RULE)]
-    assert np.isnan(window_stats.cell_interval(errors, "csi", HORIZON, STRIDE, 100)["ci_low"])
+    assert set(window_stats.cell_intervals(errors, HORIZON, STRIDE, 100)) == {"mae", "mse", "rmse", "mase"}
+    empty = errors[0].iloc[:0]
+    assert np.isnan(window_stats.cell_intervals([errors[0], empty], HORIZON, STRIDE, 100)["mae"]["ci_low"])
 
 
 def test_paired_dm_uses_the_window_overlap_and_keeps_missing_origins_apart():
