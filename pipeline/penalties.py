@@ -1,8 +1,9 @@
 """Invariance penalties: ERM, IRMv1, V-REx and Group DRO as one callable interface.
 
-Reads nothing and writes nothing: pure torch. Obeys the `penalty` config group: `name`, `weight`,
-`warmup_steps` and the per-penalty extras (`warmup_weight`, `rescale_heavy`, `reset_optimizer`, and
-`eta` for groupdro, `irm_gradient` for irm).
+Reads nothing and writes nothing: pure torch, imported inside the functions that compute, so that config
+validation on the DAG-planning path builds a penalty (checking its settings) without loading torch.
+Obeys the `penalty` config group: `name`, `weight`, `warmup_steps` and the per-penalty extras
+(`warmup_weight`, `rescale_heavy`, `reset_optimizer`, and `eta` for groupdro, `irm_gradient` for irm).
 
 Objective convention (one for every penalty, so weights are comparable between them):
 
@@ -24,10 +25,12 @@ estimates from the ERM phase do not fit the sudden jump in gradient scale (same 
 from __future__ import annotations
 
 import math
-
-import torch
+from typing import TYPE_CHECKING
 
 from pipeline.errors import InputError
+
+if TYPE_CHECKING:
+    import torch
 
 PENALTY_NAMES = ("erm", "irm", "vrex", "groupdro")
 
@@ -37,6 +40,8 @@ def irm_gradient_closed_form(pred: torch.Tensor, target: torch.Tensor) -> torch.
 
     Squared error only; differentiable w.r.t. `pred` (the penalty backpropagates through it).
     """
+    import torch
+
     return 2.0 * torch.mean((pred - target) * pred)
 
 
@@ -46,6 +51,8 @@ def irm_gradient_autograd(pred: torch.Tensor, target: torch.Tensor) -> torch.Ten
     This is the form given by Arjovsky et al. (2019) for any loss; `create_graph=True` keeps it
     differentiable so the squared gradient can itself be minimised.
     """
+    import torch
+
     scale = torch.ones((), dtype=pred.dtype, device=pred.device, requires_grad=True)
     risk = torch.mean((pred * scale - target) ** 2)
     (grad,) = torch.autograd.grad(risk, scale, create_graph=True)
@@ -92,6 +99,8 @@ class Penalty:
                  step: int) -> tuple[torch.Tensor, dict[str, float]]:
         if len(preds_by_env) == 0 or len(preds_by_env) != len(targets_by_env):
             raise ValueError("preds_by_env and targets_by_env must be non-empty lists of equal length")
+        import torch
+
         risks = torch.stack([torch.mean((p - t) ** 2) for p, t in zip(preds_by_env, targets_by_env)])
         weight = self.effective_weight(step)
         term, extra_logs = self.penalty_term(risks, preds_by_env, targets_by_env, weight)
@@ -110,6 +119,8 @@ class ERMPenalty(Penalty):
     name = "erm"
 
     def penalty_term(self, risks, preds, targets, weight):
+        import torch
+
         return torch.zeros((), dtype=risks.dtype, device=risks.device), {}
 
 
@@ -130,6 +141,8 @@ class IRMv1Penalty(Penalty):
         self.irm_gradient = irm_gradient
 
     def penalty_term(self, risks, preds, targets, weight):
+        import torch
+
         gradient_of = irm_gradient_closed_form if self.irm_gradient == "closed_form" else irm_gradient_autograd
         grads = torch.stack([gradient_of(p, t) for p, t in zip(preds, targets)])
         return torch.mean(grads ** 2), {}
@@ -145,6 +158,8 @@ class VRExPenalty(Penalty):
     name = "vrex"
 
     def penalty_term(self, risks, preds, targets, weight):
+        import torch
+
         return torch.mean((risks - risks.mean()) ** 2), {}
 
 
@@ -172,6 +187,8 @@ class GroupDROPenalty(Penalty):
         self.q_ = None
 
     def penalty_term(self, risks, preds, targets, weight):
+        import torch
+
         n_groups = risks.shape[0]
         if self.q_ is None:
             self.q_ = torch.full((n_groups,), 1.0 / n_groups, dtype=risks.dtype, device=risks.device)

@@ -17,10 +17,10 @@ import pandas as pd
 
 from pipeline import selection
 from pipeline.environments import rotation_groups
+from pipeline.fit_config import FitConfig
 from pipeline.metrics import forecast_scores, mse
 from pipeline.models import build_model
 from pipeline.penalties import build_penalty
-from pipeline.train_loop import FitConfig
 
 
 def subset(window_set, mask: np.ndarray):

@@ -21,62 +21,19 @@ from __future__ import annotations
 
 import math
 import time
-from dataclasses import dataclass, field, fields
-from typing import Any, Protocol
+from dataclasses import dataclass, field
+from typing import Any
 
 import numpy as np
 import torch
 
 from pipeline.errors import InputError
+from pipeline.fit_config import FitConfig
 from pipeline.penalties import Penalty, build_penalty
+from pipeline.window_check import WindowSetLike, check_window_set
 
 EVAL_CHUNK = 4096  # windows per forward pass at evaluation/prediction: bounds memory, not results
 EARLY_STOP_SET = "source"  # validation set whose overall MSE drives early stopping and best_step
-
-
-class WindowSetLike(Protocol):
-    """The attributes of pipeline.windows.WindowSet that training needs (duck typing, no import)."""
-
-    X: np.ndarray  # float32 (n, L, F), scaled features
-    y: np.ndarray  # float32 (n, H), scaled target
-    env: np.ndarray  # int64 (n,), index into env_names
-    env_names: list
-    target_index: int
-
-
-@dataclass
-class FitConfig:
-    """Optimisation settings. Defaults are sized for a 2-core CPU demo, not for best accuracy."""
-
-    max_steps: int = 300  # optimizer steps (batches), not epochs: cost is the same whatever n is
-    batch_size: int = 128  # windows per step in total, split equally between environments
-    lr: float = 1e-3  # Adam learning rate (Adam's usual default)
-    weight_decay: float = 0.0  # L2 term inside Adam (coupled, as torch.optim.Adam does it)
-    eval_every: int = 25  # steps between validation evaluations / snapshots
-    patience: int = 8  # evaluations without improvement of val/source/all before stopping
-    grad_clip: float = 1.0  # max global L2 norm of the gradient; 0 disables clipping
-    threads: int = 1  # torch.set_num_threads; match the job's CPU allocation
-
-    def __post_init__(self):
-        for name in ("max_steps", "batch_size", "eval_every", "patience", "threads"):
-            value = getattr(self, name)
-            if isinstance(value, bool) or int(value) != value or value < 1:
-                raise InputError(f"must be an integer >= 1, got {value!r}", field=f"fit.{name}")
-            setattr(self, name, int(value))
-        for name in ("lr", "weight_decay", "grad_clip"):
-            value = float(getattr(self, name))
-            if not math.isfinite(value) or value < 0 or (name == "lr" and value == 0):
-                raise InputError(f"must be a finite number {'> 0' if name == 'lr' else '>= 0'}, "
-                                 f"got {value!r}", field=f"fit.{name}")
-            setattr(self, name, value)
-
-    @classmethod
-    def from_dict(cls, values: dict | None) -> "FitConfig":
-        known = {f.name for f in fields(cls)}
-        unknown = sorted(set(values or {}) - known)
-        if unknown:
-            raise InputError(f"unknown key {unknown[0]!r} (known: {', '.join(sorted(known))})", field="fit")
-        return cls(**(values or {}))
 
 
 @dataclass
@@ -104,23 +61,6 @@ class EnvironmentBalancedSampler:
         """One index tensor per environment (in the order of self.env_ids), each of length per_env."""
         return [idx[torch.randint(len(idx), (self.per_env,), generator=self.generator)]
                 for idx in self.indices]
-
-
-def check_window_set(windows: Any, what: str) -> None:
-    """One-line InputError when a window set lacks fields, has wrong shapes or non-finite values."""
-    for attr in ("X", "y", "env", "env_names"):
-        if not hasattr(windows, attr):
-            raise InputError(f"missing attribute {attr!r}", field=what)
-    X, y, env = windows.X, windows.y, windows.env
-    if X.ndim != 3 or y.ndim != 2 or env.ndim != 1 or not (len(X) == len(y) == len(env)):
-        raise InputError(f"expected X (n, L, F), y (n, H), env (n,), got {X.shape}, {y.shape}, {env.shape}",
-                         field=what)
-    for name, arr in (("X", X), ("y", y)):
-        bad = int(np.size(arr) - np.count_nonzero(np.isfinite(arr)))
-        if bad:
-            raise InputError(f"{bad} non-finite values", field=f"{what}.{name}")
-    if len(env) and (env.min() < 0 or env.max() >= len(windows.env_names)):
-        raise InputError(f"env index outside 0..{len(windows.env_names) - 1}", field=f"{what}.env")
 
 
 def predict_network(network: torch.nn.Module, X: np.ndarray) -> np.ndarray:

@@ -8,7 +8,7 @@ from torch import nn
 
 from pipeline import train_loop
 from pipeline.errors import InputError
-from pipeline.models.neural import LinearMap, MLPNet
+from pipeline.models.networks import LinearMap, MLPNet
 from pipeline.penalties import ERMPenalty, build_penalty
 from pipeline.train_loop import (EnvironmentBalancedSampler, FitConfig, predict_network,
                                  train_network)

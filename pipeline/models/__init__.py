@@ -1,16 +1,19 @@
 """Model families behind one sklearn-like interface (see pipeline.models.base for the contract).
 
 Reads nothing and writes nothing. `build_model(family, params, seed)` obeys the `model` config group:
-`model.family` picks the class, the other keys are that family's `Params`.
+`model.family` picks the class, the other keys are that family's `Params`. Importing the registry loads
+no torch (the family modules import it inside the methods that train), so config validation and the
+DAG plan use it freely.
 """
 
 from __future__ import annotations
 
 from pipeline.errors import InputError
-from pipeline.models.base import ClosedFormModel, ForecastModel, NotFittedError, TorchForecaster
+from pipeline.models.base import ClosedFormModel, ForecastModel, NotFittedError
 from pipeline.models.baselines import Persistence, SeasonalNaive
-from pipeline.models.linear_models import LinearForecaster, RidgeLags, VectorAutoregression
-from pipeline.models.neural import GRUForecaster, LSTMForecaster, MLPForecaster, TransformerForecaster
+from pipeline.models.linear_models import RidgeLags, VectorAutoregression
+from pipeline.models.neural import (GRUForecaster, LinearForecaster, LSTMForecaster, MLPForecaster,
+                                    TorchForecaster, TransformerForecaster)
 
 MODEL_FAMILIES: dict[str, type[ForecastModel]] = {
     cls.family: cls

@@ -1,8 +1,9 @@
-"""The contract every model family follows, and the wrapper that trains torch networks through it.
+"""The contract every model family follows, and the base of the closed-form families.
 
 Reads in-memory window sets (X (n, L, F), y (n, H), env, env_names, target_index; see
-pipeline.train_loop.WindowSetLike); writes nothing. Obeys the `model` config group: the keys of the
-family's `Params` dataclass, plus the run seed.
+pipeline.window_check.WindowSetLike); writes nothing. Obeys the `model` config group: the keys of the
+family's `Params` dataclass, plus the run seed. No torch here: the closed-form families, the registry and
+config validation never load it (gradient-trained families: pipeline.models.neural.TorchForecaster).
 
 Contract (sklearn-like): `__init__(seed=0, **params)` only checks the parameter NAMES and stores them
 unchanged (`self.seed`, `self.params`); values are validated in `fit` (Params.__post_init__).
@@ -21,10 +22,9 @@ from dataclasses import asdict, dataclass, fields
 from typing import Any, ClassVar
 
 import numpy as np
-import torch
 
 from pipeline.errors import InputError
-from pipeline.train_loop import FitConfig, check_window_set, predict_network, train_network
+from pipeline.window_check import check_window_set
 
 
 META_PREFIX = "_meta."  # state_dict keys that hold shapes, not weights
@@ -37,7 +37,7 @@ class NotFittedError(RuntimeError):
 
 def as_numpy(value) -> np.ndarray:
     """A copy as a numpy array, whether the stored value is a torch tensor or array-like."""
-    if isinstance(value, torch.Tensor):
+    if hasattr(value, "detach"):  # a torch tensor; duck-typed so closed-form families never load torch
         return value.detach().cpu().numpy().copy()
     return np.array(value)
 
@@ -191,68 +191,3 @@ class ClosedFormModel(ForecastModel):
 
     def _set_weights(self, weights: dict[str, np.ndarray]) -> None:
         pass
-
-
-class TorchForecaster(ForecastModel):
-    """Gradient-trained families: a subclass only says how to build its nn.Module.
-
-    After fit the model holds the snapshot of `best_step_` (lowest `val/source/all`) when a validation
-    set named "source" was given, otherwise the weights of the last step; `use_snapshot(step)` switches
-    to any step in `snapshot_steps_` (e.g. for another model-selection rule).
-    """
-
-    trainable = True
-
-    def build_network(self, lookback: int, n_features: int, horizon: int) -> torch.nn.Module:
-        raise NotImplementedError
-
-    def fit(self, train, val=None, penalty=None, fit_config=None) -> "TorchForecaster":
-        self._start_fit(train)
-        if isinstance(fit_config, dict):
-            fit_config = FitConfig.from_dict(fit_config)
-        shape = (self.lookback_, self.n_features_, self.horizon_)
-        self.network_, result = train_network(lambda: self.build_network(*shape), train, val=val,
-                                              penalty=penalty, fit_config=fit_config, seed=self.seed)
-        self.history_ = result.history
-        self._snapshots = result.snapshots
-        self.snapshot_steps_ = sorted(result.snapshots)
-        self.best_step_ = result.best_step
-        self.stop_reason_ = result.stop_reason
-        self.steps_trained_ = result.final_step
-        self.n_parameters_ = sum(p.numel() for p in self.network_.parameters())
-        if self.best_step_ is not None:
-            self.use_snapshot(self.best_step_)
-        self._finish_fit()
-        return self
-
-    def use_snapshot(self, step: int) -> "TorchForecaster":
-        self._check_fitted()
-        snapshots = getattr(self, "_snapshots", {})
-        if step not in snapshots:
-            raise InputError(f"no snapshot at step {step} (stored: {sorted(snapshots)})", field="step")
-        self.network_.load_state_dict(snapshots[step])
-        return self
-
-    def predict(self, X: np.ndarray) -> np.ndarray:
-        X = self._check_X(X)
-        if len(X) == 0:
-            return np.zeros((0, self.horizon_), dtype=np.float32)
-        return predict_network(self.network_, X)
-
-    def state_dict(self) -> dict:
-        weights = {k: v.detach().clone() for k, v in self.network_.state_dict().items()}
-        meta = {k: torch.from_numpy(v) for k, v in self._meta().items()}
-        return {**weights, **meta}
-
-    def load_state_dict(self, state: dict) -> "TorchForecaster":
-        weights = self._load_meta(state)
-        with torch.random.fork_rng(devices=[]):  # building the module draws init values: keep RNG
-            self.network_ = self.build_network(self.lookback_, self.n_features_, self.horizon_)
-        try:
-            self.network_.load_state_dict({k: torch.as_tensor(np.asarray(v)) for k, v in weights.items()})
-        except RuntimeError as exc:  # wrong family or hyperparameters: keep it to one line
-            first_line = str(exc).strip().splitlines()[0]
-            raise InputError(f"does not fit family {self.family!r} with {self.params}: {first_line}",
-                             field="state_dict") from None
-        self.n_parameters_ = sum(p.numel() for p in self.network_.parameters())
-        return self

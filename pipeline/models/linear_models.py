@@ -1,8 +1,8 @@
-"""Linear families: ridge on flattened lags (scikit-learn), a least-squares VAR iterated over the
-horizon, and a gradient-trained linear map (the simplest family that accepts a penalty).
+"""Closed-form linear families: ridge on flattened lags (scikit-learn) and a least-squares VAR iterated
+over the horizon. The gradient-trained `linear` family, which takes penalties, is in pipeline.models.neural.
 
 Reads window sets; writes nothing. Obeys `model.alpha` (ridge), `model.order`, `model.ridge`,
-`model.max_rows` (var); `linear` has no parameters of its own.
+`model.max_rows` (var). No torch.
 """
 
 from __future__ import annotations
@@ -12,8 +12,7 @@ from dataclasses import dataclass
 import numpy as np
 
 from pipeline.errors import InputError
-from pipeline.models.base import ClosedFormModel, TorchForecaster, check_positive_ints
-from pipeline.models.neural import LinearMap
+from pipeline.models.base import ClosedFormModel, check_positive_ints
 
 
 class RidgeLags(ClosedFormModel):
@@ -97,16 +96,3 @@ class VectorAutoregression(ClosedFormModel):
 
     def _set_weights(self, weights):
         self.coef_ = weights["coef"]
-
-
-class LinearForecaster(TorchForecaster):
-    """Same map as ridge (flattened lags -> H) but trained by the shared loop, so it takes penalties."""
-
-    family = "linear"
-
-    @dataclass
-    class Params:
-        pass
-
-    def build_network(self, lookback, n_features, horizon):
-        return LinearMap(lookback, n_features, horizon)

@@ -1,95 +1,114 @@
-"""Neural forecasting families: the nn.Modules and their thin family wrappers (no training code here).
+"""Gradient-trained families: the wrapper that trains a torch network through the model contract, and
+the thin family classes (linear, mlp, lstm, gru, transformer) that say which network to build.
 
-Reads nothing and writes nothing; obeys the `model` config group keys of each family's `Params`.
-Every network maps a batch of windows X (B, L, F) to forecasts (B, H) of the scaled target; training
-lives in pipeline.train_loop and the wrapper contract in pipeline.models.base.TorchForecaster.
+Reads in-memory window sets; writes nothing; obeys the `model` config group keys of each family's
+`Params`, plus `fit` (pipeline.fit_config.FitConfig) and a penalty when fitting. torch, the training loop
+and the networks (pipeline.models.networks) are imported inside the methods that use them: the registry,
+config validation and the DAG plan read `Params` and `trainable` from these classes without loading torch.
 Defaults are small on purpose (a 2-core CPU demo trains dozens of runs), not tuned for accuracy.
 """
 
 from __future__ import annotations
 
-import math
 from dataclasses import dataclass
+from typing import TYPE_CHECKING
 
-import torch
-from torch import nn
+import numpy as np
 
 from pipeline.errors import InputError
-from pipeline.models.base import TorchForecaster, check_fraction, check_positive_ints
+from pipeline.fit_config import FitConfig
+from pipeline.models.base import ForecastModel, check_fraction, check_positive_ints
+
+if TYPE_CHECKING:
+    import torch
 
 
-class LinearMap(nn.Module):
-    """One affine map from all flattened lags (L * F values) to the H horizon steps."""
+class TorchForecaster(ForecastModel):
+    """Gradient-trained families: a subclass only says how to build its nn.Module.
 
-    def __init__(self, lookback: int, n_features: int, horizon: int):
-        super().__init__()
-        self.head = nn.Linear(lookback * n_features, horizon)
+    After fit the model holds the snapshot of `best_step_` (lowest `val/source/all`) when a validation
+    set named "source" was given, otherwise the weights of the last step; `use_snapshot(step)` switches
+    to any step in `snapshot_steps_` (e.g. for another model-selection rule).
+    """
 
-    def forward(self, X: torch.Tensor) -> torch.Tensor:
-        return self.head(X.flatten(1))
+    trainable = True
+
+    def build_network(self, lookback: int, n_features: int, horizon: int) -> "torch.nn.Module":
+        raise NotImplementedError
+
+    def fit(self, train, val=None, penalty=None, fit_config=None) -> "TorchForecaster":
+        from pipeline.train_loop import train_network
+
+        self._start_fit(train)
+        if isinstance(fit_config, dict):
+            fit_config = FitConfig.from_dict(fit_config)
+        shape = (self.lookback_, self.n_features_, self.horizon_)
+        self.network_, result = train_network(lambda: self.build_network(*shape), train, val=val,
+                                              penalty=penalty, fit_config=fit_config, seed=self.seed)
+        self.history_ = result.history
+        self._snapshots = result.snapshots
+        self.snapshot_steps_ = sorted(result.snapshots)
+        self.best_step_ = result.best_step
+        self.stop_reason_ = result.stop_reason
+        self.steps_trained_ = result.final_step
+        self.n_parameters_ = sum(p.numel() for p in self.network_.parameters())
+        if self.best_step_ is not None:
+            self.use_snapshot(self.best_step_)
+        self._finish_fit()
+        return self
+
+    def use_snapshot(self, step: int) -> "TorchForecaster":
+        self._check_fitted()
+        snapshots = getattr(self, "_snapshots", {})
+        if step not in snapshots:
+            raise InputError(f"no snapshot at step {step} (stored: {sorted(snapshots)})", field="step")
+        self.network_.load_state_dict(snapshots[step])
+        return self
+
+    def predict(self, X: np.ndarray) -> np.ndarray:
+        from pipeline.train_loop import predict_network
+
+        X = self._check_X(X)
+        if len(X) == 0:
+            return np.zeros((0, self.horizon_), dtype=np.float32)
+        return predict_network(self.network_, X)
+
+    def state_dict(self) -> dict:
+        import torch
+
+        weights = {k: v.detach().clone() for k, v in self.network_.state_dict().items()}
+        meta = {k: torch.from_numpy(v) for k, v in self._meta().items()}
+        return {**weights, **meta}
+
+    def load_state_dict(self, state: dict) -> "TorchForecaster":
+        import torch
+
+        weights = self._load_meta(state)
+        with torch.random.fork_rng(devices=[]):  # building the module draws init values: keep RNG
+            self.network_ = self.build_network(self.lookback_, self.n_features_, self.horizon_)
+        try:
+            self.network_.load_state_dict({k: torch.as_tensor(np.asarray(v)) for k, v in weights.items()})
+        except RuntimeError as exc:  # wrong family or hyperparameters: keep it to one line
+            first_line = str(exc).strip().splitlines()[0]
+            raise InputError(f"does not fit family {self.family!r} with {self.params}: {first_line}",
+                             field="state_dict") from None
+        self.n_parameters_ = sum(p.numel() for p in self.network_.parameters())
+        return self
 
 
-class MLPNet(nn.Module):
-    """Flattened lags -> `layers` x (Linear, ReLU, Dropout) of width `hidden` -> Linear to H."""
+class LinearForecaster(TorchForecaster):
+    """Same map as ridge (flattened lags -> H) but trained by the shared loop, so it takes penalties."""
 
-    def __init__(self, lookback: int, n_features: int, horizon: int, hidden: int, layers: int,
-                 dropout: float):
-        super().__init__()
-        blocks, width = [], lookback * n_features
-        for _ in range(layers):
-            blocks += [nn.Linear(width, hidden), nn.ReLU(), nn.Dropout(dropout)]
-            width = hidden
-        self.body = nn.Sequential(*blocks)
-        self.head = nn.Linear(width, horizon)
+    family = "linear"
 
-    def forward(self, X: torch.Tensor) -> torch.Tensor:
-        return self.head(self.body(X.flatten(1)))
+    @dataclass
+    class Params:
+        pass
 
+    def build_network(self, lookback, n_features, horizon):
+        from pipeline.models.networks import LinearMap
 
-class RecurrentNet(nn.Module):
-    """LSTM or GRU over the L hours; the last hidden state is mapped to all H steps at once (direct
-    multi-step forecast, no iterated feeding of predictions)."""
-
-    def __init__(self, cell: str, n_features: int, horizon: int, hidden: int, layers: int, dropout: float):
-        super().__init__()
-        rnn_class = {"lstm": nn.LSTM, "gru": nn.GRU}[cell]
-        # torch applies dropout only between stacked layers and warns when there is a single layer.
-        self.rnn = rnn_class(n_features, hidden, num_layers=layers, batch_first=True,
-                             dropout=dropout if layers > 1 else 0.0)
-        self.head = nn.Linear(hidden, horizon)
-
-    def forward(self, X: torch.Tensor) -> torch.Tensor:
-        outputs, _ = self.rnn(X)
-        return self.head(outputs[:, -1])
-
-
-def sinusoidal_positions(length: int, d_model: int) -> torch.Tensor:
-    """Fixed sine/cosine position codes (Vaswani et al. 2017), shape (length, d_model)."""
-    position = torch.arange(length, dtype=torch.float32)[:, None]
-    frequency = torch.exp(torch.arange(0, d_model, 2, dtype=torch.float32) * (-math.log(10000.0) / d_model))
-    codes = torch.zeros(length, d_model)
-    codes[:, 0::2] = torch.sin(position * frequency)
-    codes[:, 1::2] = torch.cos(position * frequency[: d_model // 2])
-    return codes
-
-
-class TransformerNet(nn.Module):
-    """Per-hour linear embedding + fixed positions -> Transformer encoder -> last hour's state -> H."""
-
-    def __init__(self, lookback: int, n_features: int, horizon: int, d_model: int, heads: int,
-                 layers: int, ff: int, dropout: float):
-        super().__init__()
-        self.embed = nn.Linear(n_features, d_model)
-        self.register_buffer("positions", sinusoidal_positions(lookback, d_model), persistent=False)
-        layer = nn.TransformerEncoderLayer(d_model, heads, dim_feedforward=ff, dropout=dropout,
-                                           batch_first=True)
-        # Nested tensors only help with padding masks, which fixed-length windows never have.
-        self.encoder = nn.TransformerEncoder(layer, num_layers=layers, enable_nested_tensor=False)
-        self.head = nn.Linear(d_model, horizon)
-
-    def forward(self, X: torch.Tensor) -> torch.Tensor:
-        hidden = self.encoder(self.embed(X) + self.positions)
-        return self.head(hidden[:, -1])
+        return LinearMap(lookback, n_features, horizon)
 
 
 class MLPForecaster(TorchForecaster):
@@ -106,6 +125,8 @@ class MLPForecaster(TorchForecaster):
             check_fraction(self, "dropout")
 
     def build_network(self, lookback, n_features, horizon):
+        from pipeline.models.networks import MLPNet
+
         p = self.hparams_
         return MLPNet(lookback, n_features, horizon, p.hidden, p.layers, p.dropout)
 
@@ -125,6 +146,8 @@ class LSTMForecaster(TorchForecaster):
             check_fraction(self, "dropout")
 
     def build_network(self, lookback, n_features, horizon):
+        from pipeline.models.networks import RecurrentNet
+
         p = self.hparams_
         return RecurrentNet(self.cell, n_features, horizon, p.hidden, p.layers, p.dropout)
 
@@ -156,5 +179,7 @@ class TransformerForecaster(TorchForecaster):
                                  field="model.d_model")
 
     def build_network(self, lookback, n_features, horizon):
+        from pipeline.models.networks import TransformerNet
+
         p = self.hparams_
         return TransformerNet(lookback, n_features, horizon, p.d_model, p.heads, p.layers, p.ff, p.dropout)
