@@ -3,23 +3,30 @@
 Reads nothing and writes nothing: pure torch, imported inside the functions that compute, so that config
 validation on the DAG-planning path builds a penalty (checking its settings) without loading torch.
 Obeys the `penalty` config group: `name`, `weight`, `warmup_steps` and the per-penalty extras
-(`warmup_weight`, `rescale_heavy`, `reset_optimizer`, and `eta` for groupdro, `irm_gradient` for irm).
+(`warmup_weight`, `rescale_heavy`, `reset_optimizer`, and `eta` for groupdro, `estimator` and
+`irm_gradient` for irm).
 
 Objective convention (one for every penalty, so weights are comparable between them):
 
-    loss = mean_e R_e + w(step) * P
+    loss = sum_e a_e R_e + w(step) * P
 
 R_e is the mean squared error of environment e (over all windows and horizon steps of that environment
-in the batch); P is the penalty term; w(step) is the effective weight. We take the MEAN over environments,
-not the sum written in the papers: the IRMv1 authors' released code averages too [from memory], and the
+in the batch); P is the penalty term; w(step) is the effective weight; a_e is the weight of environment
+e's risk, set by the training loop's sampling (`fit.sampling`): 1/E with environment-balanced batches
+(the MEAN over environments; the default), the environment's share of the training windows with pooled
+ones (the risk term then estimates the pooled risk, as ERM on pooled data does). We take the mean, not
+the sum written in the papers: the IRMv1 authors' released code averages too [from memory], and the
 mean keeps the loss scale independent of the number of environments. A paper's sum-form objective is
 recovered from the logs as sum(risk/e) + w * penalty_value.
 
 Warm-up: w(step) = `warmup_weight` (default 0, i.e. plain ERM) for step < warmup_steps, then `weight`.
 When w > 1 the whole loss is divided by w, as in the IRMv1 reference implementation [from memory], so that
 gradient magnitudes stay comparable to ERM; this is on by default (`rescale_heavy=True`). The training loop
-asks `resets_optimizer_at(step)` and builds a fresh optimizer at the warm-up switch, because Adam's moment
-estimates from the ERM phase do not fit the sudden jump in gradient scale (same reference, [from memory]).
+asks `resets_optimizer_at(step)` and builds a fresh optimizer at the end of the warm-up, because Adam's
+moment estimates from the ERM phase do not fit the sudden jump in gradient scale (same reference, [from
+memory]). The reset, like the selection window after the warm-up (pipeline.train_loop), depends on the
+schedule only, never on the weight: an ERM run with the same `warmup_steps` gets the same treatment, which
+makes it the penalised run's twin (pipeline.twins checks the pairing when the DAG is planned).
 """
 
 from __future__ import annotations
@@ -33,6 +40,7 @@ if TYPE_CHECKING:
     import torch
 
 PENALTY_NAMES = ("erm", "irm", "vrex", "groupdro")
+IRM_ESTIMATORS = ("split_halves", "squared")  # penalty.extra.estimator of irm; the first is the default
 
 
 def irm_gradient_closed_form(pred: torch.Tensor, target: torch.Tensor) -> torch.Tensor:
@@ -80,31 +88,43 @@ class Penalty:
         self.rescale_heavy = bool(rescale_heavy)
         self.reset_optimizer = bool(reset_optimizer)
 
+    # Fewest windows of one environment a batch must hold for the term to be defined.
+    min_windows_per_env = 1
+
+    @property
+    def penalised(self) -> bool:
+        """True when the term can act: a penalty other than ERM with a weight above 0 at some step. Such a
+        run needs two or more training environments, otherwise it is ERM in disguise."""
+        return self.name != "erm" and max(self.weight, self.warmup_weight) > 0
+
     def effective_weight(self, step: int) -> float:
         return self.warmup_weight if step < self.warmup_steps else self.weight
 
     def resets_optimizer_at(self, step: int) -> bool:
-        """True at the one step where the weight switches from the warm-up value to `weight`."""
-        return (self.reset_optimizer and self.warmup_steps > 0 and step == self.warmup_steps
-                and self.weight != self.warmup_weight)
+        """True at the one step where the warm-up ends, whatever the weights: the ERM twin of a penalised
+        run, given the same `warmup_steps`, has its optimizer rebuilt at the same step."""
+        return self.reset_optimizer and self.warmup_steps > 0 and step == self.warmup_steps
 
     def reset(self) -> None:
         """Forget any state carried between steps (called by the training loop at the start of a fit)."""
 
-    def penalty_term(self, risks: torch.Tensor, preds: list[torch.Tensor],
-                     targets: list[torch.Tensor], weight: float) -> tuple[torch.Tensor, dict]:
+    def penalty_term(self, risks: torch.Tensor, preds: list[torch.Tensor], targets: list[torch.Tensor],
+                     weight: float, base_risk: torch.Tensor) -> tuple[torch.Tensor, dict]:
         raise NotImplementedError
 
     def __call__(self, preds_by_env: list[torch.Tensor], targets_by_env: list[torch.Tensor],
-                 step: int) -> tuple[torch.Tensor, dict[str, float]]:
+                 step: int, env_weights: torch.Tensor | None = None) -> tuple[torch.Tensor, dict[str, float]]:
+        """env_weights: the a_e of the module docstring (>= 0, summing to 1); None = 1/E each."""
         if len(preds_by_env) == 0 or len(preds_by_env) != len(targets_by_env):
             raise ValueError("preds_by_env and targets_by_env must be non-empty lists of equal length")
         import torch
 
         risks = torch.stack([torch.mean((p - t) ** 2) for p, t in zip(preds_by_env, targets_by_env)])
         weight = self.effective_weight(step)
-        term, extra_logs = self.penalty_term(risks, preds_by_env, targets_by_env, weight)
-        loss = risks.mean() + weight * term
+        # risks.mean() rather than a uniform weighted sum keeps balanced runs bit-identical to earlier ones.
+        base_risk = risks.mean() if env_weights is None else torch.sum(env_weights.to(risks.dtype) * risks)
+        term, extra_logs = self.penalty_term(risks, preds_by_env, targets_by_env, weight, base_risk)
+        loss = base_risk + weight * term
         loss_scale = 1.0 / weight if (self.rescale_heavy and weight > 1.0) else 1.0
         loss = loss * loss_scale
         logs = {f"risk/{e}": float(r) for e, r in enumerate(risks.detach())}
@@ -118,7 +138,7 @@ class ERMPenalty(Penalty):
 
     name = "erm"
 
-    def penalty_term(self, risks, preds, targets, weight):
+    def penalty_term(self, risks, preds, targets, weight, base_risk):
         import torch
 
         return torch.zeros((), dtype=risks.dtype, device=risks.device), {}
@@ -127,25 +147,47 @@ class ERMPenalty(Penalty):
 class IRMv1Penalty(Penalty):
     """IRMv1 (Arjovsky, Bottou, Gulrajani, Lopez-Paz 2019): P = mean_e (d/dw R_e(w * f) at w=1)^2.
 
+    `estimator` says how the square of environment e's gradient g_e is estimated from its windows in the
+    batch:
+    - "split_halves" (default): g_e on the first half of the windows times g_e on the second half. The
+      halves are independent draws, so the product's expectation is the square of the full-data gradient:
+      unbiased, the minibatch estimate the IRMv1 paper gives (arXiv:1907.02893, section 3). One product
+      can be negative; its mean over batches is the square. Needs >= 2 windows per environment.
+    - "squared": the square of the batch gradient. Its expectation is g_e^2 plus the variance of the batch
+      gradient, i.e. biased upwards by the sampling noise, more so the smaller the batch.
     `irm_gradient` = "closed_form" (default; squared error only, a little cheaper) or "autograd";
     tests check both give the same value and the same gradients.
     """
 
     name = "irm"
 
-    def __init__(self, *args, irm_gradient: str = "closed_form", **kwargs):
+    def __init__(self, *args, estimator: str = IRM_ESTIMATORS[0], irm_gradient: str = "closed_form", **kwargs):
         super().__init__(*args, **kwargs)
         if irm_gradient not in ("closed_form", "autograd"):
             raise InputError(f"must be 'closed_form' or 'autograd', got {irm_gradient!r}",
                              field="penalty.irm_gradient")
+        if estimator not in IRM_ESTIMATORS:
+            raise InputError(f"must be one of {', '.join(IRM_ESTIMATORS)}, got {estimator!r}",
+                             field="penalty.extra.estimator")
         self.irm_gradient = irm_gradient
+        self.estimator = estimator
+        self.min_windows_per_env = 2 if estimator == "split_halves" else 1
 
-    def penalty_term(self, risks, preds, targets, weight):
+    def squared_gradient(self, pred: torch.Tensor, target: torch.Tensor) -> torch.Tensor:
+        """The estimate of one environment's squared gradient (see the class docstring)."""
+        gradient_of = irm_gradient_closed_form if self.irm_gradient == "closed_form" else irm_gradient_autograd
+        if self.estimator == "squared":
+            return gradient_of(pred, target) ** 2
+        half = len(pred) // 2
+        if half == 0:
+            raise ValueError(f"irm estimator split_halves needs >= 2 windows per environment, got {len(pred)}")
+        # Halves along the window axis; an odd count gives the second half one more window (still independent).
+        return gradient_of(pred[:half], target[:half]) * gradient_of(pred[half:], target[half:])
+
+    def penalty_term(self, risks, preds, targets, weight, base_risk):
         import torch
 
-        gradient_of = irm_gradient_closed_form if self.irm_gradient == "closed_form" else irm_gradient_autograd
-        grads = torch.stack([gradient_of(p, t) for p, t in zip(preds, targets)])
-        return torch.mean(grads ** 2), {}
+        return torch.mean(torch.stack([self.squared_gradient(p, t) for p, t in zip(preds, targets)])), {}
 
 
 class VRExPenalty(Penalty):
@@ -157,7 +199,7 @@ class VRExPenalty(Penalty):
 
     name = "vrex"
 
-    def penalty_term(self, risks, preds, targets, weight):
+    def penalty_term(self, risks, preds, targets, weight, base_risk):
         import torch
 
         return torch.mean((risks - risks.mean()) ** 2), {}
@@ -168,8 +210,8 @@ class GroupDROPenalty(Penalty):
 
     q starts uniform; each step q_g <- q_g * exp(eta * R_g) (R detached), renormalised; the robust loss
     is sum_g q_g R_g with the updated q. To fit the common objective the term is the robust excess
-    P = sum_g q_g R_g - mean_g R_g, so weight = 1 gives exactly Sagawa et al.'s loss, weight = 0 gives
-    ERM, and values in between interpolate. q is updated only while the effective weight is > 0, so
+    P = sum_g q_g R_g - sum_g a_g R_g (a_g: the sampling's environment weights, 1/G when balanced), so
+    weight = 1 gives exactly Sagawa et al.'s loss, weight = 0 gives ERM, and values in between interpolate. q is updated only while the effective weight is > 0, so
     it starts uniform when a warm-up ends. q persists across steps; `reset()` makes it uniform again.
     The number of groups is fixed by the first call after a reset.
     """
@@ -186,7 +228,7 @@ class GroupDROPenalty(Penalty):
     def reset(self) -> None:
         self.q_ = None
 
-    def penalty_term(self, risks, preds, targets, weight):
+    def penalty_term(self, risks, preds, targets, weight, base_risk):
         import torch
 
         n_groups = risks.shape[0]
@@ -200,7 +242,7 @@ class GroupDROPenalty(Penalty):
             self.q_ = torch.softmax(log_q, dim=0)
         robust = torch.sum(self.q_ * risks)
         logs = {f"q/{g}": float(v) for g, v in enumerate(self.q_)}
-        return robust - risks.mean(), logs
+        return robust - base_risk, logs
 
 
 _PENALTY_CLASSES = {cls.name: cls for cls in (ERMPenalty, IRMv1Penalty, VRExPenalty, GroupDROPenalty)}
@@ -209,8 +251,9 @@ _PENALTY_CLASSES = {cls.name: cls for cls in (ERMPenalty, IRMv1Penalty, VRExPena
 def build_penalty(name: str, weight: float = 0.0, warmup_steps: int = 0, **extra) -> Penalty:
     """Penalty by name (erm, irm, vrex, groupdro); unknown name or option -> InputError.
 
-    extra: warmup_weight (0.0), rescale_heavy (True), reset_optimizer (True); irm: irm_gradient
-    ("closed_form"); groupdro: eta (0.01). Note groupdro needs weight=1 for Sagawa et al.'s objective.
+    extra: warmup_weight (0.0), rescale_heavy (True), reset_optimizer (True); irm: estimator
+    ("split_halves"), irm_gradient ("closed_form"); groupdro: eta (0.01). Note groupdro needs weight=1
+    for Sagawa et al.'s objective.
     """
     if name not in _PENALTY_CLASSES:
         raise InputError(f"unknown penalty {name!r} (known: {', '.join(PENALTY_NAMES)})", field="penalty.name")

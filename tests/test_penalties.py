@@ -28,7 +28,8 @@ def test_irm_gradient_closed_form_equals_autograd_and_published_values(pred, tar
     assert float(irm_gradient_closed_form(t(pred), t(target))) == pytest.approx(grad, abs=1e-6)
     assert float(irm_gradient_autograd(t(pred), t(target)).detach()) == pytest.approx(grad, abs=1e-6)
     for method in ("closed_form", "autograd"):
-        loss, logs = build_penalty("irm", weight=1.0, irm_gradient=method)([t(pred)], [t(target)], step=0)
+        loss, logs = build_penalty("irm", weight=1.0, irm_gradient=method, estimator="squared")(
+            [t(pred)], [t(target)], step=0)
         assert logs["penalty_value"] == pytest.approx(penalty, abs=1e-6)
         assert logs["risk/0"] == pytest.approx(risk, abs=1e-6)
         assert float(loss.detach()) == pytest.approx(risk + penalty, abs=1e-6)  # weight 1: no rescaling
@@ -37,7 +38,7 @@ def test_irm_gradient_closed_form_equals_autograd_and_published_values(pred, tar
 def test_irm_closed_form_and_autograd_give_the_same_gradients_for_training():
     generator = torch.Generator().manual_seed(0)
     grads = {}
-    for method in ("closed_form", "autograd"):
+    for method in ("closed_form", "autograd"):  # with the default estimator (split_halves)
         preds = [torch.randn(16, 3, generator=generator, dtype=torch.float64).requires_grad_() for _ in range(3)]
         targets = [torch.randn(16, 3, generator=generator, dtype=torch.float64) for _ in range(3)]
         loss, _ = build_penalty("irm", weight=7.0, irm_gradient=method)(preds, targets, step=0)
@@ -49,10 +50,58 @@ def test_irm_closed_form_and_autograd_give_the_same_gradients_for_training():
 
 def test_irm_penalty_averages_over_environments():
     # Our convention: mean over environments (the authors' released code averages [from memory]).
-    loss, logs = build_penalty("irm", weight=1.0)([t([1, 2, 3, 4]), t([0.5, -1, 2])],
-                                                  [t([1.5, 1.5, 2.5, 5]), t([1, -1, 1])], step=0)
+    loss, logs = build_penalty("irm", weight=1.0, estimator="squared")(
+        [t([1, 2, 3, 4]), t([0.5, -1, 2])], [t([1.5, 1.5, 2.5, 5]), t([1, -1, 1])], step=0)
     assert logs["penalty_value"] == pytest.approx((1.0 + 1.3611111) / 2, abs=1e-6)
     assert float(loss) == pytest.approx((0.4375 + 0.4166667) / 2 + (1.0 + 1.3611111) / 2, abs=1e-6)
+
+
+@pytest.mark.parametrize("pred,target,halves,product", [
+    # computed with numpy from the IRM paper's closed form: [1,2]/[1.5,1.5] -> 0.5, [3,4]/[2.5,5] -> -2.5
+    ([1, 2, 3, 4], [1.5, 1.5, 2.5, 5], (0.5, -2.5), -1.25),
+    # computed likewise; an odd count gives the second half the extra window: [0.5]/[1] -> -0.5, [-1,2]/[-1,1] -> 2
+    ([0.5, -1, 2], [1, -1, 1], (-0.5, 2.0), -1.0),
+])
+def test_irm_split_halves_is_the_product_of_the_two_half_batch_gradients(pred, target, halves, product):
+    # IRMv1 paper (Arjovsky et al. 2019, arXiv:1907.02893, section 3): the unbiased minibatch estimate of the
+    # squared gradient is the product of the gradients on two independent parts of the batch.
+    half = len(pred) // 2
+    assert float(irm_gradient_closed_form(t(pred[:half]), t(target[:half]))) == pytest.approx(halves[0])
+    assert float(irm_gradient_closed_form(t(pred[half:]), t(target[half:]))) == pytest.approx(halves[1])
+    for method in ("closed_form", "autograd"):
+        _, logs = build_penalty("irm", weight=1.0, irm_gradient=method)([t(pred)], [t(target)], step=0)
+        assert logs["penalty_value"] == pytest.approx(product, abs=1e-9)  # the default estimator
+    with pytest.raises(ValueError, match="split_halves needs >= 2 windows"):
+        build_penalty("irm", weight=1.0)([t([1.0])], [t([2.0])], step=0)
+    assert build_penalty("irm").min_windows_per_env == 2
+    assert build_penalty("irm", estimator="squared").min_windows_per_env == 1
+
+
+def test_irm_split_halves_is_unbiased_and_the_squared_batch_gradient_is_biased_up():
+    # 400 fixed (pred, target) pairs of one environment; the full-data penalty is g^2 with
+    # g = 2 mean((pred - y) pred) (IRM paper's closed form for squared error). Minibatches of 8 drawn with
+    # replacement, as the training loop draws. Expected values (sampling with replacement, computed):
+    # E[split halves] = g^2 (independent halves); E[squared] = g^2 + Var(per-window gradient) / 8.
+    rng = np.random.default_rng(0)
+    pred = rng.normal(1.0, 1.0, 400)
+    target = pred + rng.normal(0.3, 1.0, 400)
+    per_window = 2 * (pred - target) * pred
+    full = per_window.mean() ** 2
+    batch = 8
+    expected_squared = full + per_window.var() / batch  # numpy var, ddof 0: the with-replacement variance
+    draws = rng.integers(0, 400, size=(3000, batch))
+    estimates = {}
+    for estimator in ("split_halves", "squared"):
+        penalty = build_penalty("irm", weight=1.0, estimator=estimator)
+        estimates[estimator] = np.array([penalty([t(pred[d])], [t(target[d])], step=0)[1]["penalty_value"]
+                                         for d in draws])
+    for estimator, expected in (("split_halves", full), ("squared", expected_squared)):
+        values = estimates[estimator]
+        standard_error = values.std(ddof=1) / np.sqrt(len(values))
+        assert abs(values.mean() - expected) < 3.5 * standard_error, (estimator, values.mean(), expected)
+    squared = estimates["squared"]
+    # The bias is real and detectable here: the squared estimate's mean sits many standard errors above g^2.
+    assert squared.mean() - full > 5 * squared.std(ddof=1) / np.sqrt(len(squared))
 
 
 # --- V-REx: Krueger et al. (2021), ICML ---------------------------------------------
@@ -125,6 +174,8 @@ def test_warmup_schedule_and_optimizer_reset_switch():
     penalty = build_penalty("irm", weight=5.0, warmup_steps=10)
     assert [penalty.effective_weight(s) for s in (0, 9, 10, 500)] == [0.0, 0.0, 5.0, 5.0]
     assert [s for s in range(30) if penalty.resets_optimizer_at(s)] == [10]
+    # The ERM twin with the same warm-up is reset at the same step (same treatment, pipeline.twins).
+    assert [s for s in range(30) if build_penalty("erm", warmup_steps=10).resets_optimizer_at(s)] == [10]
     soft = build_penalty("vrex", weight=5.0, warmup_steps=10, warmup_weight=1.0)
     assert [soft.effective_weight(s) for s in (9, 10)] == [1.0, 5.0]
     assert not any(build_penalty("irm", weight=5.0).resets_optimizer_at(s) for s in range(30))
@@ -138,6 +189,28 @@ def test_erm_is_the_mean_of_environment_risks_whatever_the_weight():
     assert float(loss) == pytest.approx(0.5) and logs["penalty_value"] == 0.0
 
 
+def test_environment_weights_of_pooled_sampling_weight_the_risks():
+    # Pooled sampling: a_e = share of the training windows, so the risk term is the pooled risk.
+    preds, targets = constant_risk_batches([0.2, 0.5, 0.8])
+    shares = torch.tensor([0.5, 0.3, 0.2], dtype=torch.float64)
+    loss, _ = build_penalty("erm")(preds, targets, step=0, env_weights=shares)
+    assert float(loss) == pytest.approx(0.5 * 0.2 + 0.3 * 0.5 + 0.2 * 0.8, abs=1e-12)
+    # Group DRO with weight 1 is still exactly Sagawa et al.'s robust loss (computed with numpy from the
+    # update rule, as in test_groupdro_one_step).
+    loss, _ = build_penalty("groupdro", weight=1.0, eta=1.0)(preds, targets, step=0, env_weights=shares)
+    assert float(loss) == pytest.approx(0.559117, abs=1e-6)
+    # V-REx keeps the population variance of the risks (Krueger et al. 2021), whatever their weights.
+    _, logs = build_penalty("vrex", weight=1.0)(preds, targets, step=0, env_weights=shares)
+    assert logs["penalty_value"] == pytest.approx(0.06, abs=1e-12)
+
+
+def test_which_runs_count_as_penalised():
+    assert build_penalty("irm", weight=1.0).penalised and build_penalty("groupdro", weight=1.0).penalised
+    assert not build_penalty("erm", weight=3.0).penalised  # the ERM term is 0 whatever the weight
+    assert not build_penalty("vrex", weight=0.0).penalised
+    assert build_penalty("vrex", weight=0.0, warmup_steps=5, warmup_weight=1.0).penalised
+
+
 @pytest.mark.parametrize("kwargs,match", [
     ({"name": "coral"}, "unknown penalty 'coral'"),
     ({"name": "irm", "weight": -1.0}, "penalty.weight"),
@@ -145,6 +218,8 @@ def test_erm_is_the_mean_of_environment_risks_whatever_the_weight():
     ({"name": "groupdro", "eta": 0.0}, "penalty.eta"),
     ({"name": "vrex", "eta": 0.1}, "unexpected keyword argument 'eta'"),
     ({"name": "irm", "irm_gradient": "finite_differences"}, "penalty.irm_gradient"),
+    ({"name": "irm", "estimator": "jackknife"}, "penalty.extra.estimator"),
+    ({"name": "vrex", "estimator": "squared"}, "unexpected keyword argument 'estimator'"),
 ])
 def test_bad_penalty_settings_raise_input_error(kwargs, match):
     with pytest.raises(InputError, match=match):
