@@ -12,6 +12,8 @@ from dataclasses import dataclass, fields
 
 from pipeline.errors import InputError
 
+SAMPLING_MODES = ("balanced", "pooled")  # fit.sampling; the samplers live in pipeline.sampling
+
 
 @dataclass
 class FitConfig:
@@ -25,8 +27,14 @@ class FitConfig:
     patience: int = 8  # evaluations without improvement of val/source/all before stopping
     grad_clip: float = 1.0  # max global L2 norm of the gradient; 0 disables clipping
     threads: int = 1  # torch.set_num_threads; match the job's CPU allocation
+    # Batch composition and each environment's weight in the loss: balanced (equal share and weight per
+    # environment) or pooled (shares and weights follow the environments' sizes); see pipeline.sampling.
+    sampling: str = "balanced"
 
     def __post_init__(self):
+        if self.sampling not in SAMPLING_MODES:
+            raise InputError(f"must be one of {', '.join(SAMPLING_MODES)}, got {self.sampling!r}",
+                             field="fit.sampling")
         for name in ("max_steps", "batch_size", "eval_every", "patience", "threads"):
             value = getattr(self, name)
             if isinstance(value, bool) or int(value) != value or value < 1:

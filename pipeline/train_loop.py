@@ -7,14 +7,19 @@ group, i.e. the fields of `FitConfig`, plus the model seed and a penalty from pi
 What it does, in order:
 1. fork the global torch RNG and seed it (so weight init and dropout are reproducible and the caller's
    RNG is untouched), set torch threads, make a dedicated torch.Generator for batch sampling;
-2. every step draws an environment-balanced batch (batch_size // E windows of each of the E training
-   environments, with replacement within an environment), runs one forward pass, splits predictions by
-   environment, asks the penalty for the loss, clips the gradient norm and takes one Adam step;
+2. every step draws a batch as `fit.sampling` says (pipeline.sampling: environment-balanced, or pooled
+   with environment weights in the loss), runs one forward pass, splits predictions by environment, asks
+   the penalty for the loss, clips the gradient norm and takes one Adam step; the optimizer is rebuilt
+   when the penalty's warm-up ends (for ERM runs with the same warm-up too: pipeline.twins);
 3. every `eval_every` steps (and at the last step) computes the MSE on every validation set, overall and
-   per environment, stores a snapshot of the weights and a history entry, and stops early when
-   `val/source/all` has not improved for `patience` evaluations;
+   per environment, and stores a history entry. Only AFTER the warm-up (step > penalty.warmup_steps) does
+   it store a snapshot and count towards early stopping: a warm-up snapshot was trained without the
+   penalty, i.e. it is the ERM twin's model bit for bit, and must not be what a penalised run reports;
+   early stopping stops when `val/source/all` has not improved for `patience` such evaluations;
 4. a non-finite loss stops the fit (stop_reason "non_finite_loss"); the state at that step is still
    evaluated and snapshotted, so every fit leaves at least one snapshot.
+A penalised run (pipeline.penalties.Penalty.penalised) with fewer than two training environments is
+refused: its penalty would compare nothing (ERM in disguise).
 """
 
 from __future__ import annotations
@@ -30,6 +35,7 @@ import torch
 from pipeline.errors import InputError
 from pipeline.fit_config import FitConfig
 from pipeline.penalties import Penalty, build_penalty
+from pipeline.sampling import EnvironmentBalancedSampler, make_sampler  # noqa: F401 (re-exported)
 from pipeline.window_check import WindowSetLike, check_window_set
 
 EVAL_CHUNK = 4096  # windows per forward pass at evaluation/prediction: bounds memory, not results
@@ -45,22 +51,6 @@ class TrainResult:
     stop_reason: str  # "max_steps", "early_stopping" or "non_finite_loss"
     fit_seconds: float
     train_env_names: list = field(default_factory=list)
-
-
-class EnvironmentBalancedSampler:
-    """Draws per_env indices of every environment present in `env`, with replacement, from `generator`."""
-
-    def __init__(self, env: np.ndarray, batch_size: int, generator: torch.Generator):
-        self.env_ids = np.unique(env)
-        self.indices = [torch.from_numpy(np.flatnonzero(env == e)) for e in self.env_ids]
-        # With more environments than batch slots, every environment still gets one window.
-        self.per_env = max(1, batch_size // len(self.env_ids))
-        self.generator = generator
-
-    def next_batch(self) -> list[torch.Tensor]:
-        """One index tensor per environment (in the order of self.env_ids), each of length per_env."""
-        return [idx[torch.randint(len(idx), (self.per_env,), generator=self.generator)]
-                for idx in self.indices]
 
 
 def predict_network(network: torch.nn.Module, X: np.ndarray) -> np.ndarray:
@@ -100,6 +90,18 @@ def copy_state(network: torch.nn.Module) -> dict[str, torch.Tensor]:
     return {k: v.detach().clone() for k, v in network.state_dict().items()}
 
 
+def _check_batches(sampler, penalty: Penalty, env_names: list, cfg: FitConfig) -> None:
+    """One-line InputErrors for batches on which the penalty is undefined or compares nothing."""
+    present = [env_names[e] for e in sampler.env_ids]
+    if penalty.penalised and len(present) < 2:
+        raise InputError(f"penalty {penalty.name} needs >= 2 training environments, got {len(present)} "
+                         f"({', '.join(map(str, present))}): with one it is ERM in disguise", field="train.env")
+    if min(sampler.counts) < penalty.min_windows_per_env:
+        raise InputError(f"{cfg.batch_size} windows over {len(present)} environments leave "
+                         f"{min(sampler.counts)} per environment; penalty {penalty.name} needs "
+                         f"{penalty.min_windows_per_env}", field="fit.batch_size")
+
+
 def train_network(build_network, train: WindowSetLike, val: dict[str, WindowSetLike] | None = None,
                   penalty: Penalty | None = None, fit_config: FitConfig | None = None,
                   seed: int = 0) -> tuple[torch.nn.Module, TrainResult]:
@@ -116,6 +118,9 @@ def train_network(build_network, train: WindowSetLike, val: dict[str, WindowSetL
         raise InputError("no training windows", field="train")
     for set_name, windows in val.items():
         check_window_set(windows, f"val/{set_name}")
+    if penalty.warmup_steps >= cfg.max_steps:
+        raise InputError(f"{penalty.warmup_steps} leaves no step after the warm-up to select from "
+                         f"(fit.max_steps {cfg.max_steps})", field="penalty.warmup_steps")
     torch.set_num_threads(cfg.threads)
     penalty.reset()
 
@@ -123,7 +128,9 @@ def train_network(build_network, train: WindowSetLike, val: dict[str, WindowSetL
         torch.manual_seed(seed)  # weight init and dropout draw from the (forked) global generator
         network = build_network()
         sampler_generator = torch.Generator().manual_seed(seed)
-        sampler = EnvironmentBalancedSampler(np.asarray(train.env), cfg.batch_size, sampler_generator)
+        sampler = make_sampler(cfg.sampling, np.asarray(train.env), cfg.batch_size, sampler_generator,
+                               penalty.min_windows_per_env)
+        _check_batches(sampler, penalty, train.env_names, cfg)
         X = torch.from_numpy(np.ascontiguousarray(train.X, dtype=np.float32))
         y = torch.from_numpy(np.ascontiguousarray(train.y, dtype=np.float32))
         optimizer = make_optimizer(network, cfg)
@@ -141,7 +148,7 @@ def train_network(build_network, train: WindowSetLike, val: dict[str, WindowSetL
             predictions = network(X[torch.cat(batch)])
             preds_by_env = list(torch.split(predictions, [len(b) for b in batch]))
             targets_by_env = [y[b] for b in batch]
-            loss, logs = penalty(preds_by_env, targets_by_env, step)
+            loss, logs = penalty(preds_by_env, targets_by_env, step, env_weights=sampler.risk_weights)
             if not torch.isfinite(loss):
                 stop_reason = "non_finite_loss"
                 break
@@ -162,8 +169,10 @@ def train_network(build_network, train: WindowSetLike, val: dict[str, WindowSetL
                 entry.update({k: float(np.mean(v)) for k, v in since_eval.items()})
                 entry.update(evaluate(network, val))
                 history.append(entry)
-                snapshots[step] = copy_state(network)
                 since_eval = {}
+                if step <= penalty.warmup_steps:
+                    continue  # a warm-up model: on the curve, never selected, not counted for stopping
+                snapshots[step] = copy_state(network)
                 criterion = entry.get(f"val/{EARLY_STOP_SET}/all")
                 if criterion is not None:
                     if criterion < best_value:

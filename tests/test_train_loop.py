@@ -6,7 +6,7 @@ import pytest
 import torch
 from torch import nn
 
-from pipeline import train_loop
+from pipeline import selection, train_loop
 from pipeline.errors import InputError
 from pipeline.models.networks import LinearMap, MLPNet
 from pipeline.penalties import ERMPenalty, build_penalty
@@ -51,13 +51,14 @@ def test_sampler_balances_environments_and_is_seeded():
 
 
 class RecordingERM(ERMPenalty):
-    def __init__(self):
-        super().__init__()
-        self.batch_shapes = []
+    def __init__(self, **kwargs):
+        super().__init__(**kwargs)
+        self.batch_shapes, self.env_weights = [], []
 
-    def __call__(self, preds_by_env, targets_by_env, step):
+    def __call__(self, preds_by_env, targets_by_env, step, env_weights=None):
         self.batch_shapes.append([tuple(p.shape) for p in preds_by_env])
-        return super().__call__(preds_by_env, targets_by_env, step)
+        self.env_weights.append(env_weights)
+        return super().__call__(preds_by_env, targets_by_env, step, env_weights=env_weights)
 
 
 def test_every_training_batch_holds_every_environment():
@@ -163,7 +164,8 @@ def test_learning_actually_reduces_the_validation_risk():
 @pytest.mark.parametrize("values,field", [({"max_steps": 0}, "fit.max_steps"),
                                           ({"lr": 0.0}, "fit.lr"),
                                           ({"grad_clip": -1.0}, "fit.grad_clip"),
-                                          ({"batch_size": 2.5}, "fit.batch_size")])
+                                          ({"batch_size": 2.5}, "fit.batch_size"),
+                                          ({"sampling": "stratified"}, "fit.sampling")])
 def test_bad_fit_values_raise_input_error(values, field):
     with pytest.raises(InputError, match=field):
         FitConfig(**values)
@@ -179,3 +181,110 @@ def test_non_finite_validation_data_is_rejected():
     val.y[0, 0] = np.inf
     with pytest.raises(InputError, match="val/source.y: 1 non-finite values"):
         train_network(mlp, make_windows(), val={"source": val}, fit_config=FitConfig(max_steps=1))
+
+
+# ---- warm-up: selection and early stopping start when the penalty switches on ---------------------------
+def test_early_stopping_counts_only_evaluations_after_the_warmup():
+    windows = make_windows()
+    _, result = train_network(ConstantForecast, windows, val={"source": make_windows(seed=1)},
+                              penalty=build_penalty("irm", weight=5.0, warmup_steps=20),
+                              fit_config=FitConfig(max_steps=1000, eval_every=5, patience=3))
+    # Without the rule: best at step 5 (a warm-up model), stop at 20. With it: the plateau is first seen
+    # at step 25, three more evaluations without gain stop the fit at 40.
+    assert result.stop_reason == "early_stopping" and result.final_step == 40 and result.best_step == 25
+    assert sorted(result.snapshots) == [25, 30, 35, 40]
+    assert [e["step"] for e in result.history] == list(range(5, 45, 5))  # the curve keeps the warm-up
+
+
+def test_a_penalised_run_selects_past_the_warmup_and_differs_from_its_erm_twin():
+    from pipeline.models import build_model
+
+    train = make_windows()
+    # A validation target of opposite sign: the more a model learns the worse it scores, so the earliest
+    # evaluation wins the whole curve. Before the fix that was a warm-up snapshot, bit-identical to the
+    # ERM twin's.
+    val = make_windows(seed=1)
+    val.y[:] = -val.y
+    cfg = FitConfig(max_steps=30, batch_size=24, eval_every=5, lr=1e-2)
+    fitted = {name: build_model("linear", {}, seed=4).fit(
+        train, val={"source": val}, fit_config=cfg,
+        penalty=build_penalty(name, weight=10.0 if name == "irm" else 0.0, warmup_steps=10))
+        for name in ("erm", "irm")}
+    irm, erm = fitted["irm"], fitted["erm"]
+    for model in (irm, erm):
+        whole_curve = selection.curve(model.history_, "val/source/all")
+        assert min(whole_curve, key=whole_curve.get) == 5  # a warm-up step would have been chosen
+        assert model.snapshot_steps_ == [15, 20, 25, 30] and model.best_step_ > 10
+        assert selection.choose_step(selection.HOLDOUT, model.history_, model.snapshot_steps_) == model.best_step_
+    # Twins: same seed, same batches, zero penalty during the warm-up -> identical warm-up curves ...
+    # (penalty_value differs: the IRM term is computed, with weight 0, during the warm-up.)
+    def without_term(entries):
+        return [{k: v for k, v in e.items() if k != "penalty_value"} for e in entries]
+    assert without_term(irm.history_[:2]) == without_term(erm.history_[:2])
+    # ... and different models once the penalty acted: the selected weights differ.
+    assert not torch.equal(irm.state_dict()["head.weight"], erm.state_dict()["head.weight"])
+    assert not torch.equal(irm.use_snapshot(15).state_dict()["head.weight"],
+                           erm.use_snapshot(15).state_dict()["head.weight"])
+
+
+def test_a_warmup_that_lasts_the_whole_fit_is_refused():
+    with pytest.raises(InputError, match="penalty.warmup_steps"):
+        train_network(mlp, make_windows(), penalty=build_penalty("irm", weight=1.0, warmup_steps=10),
+                      fit_config=FitConfig(max_steps=10))
+
+
+def test_the_erm_twin_gets_the_same_optimizer_reset(monkeypatch):
+    built = []
+    real_make_optimizer = train_loop.make_optimizer
+    monkeypatch.setattr(train_loop, "make_optimizer", lambda *a: built.append(1) or real_make_optimizer(*a))
+    train_network(mlp, make_windows(), penalty=build_penalty("erm", warmup_steps=10),
+                  fit_config=FitConfig(max_steps=20, batch_size=24, eval_every=5))
+    assert len(built) == 2
+
+
+# ---- environments and batch composition ------------------------------------------------------------------
+def test_a_penalised_fit_on_one_environment_is_refused_and_erm_is_not():
+    single = make_windows(sizes=(40,))
+    for name in ("irm", "vrex", "groupdro"):
+        with pytest.raises(InputError, match=f"penalty {name} needs >= 2 training environments"):
+            train_network(mlp, single, penalty=build_penalty(name, weight=1.0), fit_config=FitConfig(max_steps=2))
+    train_network(mlp, single, penalty=build_penalty("erm"), fit_config=FitConfig(max_steps=2))
+
+
+def test_split_halves_needs_two_windows_per_environment_in_a_batch():
+    with pytest.raises(InputError, match="fit.batch_size.*needs 2"):
+        train_network(mlp, make_windows(), penalty=build_penalty("irm", weight=1.0),
+                      fit_config=FitConfig(max_steps=2, batch_size=5))  # 5 // 3 = 1 per environment
+    train_network(mlp, make_windows(), penalty=build_penalty("irm", weight=1.0, estimator="squared"),
+                  fit_config=FitConfig(max_steps=2, batch_size=5))
+
+
+def test_pooled_sampler_follows_the_environment_sizes_and_is_seeded():
+    from pipeline.fit_config import SAMPLING_MODES
+    from pipeline.sampling import SAMPLERS, PooledSampler
+
+    assert tuple(SAMPLERS) == SAMPLING_MODES  # one list of names
+    env = np.repeat([0, 1, 2], [600, 300, 4])
+    sampler = PooledSampler(env, batch_size=60, generator=torch.Generator().manual_seed(1), min_per_env=2)
+    twin = PooledSampler(env, batch_size=60, generator=torch.Generator().manual_seed(1), min_per_env=2)
+    # Shares 600/904, 300/904, 4/904 of 60 slots: 39.8, 19.9, 0.27 -> largest remainder 40, 20, 0 -> floor 2.
+    assert sampler.counts == [40, 20, 2]
+    np.testing.assert_allclose(sampler.risk_weights.numpy(), [600 / 904, 300 / 904, 4 / 904])
+    for _ in range(5):
+        batch, twin_batch = sampler.next_batch(), twin.next_batch()
+        assert [len(b) for b in batch] == [40, 20, 2]
+        assert all((env[b.numpy()] == e).all() for e, b in enumerate(batch))
+        assert all(torch.equal(a, b) for a, b in zip(batch, twin_batch))
+
+
+def test_pooled_fit_weights_environment_risks_by_their_share_and_balanced_does_not():
+    windows = make_windows()  # sizes 60, 20, 5
+    for sampling, expected in (("balanced", None), ("pooled", [60 / 85, 20 / 85, 5 / 85])):
+        penalty = RecordingERM()
+        train_network(mlp, windows, penalty=penalty,
+                      fit_config=FitConfig(max_steps=2, batch_size=34, eval_every=2, sampling=sampling))
+        if expected is None:
+            assert penalty.env_weights == [None, None] and penalty.batch_shapes[0] == [(11, 3)] * 3
+        else:
+            np.testing.assert_allclose(penalty.env_weights[0].numpy(), expected)
+            assert penalty.batch_shapes[0] == [(24, 3), (8, 3), (2, 3)]  # 34 x shares: 24, 8, 2
