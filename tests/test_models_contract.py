@@ -1,5 +1,6 @@
 """One contract test for every model family (scikit-learn's habit: a generic check run against every
-estimator), plus exact values for the baselines and reference-library checks for ridge and VAR."""
+estimator), plus exact values for the baselines, reference-library checks for ridge and VAR, and the level
+options (model.level: revin | delta) that every learned family takes."""
 
 from dataclasses import fields
 
@@ -21,6 +22,8 @@ FAST = FitConfig(max_steps=6, batch_size=16, eval_every=3, patience=8)
 TRAINABLE = [name for name, cls in MODEL_FAMILIES.items() if cls.trainable]
 EXPECTED_FAMILIES = {"persistence", "seasonal_naive", "ridge", "var", "linear", "mlp", "lstm", "gru",
                      "transformer"}
+LEARNED = [name for name, cls in MODEL_FAMILIES.items() if "level" in {f.name for f in fields(cls.Params)}]
+LEVEL_OPTIONS = ("revin", "delta")
 
 
 
@@ -44,7 +47,10 @@ def changed_params(cls) -> dict:
     """A value different from the default for every Params field (validity is checked in fit only)."""
     changed = {}
     for f in fields(cls.Params):
-        changed[f.name] = f.default + 1 if isinstance(f.default, int) else f.default + 0.5
+        if isinstance(f.default, str):
+            changed[f.name] = f.default + "-changed"
+        else:
+            changed[f.name] = f.default + 1 if isinstance(f.default, int) else f.default + 0.5
     return changed
 
 
@@ -211,3 +217,46 @@ def test_non_finite_training_data_is_rejected():
     bad.X[3, 2, 1] = np.nan
     with pytest.raises(InputError, match="train.X: 1 non-finite values"):
         build_model("ridge", {}, seed=0).fit(bad)
+
+
+# ---- level options: every learned family forecasts relative to each window's level -------------------
+def test_every_family_takes_the_level_option():
+    # Learned families need it; the baselines accept it (no effect) so that `model.level=...` covers a sweep.
+    assert set(LEARNED) == EXPECTED_FAMILIES
+
+
+def shifted(X: np.ndarray, offset: float, target_index: int = 0) -> np.ndarray:
+    """The same windows with the target variable's level moved by `offset` (other features unchanged)."""
+    out = X.copy()
+    out[:, :, target_index] += offset
+    return out
+
+
+@pytest.mark.parametrize("family", LEARNED)
+@pytest.mark.parametrize("option", LEVEL_OPTIONS)
+def test_level_options_make_forecasts_follow_a_shift_of_the_target_level(family, option):
+    model = build_model(family, {"level": option}, seed=2).fit(TRAIN, val=VAL, fit_config=FAST)
+    X = VAL["source"].X
+    pred = model.predict(X)
+    assert pred.shape == (len(X), 4) and pred.dtype == np.float32 and np.isfinite(pred).all()
+    # A level shift of the target series moves the forecast by exactly that shift (delta: the model sees
+    # x - last value; RevIN: the model sees (x - window mean) / window std), whatever the family.
+    np.testing.assert_allclose(model.predict(shifted(X, 3.0)), pred + 3.0, atol=2e-4)
+    # The option is part of the model: a fresh instance restores it from the state.
+    stored = {k: torch.as_tensor(np.asarray(v)) for k, v in model.state_dict().items()}
+    fresh = build_model(family, {"level": option}, seed=99).load_state_dict(stored)
+    np.testing.assert_array_equal(fresh.predict(X), pred)
+
+
+@pytest.mark.parametrize("family", ["ridge", "linear"])
+def test_without_a_level_option_a_linear_model_forecasts_at_the_sources_level(family):
+    model = build_model(family, {}, seed=2).fit(TRAIN, val=VAL, fit_config=FAST)
+    X = VAL["source"].X
+    moved = model.predict(shifted(X, 3.0)) - model.predict(X)
+    assert np.abs(moved - 3.0).max() > 0.3  # the shift test above could fail: here it does
+
+
+@pytest.mark.parametrize("family", LEARNED)
+def test_an_unknown_level_option_is_a_one_line_error_naming_the_field(family):
+    with pytest.raises(InputError, match="model.level.*revin"):
+        build_model(family, {"level": "zscore"}, seed=0).fit(TRAIN, val=VAL, fit_config=FAST)

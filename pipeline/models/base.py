@@ -19,11 +19,13 @@ from __future__ import annotations
 
 import time
 from dataclasses import asdict, dataclass, fields
+from types import SimpleNamespace
 from typing import Any, ClassVar
 
 import numpy as np
 
 from pipeline.errors import InputError
+from pipeline.models import level
 from pipeline.window_check import check_window_set
 
 
@@ -141,12 +143,23 @@ class ClosedFormModel(ForecastModel):
 
     They ignore `val`, `penalty` and `fit_config`: any penalty, erm or not, is accepted and has NO
     effect (the grid labels such cells penalty "n/a"). history_ == [] and the only snapshot is step 0.
+    A family whose Params carry `level` (pipeline.models.level) is fitted and predicts on windows made
+    relative to their own level; the subclass code never sees the difference.
     """
 
     trainable = False
 
+    def _level_mode(self) -> str:
+        return getattr(self.hparams_, "level", "none")
+
     def fit(self, train, val=None, penalty=None, fit_config=None) -> "ClosedFormModel":
         self._start_fit(train)
+        if self._level_mode() != "none":
+            X = np.asarray(train.X, dtype=np.float64)
+            loc, scale = level.window_level(X, self.target_index_, self._level_mode())
+            train = SimpleNamespace(X=level.relative_inputs(X, loc, scale, self.target_index_),
+                                    y=level.relative_target(np.asarray(train.y, dtype=np.float64), loc, scale),
+                                    env=train.env, env_names=train.env_names, target_index=self.target_index_)
         self._fit_closed_form(train)
         self.n_parameters_ = sum(int(np.size(v)) for v in self._weights().values())
         self.history_, self.snapshot_steps_ = [], [0]
@@ -162,7 +175,12 @@ class ClosedFormModel(ForecastModel):
 
     def predict(self, X: np.ndarray) -> np.ndarray:
         X = self._check_X(X)
-        return np.asarray(self._predict_closed_form(X), dtype=np.float32).reshape(len(X), self.horizon_)
+        if self._level_mode() == "none":
+            return np.asarray(self._predict_closed_form(X), dtype=np.float32).reshape(len(X), self.horizon_)
+        X = X.astype(np.float64)
+        loc, scale = level.window_level(X, self.target_index_, self._level_mode())
+        relative = self._predict_closed_form(level.relative_inputs(X, loc, scale, self.target_index_))
+        return np.asarray(level.restore(np.reshape(relative, (len(X), self.horizon_)), loc, scale), dtype=np.float32)
 
     def state_dict(self) -> dict:
         return {**{k: np.array(v) for k, v in self._weights().items()}, **self._meta()}

@@ -2,6 +2,8 @@
 
 Reads window sets (only the target column of X is used: `target_index`); writes nothing. Obeys
 `model.season_hours` (seasonal_naive). Both ignore penalties and fit settings (see ClosedFormModel).
+Both accept `model.level` (pipeline.models.level) so that one override covers a whole sweep; it does not
+change their forecasts, which already follow the window's own level (up to float rounding).
 """
 
 from __future__ import annotations
@@ -12,6 +14,7 @@ import numpy as np
 
 from pipeline.errors import InputError
 from pipeline.models.base import ClosedFormModel, check_positive_ints
+from pipeline.models.level import LevelParams
 
 
 class Persistence(ClosedFormModel):
@@ -20,7 +23,7 @@ class Persistence(ClosedFormModel):
     family = "persistence"
 
     @dataclass
-    class Params:
+    class Params(LevelParams):
         pass
 
     def _fit_closed_form(self, train) -> None:
@@ -42,10 +45,11 @@ class SeasonalNaive(ClosedFormModel):
     family = "seasonal_naive"
 
     @dataclass
-    class Params:
+    class Params(LevelParams):
         season_hours: int = 24  # daily cycle of traffic, heating and boundary-layer height
 
         def __post_init__(self):
+            super().__post_init__()
             check_positive_ints(self, "season_hours")
 
     def _fit_closed_form(self, train) -> None:

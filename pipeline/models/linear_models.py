@@ -13,6 +13,7 @@ import numpy as np
 
 from pipeline.errors import InputError
 from pipeline.models.base import ClosedFormModel, check_positive_ints
+from pipeline.models.level import LevelParams
 
 
 class RidgeLags(ClosedFormModel):
@@ -21,10 +22,11 @@ class RidgeLags(ClosedFormModel):
     family = "ridge"
 
     @dataclass
-    class Params:
+    class Params(LevelParams):
         alpha: float = 1.0  # L2 strength on standardised inputs; 1.0 is scikit-learn's default
 
         def __post_init__(self):
+            super().__post_init__()
             if not isinstance(self.alpha, (int, float)) or not self.alpha >= 0:
                 raise InputError(f"must be a number >= 0, got {self.alpha!r}", field="model.alpha")
 
@@ -52,12 +54,13 @@ class VectorAutoregression(ClosedFormModel):
     family = "var"
 
     @dataclass
-    class Params:
+    class Params(LevelParams):
         order: int = 2  # lags in hours; 2 is the least order that follows a sine/cosine calendar exactly
         ridge: float = 1e-6  # tiny Tikhonov term: calendar and pollutant columns can be collinear
         max_rows: int = 100_000  # transitions used in the fit; a seeded subsample when there are more
 
         def __post_init__(self):
+            super().__post_init__()
             check_positive_ints(self, "order", "max_rows")
             if not isinstance(self.ridge, (int, float)) or not self.ridge >= 0:
                 raise InputError(f"must be a number >= 0, got {self.ridge!r}", field="model.ridge")

@@ -86,3 +86,28 @@ class TransformerNet(nn.Module):
     def forward(self, X: torch.Tensor) -> torch.Tensor:
         hidden = self.encoder(self.embed(X) + self.positions)
         return self.head(hidden[:, -1])
+
+
+class LevelNormalised(nn.Module):
+    """A network that sees each window relative to its own level and forecasts back at that level
+    (pipeline.models.level: "delta" or "revin"). For "revin" the normalised target channel gets RevIN's
+    learnable affine pair (Kim et al. 2022: x' = gamma * x_norm + beta on input, (y' - beta) / gamma on
+    output), a scalar each since only the target channel is normalised."""
+
+    def __init__(self, inner: nn.Module, mode: str, target_index: int):
+        super().__init__()
+        self.inner, self.mode, self.target_index = inner, mode, int(target_index)
+        if mode == "revin":
+            self.affine_weight = nn.Parameter(torch.ones(1))
+            self.affine_bias = nn.Parameter(torch.zeros(1))
+
+    def forward(self, X: torch.Tensor) -> torch.Tensor:
+        from pipeline.models import level
+
+        loc, scale = level.window_level(X, self.target_index, self.mode)
+        if self.mode != "revin":
+            return level.restore(self.inner(level.relative_inputs(X, loc, scale, self.target_index)), loc, scale)
+        relative = level.relative_inputs(X, loc, scale, self.target_index, self.affine_weight, self.affine_bias)
+        # eps^2 keeps the division finite should gamma reach 0 (as the RevIN authors' code does [from memory]).
+        output = (self.inner(relative) - self.affine_bias) / (self.affine_weight + level.REVIN_EPS ** 2)
+        return level.restore(output, loc, scale)

@@ -18,6 +18,7 @@ import numpy as np
 from pipeline.errors import InputError
 from pipeline.fit_config import FitConfig
 from pipeline.models.base import ForecastModel, check_fraction, check_positive_ints
+from pipeline.models.level import LevelParams
 
 if TYPE_CHECKING:
     import torch
@@ -36,15 +37,24 @@ class TorchForecaster(ForecastModel):
     def build_network(self, lookback: int, n_features: int, horizon: int) -> "torch.nn.Module":
         raise NotImplementedError
 
+    def _network(self) -> "torch.nn.Module":
+        """The family's network, wrapped by the level option (pipeline.models.level) when one is set."""
+        network = self.build_network(self.lookback_, self.n_features_, self.horizon_)
+        mode = getattr(self.hparams_, "level", "none")
+        if mode == "none":
+            return network  # unwrapped: state_dict keys stay those of runs logged before the option
+        from pipeline.models.networks import LevelNormalised
+
+        return LevelNormalised(network, mode, self.target_index_)
+
     def fit(self, train, val=None, penalty=None, fit_config=None) -> "TorchForecaster":
         from pipeline.train_loop import train_network
 
         self._start_fit(train)
         if isinstance(fit_config, dict):
             fit_config = FitConfig.from_dict(fit_config)
-        shape = (self.lookback_, self.n_features_, self.horizon_)
-        self.network_, result = train_network(lambda: self.build_network(*shape), train, val=val,
-                                              penalty=penalty, fit_config=fit_config, seed=self.seed)
+        self.network_, result = train_network(self._network, train, val=val, penalty=penalty,
+                                              fit_config=fit_config, seed=self.seed)
         self.history_ = result.history
         self._snapshots = result.snapshots
         self.snapshot_steps_ = sorted(result.snapshots)
@@ -85,7 +95,7 @@ class TorchForecaster(ForecastModel):
 
         weights = self._load_meta(state)
         with torch.random.fork_rng(devices=[]):  # building the module draws init values: keep RNG
-            self.network_ = self.build_network(self.lookback_, self.n_features_, self.horizon_)
+            self.network_ = self._network()
         try:
             self.network_.load_state_dict({k: torch.as_tensor(np.asarray(v)) for k, v in weights.items()})
         except RuntimeError as exc:  # wrong family or hyperparameters: keep it to one line
@@ -102,7 +112,7 @@ class LinearForecaster(TorchForecaster):
     family = "linear"
 
     @dataclass
-    class Params:
+    class Params(LevelParams):
         pass
 
     def build_network(self, lookback, n_features, horizon):
@@ -115,12 +125,13 @@ class MLPForecaster(TorchForecaster):
     family = "mlp"
 
     @dataclass
-    class Params:
+    class Params(LevelParams):
         hidden: int = 32  # units per hidden layer: small enough for quick CPU runs
         layers: int = 1  # hidden layers
         dropout: float = 0.0  # off by default: short runs with early stopping rarely need it
 
         def __post_init__(self):
+            super().__post_init__()
             check_positive_ints(self, "hidden", "layers")
             check_fraction(self, "dropout")
 
@@ -136,12 +147,13 @@ class LSTMForecaster(TorchForecaster):
     cell = "lstm"
 
     @dataclass
-    class Params:
+    class Params(LevelParams):
         hidden: int = 32  # state size; 32 keeps a 48-hour window at a few ms per batch on one thread
         layers: int = 1  # stacked recurrent layers
         dropout: float = 0.0  # between stacked layers only (ignored with one layer)
 
         def __post_init__(self):
+            super().__post_init__()
             check_positive_ints(self, "hidden", "layers")
             check_fraction(self, "dropout")
 
@@ -161,7 +173,7 @@ class TransformerForecaster(TorchForecaster):
     family = "transformer"
 
     @dataclass
-    class Params:
+    class Params(LevelParams):
         d_model: int = 32  # embedding width per hour
         heads: int = 2  # attention heads; must divide d_model
         layers: int = 1  # encoder layers
@@ -169,6 +181,7 @@ class TransformerForecaster(TorchForecaster):
         dropout: float = 0.0  # off by default, as for the other families
 
         def __post_init__(self):
+            super().__post_init__()
             check_positive_ints(self, "d_model", "heads", "layers", "ff")
             check_fraction(self, "dropout")
             if self.d_model % self.heads:
