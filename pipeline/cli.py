@@ -1,8 +1,9 @@
 """`shiftgrid` command line: what Snakemake itself does not show.
 
 Each command lives in its own module `pipeline/commands/<name>.py` with `add_arguments(parser)` and
-`run(args) -> int`; this file only registers them. Bad input anywhere ends in one line
-`error: ...` and exit status 2, never a traceback.
+`run(args) -> int`; this file only registers them. Only the module of the command being run is imported
+(`shiftgrid --help` imports none), so a command pays for its own libraries and no other's. Bad input
+anywhere ends in one line `error: ...` and exit status 2, never a traceback. Reads and writes nothing.
 """
 
 from __future__ import annotations
@@ -26,25 +27,43 @@ COMMANDS = {
 }
 
 
-def build_parser() -> argparse.ArgumentParser:
+def requested_command(argv: list[str]) -> str | None:
+    """The sub-command named on the command line (the first word that is not an option or its value)."""
+    words = list(argv)
+    while words:
+        word = words.pop(0)
+        if word == "--root":
+            words = words[1:]
+        elif not word.startswith("-"):
+            return word if word in COMMANDS else None
+    return None
+
+
+def build_parser(load: set[str] | None = None) -> argparse.ArgumentParser:
+    """The parser; the commands in `load` (default: all) get their arguments and handler."""
     parser = argparse.ArgumentParser(prog="shiftgrid", description=__doc__.splitlines()[0])
     parser.add_argument("--root", default=".", help="project root holding Snakefile and config/ (default: .)")
     commands = parser.add_subparsers(dest="command", required=True)
     for name, help_text in COMMANDS.items():
-        try:
-            module = importlib.import_module(f"pipeline.commands.{name}")
-        except ModuleNotFoundError as error:
-            if error.name != f"pipeline.commands.{name}":
-                raise
-            continue
+        module = None
+        if load is None or name in load:
+            try:
+                module = importlib.import_module(f"pipeline.commands.{name}")
+            except ModuleNotFoundError as error:
+                if error.name != f"pipeline.commands.{name}":
+                    raise
+                continue
         sub = commands.add_parser(name, help=help_text, description=help_text)
-        module.add_arguments(sub)
-        sub.set_defaults(handler=module.run)
+        if module is not None:
+            module.add_arguments(sub)
+            sub.set_defaults(handler=module.run)
     return parser
 
 
 def main(argv: list[str] | None = None) -> int:
-    args = build_parser().parse_args(argv)
+    argv = sys.argv[1:] if argv is None else list(argv)
+    command = requested_command(argv)
+    args = build_parser({command} if command else set()).parse_args(argv)
     try:
         return int(args.handler(args) or 0)
     except InputError as error:

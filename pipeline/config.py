@@ -12,7 +12,6 @@ per model x penalty pair.
 
 from __future__ import annotations
 
-import json
 from dataclasses import dataclass, field
 from pathlib import Path
 from typing import Any, Dict, List, Optional
@@ -21,17 +20,19 @@ import yaml
 from hydra import compose, initialize_config_dir
 from hydra.core.config_store import ConfigStore
 from hydra.errors import HydraException
-from omegaconf import DictConfig, OmegaConf
+from omegaconf import DictConfig
 from omegaconf.errors import OmegaConfBaseException
 
 from pipeline import selection
+from pipeline.canonical import canonical_json, to_container  # noqa: F401 (re-exported: callers import them here)
 from pipeline.errors import InputError
+from pipeline.fit_config import FitConfig
 from pipeline.names import check_name
 from pipeline.splits import SplitConfig
-from pipeline.train_loop import FitConfig
 from pipeline.windows import ForecastConfig
 
 NOT_APPLICABLE = "na"  # penalty label of families that are not gradient-trained (shown as "n/a")
+DEPENDENCY_CHANGES = ("report", "rerun")  # values of tracking.dependency_changes
 
 
 @dataclass
@@ -85,8 +86,12 @@ class MetricsConfig:
 
 @dataclass
 class TrackingConfig:
-    uri: Optional[str] = None  # None: SQLite store <results_dir>/mlflow.db (absolute path)
+    uri: Optional[str] = None  # None: SQLite store <results_dir>/mlflow.db inside the project folder
     experiment: str = "shiftgrid"
+    # When a library that can change results (torch, numpy, pandas, pyarrow, scikit-learn, scipy, mlflow,
+    # matplotlib; see pipeline.provenance.RESULT_LIBRARIES) or Python changes version: "report" names the
+    # change in `shiftgrid status` and re-runs nothing; "rerun" also re-runs every job whose code imports it.
+    dependency_changes: str = "report"
 
 
 @dataclass
@@ -167,15 +172,6 @@ def compose_config(overrides: list[str] | tuple[str, ...] = (), root: Path | str
                          field="yaml") from None
 
 
-def to_container(node: Any) -> Any:
-    return OmegaConf.to_container(node, resolve=True) if isinstance(node, DictConfig) else node
-
-
-def canonical_json(value: Any) -> str:
-    """Sorted-key JSON: Snakemake compares params by value, so key order must not vary."""
-    return json.dumps(to_container(value), sort_keys=True, separators=(",", ":"))
-
-
 def _check_experiment(overrides, root) -> None:
     """The experiment group is optional in the defaults list, so Hydra would silently ignore a misspelt name."""
     folder = config_dir(root) / "experiment"
@@ -217,12 +213,16 @@ def validate(cfg: DictConfig) -> None:
     if family not in MODEL_FAMILIES:
         raise InputError(f"unknown model family {family!r}; known: {', '.join(sorted(MODEL_FAMILIES))}",
                          file="config", field="model.family")
-    build_model(family, model, seed=0)
+    build_model(family, model, seed=0)  # parameter names ...
+    MODEL_FAMILIES[family].Params(**model)  # ... and values, before any job runs (no torch: dataclasses only)
     from pipeline.verdict import check_ground_truth
 
     check_ground_truth(to_container(cfg.data.ground_truth), list(cfg.data.cities))
     penalty = to_container(cfg.penalty)
     build_penalty(penalty["name"], weight=penalty["weight"], warmup_steps=penalty["warmup_steps"],
                   **penalty["extra"])
+    if cfg.tracking.dependency_changes not in DEPENDENCY_CHANGES:
+        raise InputError(f"must be one of {', '.join(DEPENDENCY_CHANGES)}, got {cfg.tracking.dependency_changes!r}",
+                         file="config", field="tracking.dependency_changes")
     if not cfg.sweep.seeds:
         raise InputError("at least one seed is needed", file="config", field="sweep.seeds")

@@ -2,7 +2,10 @@
 
 Reads the text of `snakemake -n` (one block per job: rule, output, reason, wildcards), Snakemake's stored
 job metadata (.snakemake/metadata/<base64 of the output path>: the params of the last execution and the
-sha256 of each input) and the raw dumps. Writes nothing. `--list-changes params` lists every output in
+sha256 of each input), the raw dumps and the library versions each finished job recorded beside its log
+(`<results_dir>/logs/**/*.versions.json`, pipeline.scripts._step). Writes nothing. Obeys
+tracking.dependency_changes: with "report" (default) a changed library version is a note and nothing
+re-runs for it; with "rerun" the versions are params, so Snakemake re-runs and the reason names them. `--list-changes params` lists every output in
 Snakemake 9.27, so it is not used. Ingestion runs as a first phase: a raw dump that was only
 touched or rewritten identically re-ingests to a byte-identical table and nothing after it re-runs, so
 such a dump is reported apart from real new data.
@@ -18,6 +21,8 @@ from collections import Counter, defaultdict
 from dataclasses import dataclass, field
 from pathlib import Path
 
+from pipeline import provenance
+from pipeline.errors import InputError
 from pipeline.provenance import file_digest
 from pipeline.workflow import ALL_SPLITS, BASELINES
 
@@ -121,6 +126,56 @@ def unit_changes(old: list, new_json: str) -> list[tuple[str, str, str]]:
     return sorted(changes)
 
 
+def stored_versions(old: list) -> dict | None:
+    """The `versions` param of the last execution (JSON with a "python" key), if it had one."""
+    for value in old:
+        if isinstance(value, str) and value.startswith("{") and '"python"' in value:
+            return json.loads(value)
+    return None
+
+
+def version_changes(before: dict | None, now: dict) -> str:
+    """`torch 2.12.0 -> 2.13.0, numpy ...` for the libraries whose version differs (new ones included)."""
+    before = before or {}
+    return ", ".join(f"{name} {before.get(name, 'unrecorded')} -> {version}" for name, version in sorted(now.items())
+                     if before.get(name) != version)
+
+
+def _versions_changed(job: PlannedJob, planned_versions: str, root: Path | str) -> str | None:
+    """The changed libraries when this job re-runs because versions its code imports changed."""
+    if not planned_versions:
+        return None
+    old = stored_params(stored_metadata(root, job.output[0])) if job.output else []
+    if planned_versions in old:
+        return None
+    return version_changes(stored_versions(old), json.loads(planned_versions)) or None
+
+
+def recorded_version_notes(results_dir: Path) -> list[str]:
+    """With tracking.dependency_changes=report: libraries whose installed version differs from the one
+    finished jobs ran with (only libraries the job's rule imports), with how many jobs of each rule."""
+    now = provenance.result_versions()
+    changes: dict[str, Counter] = defaultdict(Counter)
+    for path in sorted((results_dir / "logs").rglob("*.versions.json")):
+        try:
+            record = json.loads(path.read_text())
+            rule, then = record["rule"], record["versions"]
+        except (OSError, ValueError, KeyError, TypeError):
+            continue  # a damaged record only loses its note
+        differing = {name for name, version in now.items() if then.get(name) not in (None, version)}
+        if not differing:
+            continue
+        try:
+            used = set(provenance.rule_dependencies(rule))
+        except InputError:
+            used = differing  # a rule without a script any more: report every difference
+        for name in sorted(differing & used):
+            changes[f"{name} {then[name]} -> {now[name]}"][rule] += 1
+    return [f"{change}: {sum(rules.values())} jobs ran with the older version "
+            f"({', '.join(f'{rule} {n}' for rule, n in sorted(rules.items()))})"
+            for change, rules in sorted(changes.items())]
+
+
 def _clean_city(path: str) -> str | None:
     found = re.search(r"([a-z][a-z0-9]*)\.parquet$", path)
     return found.group(1) if found and "clean" in path else None
@@ -129,6 +184,7 @@ def _clean_city(path: str) -> str | None:
 def explain(jobs: list[PlannedJob], plan, root: Path | str) -> list[str]:
     """Plain reasons, one line each, with how many jobs each one brings."""
     reasons: dict[str, set] = defaultdict(set)
+    plain = set()  # labels printed without a count of training jobs
     touched_only, new_data, new_splits = set(), set(), set()
     for job in jobs:
         if job.rule == "ingest_city":
@@ -137,7 +193,11 @@ def explain(jobs: list[PlannedJob], plan, root: Path | str) -> list[str]:
             if "Missing output" in job.reason:
                 reasons[f"city {city} not ingested yet"].add(city)
             elif "Params have changed" in job.reason or "Code has changed" in job.reason:
-                reasons[f"ingestion settings or code of city {city} changed"].add(city)
+                versions = _versions_changed(job, plan.versions(job.rule), root)
+                label = (f"ingestion: library versions changed ({versions})" if versions
+                         else f"ingestion settings or code of city {city} changed")
+                reasons[label].add(city)
+                plain.add(label)
                 new_data.add(city)
             elif raw_content_changed(meta, root):
                 new_data.add(city)
@@ -163,6 +223,9 @@ def explain(jobs: list[PlannedJob], plan, root: Path | str) -> list[str]:
                 continue
             if "Params have changed" in job.reason and planned is not None:
                 old = stored_params(stored_metadata(root, job.output[0]))
+                versions = _versions_changed(job, planned.versions, root)
+                if versions:
+                    reasons[f"library versions changed ({versions})"].add(key)
                 if planned.code_digest not in old:
                     reasons[f"code of {', '.join(families)} (or the shared training code) changed"].add(key)
                 if planned.params_json not in old:
@@ -181,7 +244,11 @@ def explain(jobs: list[PlannedJob], plan, root: Path | str) -> list[str]:
                 elif mentioned and "Updated input files" in job.reason:
                     reasons[f"clean table of city {city} changed"].add(key)
         elif job.rule in AGGREGATION_RULES and "Params have changed" in job.reason:
-            reasons["report options or aggregation code changed"].add(job.rule)
+            versions = _versions_changed(job, plan.versions(job.rule), root)
+            label = (f"{job.rule}: library versions changed ({versions})" if versions
+                     else "report options or aggregation code changed")
+            reasons[label].add(job.rule)
+            plain.add(label)
         elif job.rule == "setup_tracking":
             reasons["tracking store settings changed"].add(job.rule)
     lines = []
@@ -190,7 +257,7 @@ def explain(jobs: list[PlannedJob], plan, root: Path | str) -> list[str]:
     for label, members in sorted(reasons.items()):
         if label == "new splits":
             lines.append(f"new splits: {len(new_splits)} ({len(members)} training jobs)")
-        elif label.startswith("report options") or label.startswith("tracking") or label.startswith("city "):
+        elif label in plain or label.startswith("tracking") or label.startswith("city "):
             lines.append(label)
         else:
             lines.append(f"{label}: {len(members)} training jobs")
@@ -200,10 +267,16 @@ def explain(jobs: list[PlannedJob], plan, root: Path | str) -> list[str]:
     return lines
 
 
-def format_status(jobs: list[PlannedJob], reasons: list[str]) -> str:
+def format_status(jobs: list[PlannedJob], reasons: list[str], notes: list[str] = ()) -> str:
+    """The status text; `notes`: library versions changed under tracking.dependency_changes=report."""
     if not jobs:
-        return "up to date: nothing to run"
-    counts = count_by_rule(jobs)
-    lines = ["out of date:"] + [f"  - {line}" for line in reasons]
-    lines.append("jobs Snakemake would schedule: " + ", ".join(f"{rule} {n}" for rule, n in counts.items()))
+        lines = ["up to date: nothing to run"]
+    else:
+        lines = ["out of date:"] + [f"  - {line}" for line in reasons]
+        lines.append("jobs Snakemake would schedule: " + ", ".join(f"{rule} {n}" for rule, n in
+                                                                     count_by_rule(jobs).items()))
+    if notes:
+        lines.append("library versions changed since these jobs ran (not re-run: tracking.dependency_changes="
+                     "report; set it to rerun to re-run them):")
+        lines += [f"  - {note}" for note in notes]
     return "\n".join(lines)

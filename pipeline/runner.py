@@ -50,7 +50,16 @@ def run_pipeline(overrides: list[str], *, root: Path | str = ".", profile: str =
     return 0
 
 
+def start_dry_run(overrides: list[str], *, root: Path | str = ".", extra: list[str] | None = None
+                  ) -> subprocess.Popen:
+    """`snakemake -n` started, not awaited (`shiftgrid status` explains while it runs); text pipes."""
+    command = snakemake_command(overrides, root=root, extra=["-n", *(extra or [])])
+    return subprocess.Popen(command, env=job_environment(), cwd=root, stdout=subprocess.PIPE,
+                            stderr=subprocess.PIPE, text=True)
+
+
 def dry_run(overrides: list[str], *, root: Path | str = ".", extra: list[str] | None = None
             ) -> subprocess.CompletedProcess:
-    command = snakemake_command(overrides, root=root, extra=["-n", *(extra or [])])
-    return subprocess.run(command, env=job_environment(), cwd=root, capture_output=True, text=True)
+    process = start_dry_run(overrides, root=root, extra=extra)
+    stdout, stderr = process.communicate()
+    return subprocess.CompletedProcess(process.args, process.returncode, stdout, stderr)

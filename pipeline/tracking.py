@@ -1,7 +1,9 @@
 """MLflow bookkeeping: the store, the experiment, logging one run in batches, superseding old runs.
 
 Writes to the MLflow tracking store named by `tracking.uri` (default: SQLite file
-`<results_dir>/mlflow.db`, artifacts under `<results_dir>/mlartifacts`, both absolute paths).
+`<results_dir>/mlflow.db`, artifacts under `<results_dir>/mlartifacts`). Jobs and run records name the
+default store relative to the project folder (`project_store_uri`), so a copied or moved project keeps
+using its own store; commands resolve it against `--root` (`resolve_tracking_uri`).
 A fresh SQLite store opened by parallel jobs breaks, so `setup_store` runs once, in its
 own rule, before any training job. Every call goes through an explicit MlflowClient (no global run).
 """
@@ -23,7 +25,17 @@ HEADLINE_METRICS = ("target_mae", "target_rmse", "target_mse", "target_mase", "t
 _BATCH = {"metrics": 1000, "params": 100, "tags": 100}
 
 
+def project_store_uri(uri: str | None, results_dir: Path | str) -> str:
+    """The configured store, or the default SQLite store as the project folder's jobs see it: relative to
+    the folder they run in (SQLAlchemy reads `sqlite:///results/mlflow.db` relative to the working
+    directory), so nothing in a job's inputs or records names where the folder sits."""
+    if uri:
+        return uri
+    return f"sqlite:///{(Path(results_dir) / 'mlflow.db').as_posix()}"
+
+
 def resolve_tracking_uri(uri: str | None, results_dir: Path | str) -> str:
+    """The same store with an absolute path, for a process that may run anywhere (commands, tests)."""
     if uri:
         return uri
     return f"sqlite:///{(Path(results_dir).resolve() / 'mlflow.db')}"

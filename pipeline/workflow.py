@@ -1,25 +1,28 @@
 """The DAG plan computed at Snakefile parse time: config, cities, splits, training jobs and their params.
 
-Reads the Hydra config (overrides passed as `snakemake --config overrides="..."`) and the station table;
-never reads data, so adding data never changes the job list. Composes once per model x penalty pair
-(~66 ms each, measured here), not once per job. Each job's params are sorted-key JSON of exactly its config
-slice plus the digest of the code it runs, which is what makes re-runs minimal.
+Reads the Hydra config (overrides passed as `snakemake --config overrides="..."`), the station table and
+the package's source files (for code digests); never reads data, so adding data never changes the job
+list. Composes once per model x penalty pair, not once per job, and only when the plan's inputs changed:
+otherwise the plan comes from pipeline.plan_cache (read/written under `.snakemake/shiftgrid-plans/`).
+Each job's params are sorted-key JSON of exactly its config slice plus the digest of the code it runs (the
+rule script's import closure, pipeline.provenance), which is what makes re-runs minimal. Nothing that
+depends on where the project folder sits enters them, so a copied or moved project stays up to date.
+Config keys obeyed: data.*, split.*, forecast.*, sweep.*, model/penalty/fit/selection/metrics (job slices),
+report.* (aggregation params), tracking.* and results_dir. Imports neither torch nor MLflow, and Hydra
+and pandas only when it composes.
 """
 
 from __future__ import annotations
 
 import shlex
-from dataclasses import dataclass, field
+from dataclasses import asdict, dataclass, field
 from pathlib import Path
 
-from omegaconf import DictConfig
+from omegaconf import DictConfig, OmegaConf
 
-from pipeline import environments, provenance, twins
-from pipeline.config import (NOT_APPLICABLE, canonical_json, compose_config, expand_sweep_overrides, job_slice,
-                             to_container, validate)
+from pipeline import environments, plan_cache, provenance, twins
+from pipeline.canonical import canonical_json, to_container
 from pipeline.errors import InputError
-from pipeline.splits import plan_splits
-from pipeline.stations import load_stations
 from pipeline.tracking import resolve_tracking_uri
 
 
@@ -35,6 +38,7 @@ class TrainJob:
     model: str  # sweep model name, or BASELINES
     units: list[dict]  # {"split_id", "model", "penalty", "seed", "job": config slice}
     code_digest: str
+    versions: str = ""  # library versions its code imports, when tracking.dependency_changes=rerun
 
     @property
     def params_json(self) -> str:
@@ -52,6 +56,7 @@ class WorkflowPlan:
     jobs: dict[tuple[str, str], TrainJob] = field(default_factory=dict)
     trainable_models: list[str] = field(default_factory=list)
     baseline_models: list[str] = field(default_factory=list)
+    rule_code: dict[str, dict] = field(default_factory=dict)  # rule -> {"code", "versions"} (no families)
 
     @property
     def results_dir(self) -> str:
@@ -77,9 +82,35 @@ class WorkflowPlan:
     def all_run_records(self) -> list[str]:
         return [path for job in self.jobs.values() for path in self.records_of(job)]
 
-    def stage_digest(self, stage: str) -> str:
-        """Digest of the code one stage runs (ingest, splits, aggregate), passed as a rule param."""
-        return provenance.source_digest(provenance.STAGE_CODE[stage])
+    def code_digest(self, rule: str, families: list[str] | None = None) -> str:
+        """Digest of the code one rule's job runs (its script's import closure), passed as a rule param."""
+        if families is None and rule in self.rule_code:
+            return self.rule_code[rule]["code"]
+        return provenance.code_digest(rule, families)
+
+    def versions(self, rule: str, families: list[str] | None = None) -> str:
+        """The `versions` param of a rule: the result-relevant library versions its code imports when
+        tracking.dependency_changes is "rerun" (so an upgrade re-runs it), else "" (status only reports)."""
+        if families is None and rule in self.rule_code:
+            return self.rule_code[rule]["versions"]
+        if self.cfg.tracking.dependency_changes != "rerun":
+            return ""
+        return canonical_json(provenance.rule_dependencies(rule, families))
+
+    def to_data(self) -> dict:
+        """The plan as JSON-able data (pipeline.plan_cache stores it); `from_data` restores it."""
+        return {"cfg": to_container(self.cfg), "overrides": self.overrides, "cities": self.cities,
+                "splits": self.splits, "jobs": [asdict(job) for job in self.jobs.values()],
+                "trainable_models": self.trainable_models, "baseline_models": self.baseline_models,
+                "rule_code": self.rule_code}
+
+    @classmethod
+    def from_data(cls, data: dict, root: Path) -> "WorkflowPlan":
+        jobs = [TrainJob(**job) for job in data["jobs"]]
+        return cls(cfg=OmegaConf.create(data["cfg"]), overrides=data["overrides"], root=root,
+                   cities=data["cities"], splits=data["splits"], jobs={(j.split_id, j.model): j for j in jobs},
+                   trainable_models=data["trainable_models"], baseline_models=data["baseline_models"],
+                   rule_code=data["rule_code"])
 
     def city_format(self, city: str) -> dict:
         return to_container(self.cfg.data.cities[city])
@@ -97,9 +128,30 @@ def _is_trainable(model_cfg: dict) -> bool:
     return bool(MODEL_FAMILIES[model_cfg["family"]].trainable)
 
 
-def plan_workflow(overrides: str | list | None = None, root: Path | str = ".") -> WorkflowPlan:
+def plan_workflow(overrides: str | list | None = None, root: Path | str = ".", cache: bool = True) -> WorkflowPlan:
+    """The plan of the project folder `root` under these overrides: from the cache when its inputs are
+    unchanged (pipeline.plan_cache), else composed (and stored)."""
     root = Path(root).resolve()
-    overrides = expand_sweep_overrides(parse_overrides(overrides))
+    overrides = parse_overrides(overrides)
+    key = plan_cache.plan_key(overrides, root)
+    data = plan_cache.load(root, key) if cache else None
+    if data is not None:
+        return WorkflowPlan.from_data(data, root)
+    plan = compose_plan(overrides, root)
+    for rule in provenance.rule_scripts():  # every non-training rule's code identity, stored with the plan
+        plan.rule_code[rule] = {"code": plan.code_digest(rule), "versions": plan.versions(rule)}
+    plan_cache.store(root, key, plan.to_data(), inputs=[str(plan.cfg.data.stations)],
+                     holds_versions=plan.cfg.tracking.dependency_changes == "rerun")
+    return plan
+
+
+def compose_plan(overrides: list[str], root: Path) -> WorkflowPlan:
+    """Compose the configuration with Hydra (once per model x penalty pair) and plan cities, splits, jobs."""
+    from pipeline.config import NOT_APPLICABLE, compose_config, expand_sweep_overrides, job_slice, validate
+    from pipeline.splits import plan_splits
+    from pipeline.stations import load_stations
+
+    overrides = expand_sweep_overrides(overrides)
     cfg = compose_config(overrides, root)
     validate(cfg)
     stations = load_stations(root / cfg.data.stations)
@@ -144,12 +196,15 @@ def plan_workflow(overrides: str | list | None = None, root: Path | str = ".") -
         environments.check_units(splits, units, dict(zip(stations["station_id"].astype(str),
                                                          stations["city"].astype(str))))
         twins.check_units(units)
-        digest = provenance.training_code_digest([family])
+        digest, versions = plan.code_digest("train_model", [family]), plan.versions("train_model", [family])
         for split_id in splits:
             plan.jobs[(split_id, model_name)] = TrainJob(split_id, model_name,
-                                                         [{"split_id": split_id, **u} for u in units], digest)
+                                                         [{"split_id": split_id, **u} for u in units], digest,
+                                                         versions)
     if baseline_units and splits:
         units = [{"split_id": split_id, **unit} for split_id in splits for unit in baseline_units]
+        families = sorted(set(baseline_families))
         plan.jobs[(ALL_SPLITS, BASELINES)] = TrainJob(ALL_SPLITS, BASELINES, units,
-                                                      provenance.training_code_digest(baseline_families))
+                                                      plan.code_digest("fit_baselines", families),
+                                                      plan.versions("fit_baselines", families))
     return plan

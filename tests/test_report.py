@@ -12,7 +12,7 @@ import pytest
 
 from grid_fixture import build_report
 from pipeline import selection
-from pipeline.commands.demo import CAUTION
+from pipeline.caution import CAUTION
 from pipeline.commands import grid as grid_command
 from pipeline.report import figures
 from pipeline.report.html import ranks_section

@@ -11,6 +11,7 @@ copy, not in the repository: the digest the Snakefile computes is then the real 
 import hashlib
 import json
 import os
+import shutil
 import subprocess
 import sys
 from pathlib import Path
@@ -147,6 +148,22 @@ def test_base_run_is_complete_and_up_to_date(base, plan):
     assert counts == {}
     status = shiftgrid(base, "status", *OVERRIDES)
     assert status.returncode == 0 and "up to date" in status.stdout
+
+
+@pytest.mark.e2e
+def test_a_copied_or_moved_project_stays_up_to_date(base, tmp_path):
+    # Nothing that depends on where the folder sits is part of a job's identity (params): a copy with
+    # timestamps kept, then the copy moved elsewhere, schedules nothing.
+    copy = tmp_path / "copy"
+    shutil.copytree(base, copy, symlinks=True, copy_function=shutil.copy2)
+    assert (copy / "results" / "tracking.json").read_bytes() == (base / "results" / "tracking.json").read_bytes()
+    assert scheduled(copy)[0] == {}
+    moved = tmp_path / "elsewhere" / "moved"
+    moved.parent.mkdir()
+    os.rename(copy, moved)
+    assert scheduled(moved)[0] == {}
+    status = shiftgrid(moved, "status", *OVERRIDES)
+    assert status.returncode == 0 and status.stdout.startswith("up to date"), (status.stdout, status.stderr)
 
 
 @pytest.mark.e2e

@@ -8,14 +8,12 @@ stations, rows kept and dropped per reason, the top of the grid and where the re
 import json
 from pathlib import Path
 
+from pipeline.caution import CAUTION
 from pipeline.config import compose_config, expand_sweep_overrides, to_container
 from pipeline.errors import InputError
 from pipeline.ingest.qc import summary_row
 from pipeline.runner import run_pipeline
 from pipeline.stations import load_stations
-
-CAUTION = ("Research forecasts only: not an air-quality advisory. Public health alerts follow the local "
-           "agency and the applicable regulations.")
 
 
 def add_arguments(parser) -> None:

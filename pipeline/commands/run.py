@@ -5,9 +5,6 @@ Overrides use Hydra syntax; `model=a,b`, `penalty=a,b` and `seed=0,1` sweep (see
 
 from pathlib import Path
 
-from pipeline.runner import run_pipeline
-from pipeline.workflow import plan_workflow
-
 
 def add_arguments(parser) -> None:
     parser.add_argument("overrides", nargs="*", help="Hydra overrides, e.g. experiment=demo model=lstm,gru")
@@ -17,6 +14,9 @@ def add_arguments(parser) -> None:
 
 
 def run(args) -> int:
+    from pipeline.runner import run_pipeline
+    from pipeline.workflow import plan_workflow
+
     plan = plan_workflow(args.overrides, args.root)  # fails early, in one line, on a bad override
     print(f"plan: {len(plan.cities)} cities, {len(plan.splits)} splits, {len(plan.jobs)} training jobs, "
           f"{len(plan.all_run_records())} runs")

@@ -1,16 +1,15 @@
 """`shiftgrid status [OVERRIDES...]`: what is out of date and why, in plain reasons.
 
 Runs `snakemake -n` on the whole DAG (ingestion included) with the same overrides as `shiftgrid run` and
-explains its job list with pipeline.outdated (stored params and input checksums under .snakemake/).
-Writes nothing. Config keys obeyed: everything the Snakefile plan reads (data, split, sweep, report, ...).
+explains its job list with pipeline.outdated (stored params and input checksums under .snakemake/), plus
+library versions that changed since finished jobs ran. Writes nothing but the plan cache (the dry run's
+Snakefile does too). Config keys obeyed: everything the Snakefile plan reads (data, split, sweep,
+report, ...) and tracking.dependency_changes.
 """
 
 from pathlib import Path
 
-from pipeline import outdated
 from pipeline.errors import InputError
-from pipeline.runner import dry_run
-from pipeline.workflow import plan_workflow
 
 
 def add_arguments(parser) -> None:
@@ -19,13 +18,28 @@ def add_arguments(parser) -> None:
 
 
 def run(args) -> int:
-    plan = plan_workflow(args.overrides, args.root)
-    result = dry_run(args.overrides, root=Path(args.root))
-    if result.returncode != 0:
-        tail = [line for line in (result.stderr + result.stdout).splitlines() if line.strip()][-1:]
+    from pipeline.runner import start_dry_run
+
+    # Snakemake starts first: its own start-up takes most of the time, and the plan is read (from the
+    # cache, pipeline.plan_cache) meanwhile. A bad override fails here in one line; the dry run is stopped.
+    process = start_dry_run(args.overrides, root=Path(args.root))
+    try:
+        from pipeline import outdated
+        from pipeline.workflow import plan_workflow
+
+        plan = plan_workflow(args.overrides, args.root)
+    except BaseException:
+        process.kill()
+        process.wait()
+        raise
+    stdout, stderr = process.communicate()
+    if process.returncode != 0:
+        tail = [line for line in (stderr + stdout).splitlines() if line.strip()][-1:]
         raise InputError(f"snakemake dry run failed: {tail[0] if tail else 'no output'}", field="status")
-    jobs = outdated.parse_dry_run(result.stdout + "\n" + result.stderr)
-    print(outdated.format_status(jobs, outdated.explain(jobs, plan, Path(args.root))))
+    jobs = outdated.parse_dry_run(stdout + "\n" + stderr)
+    notes = (outdated.recorded_version_notes(Path(args.root) / plan.results_dir)
+             if plan.cfg.tracking.dependency_changes == "report" else [])
+    print(outdated.format_status(jobs, outdated.explain(jobs, plan, Path(args.root)), notes))
     if args.jobs:
         for job in jobs:
             where = ", ".join(f"{k}={v}" for k, v in job.wildcards.items())

@@ -21,7 +21,7 @@ import pandas as pd
 
 from pipeline import grid_stats, selection
 from pipeline.atomic import write_text_atomic
-from pipeline.commands.demo import CAUTION  # one wording of the caution for the CLI and the report
+from pipeline.caution import CAUTION  # one wording of the caution for the CLI and the report
 from pipeline.ingest.qc import summary_row
 from pipeline.report import figures, shift_data
 from pipeline.report.style import CSS

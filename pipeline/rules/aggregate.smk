@@ -4,14 +4,14 @@
 
 
 def report_slice_json(keys=None):
-    from pipeline.config import canonical_json, to_container
+    from pipeline.canonical import canonical_json, to_container
 
     options = to_container(PLAN.cfg.report)  # (`report` is a Snakemake keyword: not a variable name here)
     return canonical_json({k: v for k, v in options.items() if keys is None or k in keys})
 
 
 def ground_truth_json():
-    from pipeline.config import canonical_json
+    from pipeline.canonical import canonical_json
 
     return canonical_json(PLAN.cfg.data.ground_truth)  # null when the scenario declares none
 
@@ -29,7 +29,8 @@ rule aggregate_grid:
         f"{RESULTS}/logs/aggregate_grid.log",
     params:
         report=report_slice_json(("metric", "bootstrap_samples")),
-        code=PLAN.stage_digest("aggregate"),
+        code=PLAN.code_digest("aggregate_grid"),
+        versions=PLAN.versions("aggregate_grid"),
     script:
         "../scripts/aggregate_grid.py"
 
@@ -45,7 +46,8 @@ rule diagnose_shift:
     params:
         cities=PLAN.cities,
         exclude=sorted(PLAN.cfg.forecast.exclude_features),
-        code=PLAN.stage_digest("aggregate"),
+        code=PLAN.code_digest("diagnose_shift"),
+        versions=PLAN.versions("diagnose_shift"),
     script:
         "../scripts/diagnose_shift.py"
 
@@ -65,6 +67,7 @@ rule render_report:
     params:
         report=report_slice_json(),
         ground_truth=ground_truth_json(),
-        code=PLAN.stage_digest("aggregate"),
+        code=PLAN.code_digest("render_report"),
+        versions=PLAN.versions("render_report"),
     script:
         "../scripts/render_report.py"

@@ -8,7 +8,7 @@ def raw_files_of(wildcards):
 
 
 def city_format_json(wildcards):
-    from pipeline.config import canonical_json
+    from pipeline.canonical import canonical_json
 
     return canonical_json(PLAN.city_format(wildcards.city))
 
@@ -26,6 +26,7 @@ rule ingest_city:
         city_format=city_format_json,
         raw_dir=PLAN.cfg.data.raw_dir,
         reference_temperature_c=PLAN.cfg.data.reference_temperature_c,
-        code=PLAN.stage_digest("ingest"),
+        code=PLAN.code_digest("ingest_city"),
+        versions=PLAN.versions("ingest_city"),
     script:
         "../scripts/ingest_city.py"

@@ -1,4 +1,6 @@
 # Stage 2: tracking store and split records. Both are cheap; the split list itself comes from config.
+# No param may depend on where the project folder sits (a copied or moved project must stay up to date):
+# the store is passed as configured (empty: the default SQLite store under results_dir), not resolved.
 
 
 rule setup_tracking:
@@ -7,9 +9,11 @@ rule setup_tracking:
     log:
         f"{RESULTS}/logs/setup_tracking.log",
     params:
-        uri=PLAN.tracking_uri,
+        uri=PLAN.cfg.tracking.uri or "",
         experiment=PLAN.cfg.tracking.experiment,
         results_dir=RESULTS,
+        code=PLAN.code_digest("setup_tracking"),
+        versions=PLAN.versions("setup_tracking"),
     script:
         "../scripts/setup_tracking.py"
 
@@ -19,7 +23,7 @@ def clean_inputs_of_split(wildcards):
 
 
 def split_plan_json(wildcards):
-    from pipeline.config import canonical_json
+    from pipeline.canonical import canonical_json
 
     return canonical_json(PLAN.splits[wildcards.split_id])
 
@@ -35,6 +39,7 @@ rule build_split:
         plan=split_plan_json,
         lookback=PLAN.cfg.forecast.lookback_hours,
         horizon=PLAN.cfg.forecast.horizon_hours,
-        code=PLAN.stage_digest("splits"),
+        code=PLAN.code_digest("build_split"),
+        versions=PLAN.versions("build_split"),
     script:
         "../scripts/build_split.py"

@@ -19,6 +19,10 @@ def job_code(wildcards):
     return job_of(wildcards).code_digest
 
 
+def job_versions(wildcards):
+    return job_of(wildcards).versions
+
+
 rule train_model:
     input:
         unpack(clean_inputs_of_split),
@@ -34,6 +38,7 @@ rule train_model:
     params:
         units=job_units,
         code=job_code,
+        versions=job_versions,
     script:
         "../scripts/train_model.py"
 
@@ -64,6 +69,7 @@ if ("all", "baselines") in PLAN.jobs:
         params:
             units=PLAN.jobs[("all", "baselines")].params_json,
             code=PLAN.jobs[("all", "baselines")].code_digest,
+            versions=PLAN.jobs[("all", "baselines")].versions,
             results=RESULTS,
         script:
             "../scripts/fit_baselines.py"
