@@ -99,12 +99,17 @@ def _chunks(items: list, size: int) -> Iterable[list]:
 
 def log_run(client, experiment_id_: str, *, run_name: str, params: dict[str, str],
             metrics: dict[str, float], curves: dict[str, list[tuple[int, float]]], tags: dict[str, str],
-            artifacts: dict[str, Path]) -> str:
-    """Create, fill and finish one run with batched calls (one HTTP request per batch on a server)."""
-    from mlflow.entities import Metric, Param
+            artifacts: dict[str, Path], run_id: str | None = None) -> str:
+    """Create (unless `run_id` names a started run), fill and finish one run with batched calls (one HTTP
+    request per batch on a server)."""
+    from mlflow.entities import Metric, Param, RunTag
 
-    run = client.create_run(experiment_id_, run_name=run_name, tags={k: str(v) for k, v in tags.items()})
-    run_id = run.info.run_id
+    if run_id is None:
+        run_id = client.create_run(experiment_id_, run_name=run_name,
+                                   tags={k: str(v) for k, v in tags.items()}).info.run_id
+    else:
+        for batch in _chunks([RunTag(k, str(v)) for k, v in sorted(tags.items())], _BATCH["tags"]):
+            client.log_batch(run_id, tags=batch)
     now = int(time.time() * 1000)
     metric_rows = [Metric(k, float(v), now, 0) for k, v in sorted(metrics.items())]
     metric_rows += [Metric(k, float(v), now, int(step)) for k, points in sorted(curves.items())

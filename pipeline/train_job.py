@@ -17,7 +17,7 @@ from pathlib import Path
 import pandas as pd
 import yaml
 
-from pipeline import provenance, selection, tracking, twins
+from pipeline import provenance, run_state, selection, tracking, twins
 from pipeline.config import canonical_json
 from pipeline.atomic import write_json_atomic
 from pipeline.train import history_curves, predictions_frame, run_seed, state_for_saving, station_city_map
@@ -86,18 +86,23 @@ def make_record(run_id: str, experiment: str, experiment_id: str, tracking_uri: 
 def _train_and_log(client, experiment_id: str, unit: dict, split: dict, windows, station_city: dict,
                    code_digest: str, digest: str, prepare_seconds: float):
     job, seed = unit["job"], unit["seed"]
-    outcome = run_seed(job, seed, windows, split, station_city)
-    outcome["metrics"]["prepare_seconds"] = prepare_seconds
     tags = tags_for(split, job, seed, code_digest)
-    tags.update({"selection_label": selection.label(outcome["primary"]), "unit_digest": digest})
-    params = tracking.flatten({k: v for k, v in job.items() if k != "model_name"})
-    params.update({"n_train_windows": str(len(windows.train.y)), "n_test_windows": str(len(windows.test_target.y))})
-    with tempfile.TemporaryDirectory() as workdir:
-        artifacts = _artifacts(Path(workdir), job, split, outcome, windows)
-        run_name = f"{split['split_id']}/{job['model_name']}/{job['penalty_name']}/{seed}"
-        run_id = tracking.log_run(client, experiment_id, run_name=run_name, params=params,
-                                  metrics=outcome["metrics"], curves=history_curves(outcome["model"].history_),
-                                  tags=tags, artifacts=artifacts)
+    tags["unit_digest"] = digest
+    run_name = f"{split['split_id']}/{job['model_name']}/{job['penalty_name']}/{seed}"
+    # RUNNING while it trains: a job killed now leaves a run the next job can close (pipeline.run_state)
+    run_id = run_state.start_run(client, experiment_id, run_name, tags)
+    with run_state.closed_on_failure(client, run_id):
+        outcome = run_seed(job, seed, windows, split, station_city)
+        outcome["metrics"]["prepare_seconds"] = prepare_seconds
+        tags["selection_label"] = selection.label(outcome["primary"])
+        params = tracking.flatten({k: v for k, v in job.items() if k != "model_name"})
+        params.update({"n_train_windows": str(len(windows.train.y)),
+                       "n_test_windows": str(len(windows.test_target.y))})
+        with tempfile.TemporaryDirectory() as workdir:
+            artifacts = _artifacts(Path(workdir), job, split, outcome, windows)
+            tracking.log_run(client, experiment_id, run_name=run_name, params=params, metrics=outcome["metrics"],
+                             curves=history_curves(outcome["model"].history_),
+                             tags={"selection_label": tags["selection_label"]}, artifacts=artifacts, run_id=run_id)
     return run_id, outcome["primary"], outcome["metrics"], {k: tags[k] for k in tracking.RUN_IDENTITY_TAGS}
 
 
@@ -125,6 +130,7 @@ def run_train_job(split_path: Path | str, units: list[dict], record_paths: list[
                                  found.data.tags.get("selection_rule", job["selection"]["rule"]),
                                  found.data.metrics, [], reused=True)
         else:
+            run_state.close_orphans(client, experiment_id, digest)  # runs left RUNNING by a killed job
             if windows is None:  # built once, and only when something is trained
                 windows = build_windows(split, tables, ForecastConfig(**job["forecast"]))
                 station_city = station_city_map(tables)

@@ -61,13 +61,15 @@ def search(client, experiment_id: str, args) -> list[dict]:
         tags = found.data.tags
         sources = tags.get("sources", "").split("+")
         successor = tags.get(tracking.SUPERSEDED_TAG)
-        if (args.source and args.source not in sources) or (args.current and successor) or \
+        # a killed, failed or still running run is never current: the grid uses finished runs only
+        state = "superseded" if successor else "current" if found.info.status == "FINISHED" else found.info.status.lower()
+        if (args.source and args.source not in sources) or (args.current and state != "current") or \
                 (args.superseded and not successor):
             continue
         rows.append({"run_id": found.info.run_id, "started": audit.when(found.info.start_time)[:16],
                      "split_id": tags.get("split_id"), "sources": tags.get("sources"), "target": tags.get("target"),
                      "model": tags.get("model"), "penalty": "n/a" if tags.get("penalty") == "na" else tags.get("penalty"),
-                     "seed": tags.get("seed"), "state": "superseded" if successor else "current",
+                     "seed": tags.get("seed"), "state": state,
                      "superseded_by": successor or "", "target_mae": found.data.metrics.get("target_mae"),
                      "_start": found.info.start_time or 0})
     rows.sort(key=lambda row: (-row["_start"], row["run_id"]))
