@@ -15,6 +15,8 @@ import subprocess
 import sys
 from pathlib import Path
 
+from pipeline.sweep_guard import call_interruptible
+
 PROFILES = {"local": "config/profiles/local", "slurm": "config/profiles/slurm"}
 
 
@@ -44,7 +46,7 @@ def run_pipeline(overrides: list[str], *, root: Path | str = ".", profile: str =
     flags = ["--quiet", "rules", "host", "reason"] if quiet else []  # keep the progress lines
     for phase in (["--until", "ingest_city"], []):
         command = snakemake_command(overrides, root=root, profile=profile, extra=[*phase, *flags, *(extra or [])])
-        status = subprocess.call(command, env=job_environment(), cwd=root)
+        status = call_interruptible(command, env=job_environment(), cwd=root)  # Ctrl-C: Snakemake cleans up first
         if status != 0:
             return status
     return 0

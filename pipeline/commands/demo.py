@@ -12,7 +12,8 @@ from pipeline.caution import CAUTION
 from pipeline.config import compose_config, expand_sweep_overrides, to_container
 from pipeline.errors import InputError
 from pipeline.ingest.qc import summary_row
-from pipeline.runner import run_pipeline
+from pipeline.sweep_guard import project_lock, run_guarded
+from pipeline.tracking import resolve_tracking_uri
 from pipeline.stations import load_stations
 
 
@@ -67,14 +68,16 @@ def qc_summary(qc_dir: Path) -> list[str]:
 
 def run(args) -> int:
     root = Path(args.root)
-    summary = write_dumps(args.overrides, root, args.days)
-    print(f"demo dumps written: {json.dumps(summary, default=str)[:400]}")
-    if not args.run:
-        return 0
-    status = run_pipeline(args.overrides, root=root, quiet=True)
+    with project_lock(root, "shiftgrid demo"):  # never rewrite dumps under a running sweep
+        summary = write_dumps(args.overrides, root, args.days)
+        print(f"demo dumps written: {json.dumps(summary, default=str)[:400]}")
+        if not args.run:
+            return 0
+        cfg = compose_config(expand_sweep_overrides(args.overrides), root)
+        uri = resolve_tracking_uri(cfg.tracking.uri, root / cfg.results_dir)
+        status = run_guarded(args.overrides, root, uri, command="demo", quiet=True)
     if status != 0:
         return status
-    cfg = compose_config(expand_sweep_overrides(args.overrides), root)
     print("ingestion (rows per city):")
     print("\n".join(qc_summary(root / cfg.data.qc_dir)))
     try:

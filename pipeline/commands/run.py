@@ -14,13 +14,13 @@ def add_arguments(parser) -> None:
 
 
 def run(args) -> int:
-    from pipeline.runner import run_pipeline
+    from pipeline.sweep_guard import run_guarded
     from pipeline.workflow import plan_workflow
 
     plan = plan_workflow(args.overrides, args.root)  # fails early, in one line, on a bad override
     print(f"plan: {len(plan.cities)} cities, {len(plan.splits)} splits, {len(plan.jobs)} training jobs, "
           f"{len(plan.all_run_records())} runs")
-    status = run_pipeline(args.overrides, root=Path(args.root), profile=args.profile, extra=args.snakemake)
+    status = run_guarded(args.overrides, Path(args.root), plan.tracking_uri, profile=args.profile, extra=args.snakemake)
     if status == 0:
         print(f"grid: {Path(args.root) / plan.results_dir / 'grid.csv'}")
         print(f"report: {Path(args.root) / plan.results_dir / 'report.html'}")

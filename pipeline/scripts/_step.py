@@ -7,12 +7,14 @@ library versions the job ran with beside the job's log (pipeline.provenance.vers
 """
 
 import contextlib
+import signal
 import sys
 import traceback
 from pathlib import Path
 
 from pipeline.atomic import write_json_atomic
 from pipeline.errors import InputError
+from pipeline.sweep_guard import raise_interrupt
 from pipeline.provenance import result_versions, versions_file
 
 
@@ -20,6 +22,7 @@ def run_step(snakemake, work) -> None:
     log_path = Path(snakemake.log[0]) if snakemake.log else None
     if log_path:
         log_path.parent.mkdir(parents=True, exist_ok=True)
+    signal.signal(signal.SIGTERM, raise_interrupt)  # a scheduler's SIGTERM closes the MLflow run as for Ctrl-C
     with open(log_path, "w") if log_path else contextlib.nullcontext(sys.stderr) as log:
         with contextlib.redirect_stdout(log), contextlib.redirect_stderr(log):
             try:
@@ -28,6 +31,9 @@ def run_step(snakemake, work) -> None:
                 print(f"error: {error}", file=log)
                 print(f"error: {error}", file=sys.__stderr__)
                 sys.exit(2)
+            except KeyboardInterrupt:
+                print("error: interrupted", file=log)
+                sys.exit(130)
             except Exception:
                 traceback.print_exc(file=log)
                 print(f"error: step failed, see {log_path}", file=sys.__stderr__)

@@ -8,6 +8,7 @@ import json
 from pathlib import Path
 
 from pipeline.scripts._step import run_step
+from pipeline.store_check import store_errors
 from pipeline.train_job import run_train_job
 
 
@@ -20,8 +21,9 @@ def work(snakemake):
         by_split.setdefault(unit["split_id"], []).append(index)
     for split_id, indices in by_split.items():
         split_path = Path(snakemake.params.results) / "splits" / f"{split_id}.json"
-        run_train_job(split_path, [units[i] for i in indices], [outputs[i] for i in indices],
-                      tracking["tracking_uri"], tracking["experiment"], snakemake.params.code)
+        with store_errors(tracking["tracking_uri"]):  # a failing store ends the job in one line
+            run_train_job(split_path, [units[i] for i in indices], [outputs[i] for i in indices],
+                          tracking["tracking_uri"], tracking["experiment"], snakemake.params.code)
 
 
 run_step(snakemake, work)  # noqa: F821
