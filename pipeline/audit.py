@@ -36,9 +36,9 @@ def open_store(uri: str):
 
 def tracking_uri_for(root: Path | str, overrides: list[str], explicit: str | None = None) -> tuple[str, object]:
     """(tracking URI, composed config): --tracking-uri wins, else the config's store under results_dir."""
-    from pipeline.config import compose_config, expand_sweep_overrides
+    from pipeline.workflow import plan_config  # the cached plan's config when there is one: no Hydra
 
-    cfg = compose_config(expand_sweep_overrides(list(overrides or [])), root)
+    cfg = plan_config(list(overrides or []), root)
     uri = explicit or tracking.resolve_tracking_uri(cfg.tracking.uri, Path(root) / cfg.results_dir)
     return uri, cfg
 

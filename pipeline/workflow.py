@@ -18,10 +18,8 @@ import shlex
 from dataclasses import asdict, dataclass, field
 from pathlib import Path
 
-from omegaconf import DictConfig, OmegaConf
-
 from pipeline import environments, plan_cache, provenance, twins
-from pipeline.canonical import canonical_json, to_container
+from pipeline.canonical import ConfigNode, canonical_json, to_container
 from pipeline.errors import InputError
 from pipeline.tracking import resolve_tracking_uri
 
@@ -48,7 +46,7 @@ class TrainJob:
 
 @dataclass
 class WorkflowPlan:
-    cfg: DictConfig
+    cfg: ConfigNode  # the composed, validated configuration as plain data
     overrides: list[str]
     root: Path
     cities: list[str]
@@ -107,7 +105,7 @@ class WorkflowPlan:
     @classmethod
     def from_data(cls, data: dict, root: Path) -> "WorkflowPlan":
         jobs = [TrainJob(**job) for job in data["jobs"]]
-        return cls(cfg=OmegaConf.create(data["cfg"]), overrides=data["overrides"], root=root,
+        return cls(cfg=ConfigNode(data["cfg"]), overrides=data["overrides"], root=root,
                    cities=data["cities"], splits=data["splits"], jobs={(j.split_id, j.model): j for j in jobs},
                    trainable_models=data["trainable_models"], baseline_models=data["baseline_models"],
                    rule_code=data["rule_code"])
@@ -145,6 +143,19 @@ def plan_workflow(overrides: str | list | None = None, root: Path | str = ".", c
     return plan
 
 
+def plan_config(overrides: str | list | None = None, root: Path | str = ".") -> ConfigNode:
+    """The composed configuration alone (commands that only locate results and the store): the cached
+    plan's when there is one (no Hydra, no pandas), else composed once (not once per model x penalty)."""
+    root = Path(root).resolve()
+    overrides = parse_overrides(overrides)
+    data = plan_cache.load(root, plan_cache.plan_key(overrides, root))
+    if data is not None:
+        return ConfigNode(data["cfg"])
+    from pipeline.config import compose_config, expand_sweep_overrides
+
+    return ConfigNode(to_container(compose_config(expand_sweep_overrides(overrides), root)))
+
+
 def compose_plan(overrides: list[str], root: Path) -> WorkflowPlan:
     """Compose the configuration with Hydra (once per model x penalty pair) and plan cities, splits, jobs."""
     from pipeline.config import NOT_APPLICABLE, compose_config, expand_sweep_overrides, job_slice, validate
@@ -170,7 +181,8 @@ def compose_plan(overrides: list[str], root: Path) -> WorkflowPlan:
     splits = {item["split_id"]: item for item in
               plan_splits(split_cfg, stations[stations["city"].isin(cities)],
                           cfg.forecast.lookback_hours, cfg.forecast.horizon_hours)}
-    plan = WorkflowPlan(cfg=cfg, overrides=overrides, root=root, cities=cities, splits=splits)
+    plan = WorkflowPlan(cfg=ConfigNode(to_container(cfg)), overrides=overrides, root=root, cities=cities,
+                        splits=splits)
     baseline_units, baseline_families = [], []
     for model_name in cfg.sweep.models:
         model_cfg = compose_config([*overrides, f"model={model_name}"], root)

@@ -8,9 +8,8 @@ import base64
 import json
 from pathlib import Path
 
-from omegaconf import OmegaConf
-
 from pipeline import outdated, provenance
+from pipeline.canonical import ConfigNode
 from pipeline.outdated import PlannedJob
 from pipeline.workflow import TrainJob, WorkflowPlan
 
@@ -27,7 +26,7 @@ def test_rule_dependencies_follow_the_import_graph():
 
 def test_versions_are_params_only_when_the_setting_says_rerun():
     def plan(mode):
-        return WorkflowPlan(cfg=OmegaConf.create({"tracking": {"dependency_changes": mode}}), overrides=[],
+        return WorkflowPlan(cfg=ConfigNode({"tracking": {"dependency_changes": mode}}), overrides=[],
                             root=Path("."), cities=[], splits={})
 
     assert plan("report").versions("train_model", ["lstm"]) == ""
@@ -66,7 +65,7 @@ def test_rerun_mode_names_the_changed_versions_as_the_reason(tmp_path):
     job = TrainJob("s1", "lstm", [{"split_id": "s1", "model": "lstm", "penalty": "erm", "seed": 0,
                                    "job": {"model": {"family": "lstm"}, "model_name": "lstm", "penalty_name": "erm"}}],
                    code_digest="abc", versions=json.dumps(now, sort_keys=True, separators=(",", ":")))
-    plan = WorkflowPlan(cfg=OmegaConf.create({"tracking": {"dependency_changes": "rerun"},
+    plan = WorkflowPlan(cfg=ConfigNode({"tracking": {"dependency_changes": "rerun"},
                                               "data": {"clean_dir": "data/clean"}}),
                         overrides=[], root=tmp_path, cities=["a", "b"],
                         splits={"s1": {"sources": ["a"], "target": "b"}}, jobs={("s1", "lstm"): job})

@@ -42,7 +42,7 @@ def test_help_of_the_command_and_of_every_sub_command_loads_neither():
 def test_planning_a_sweep_with_torch_families_loads_neither(tmp_path):
     project = make_project(tmp_path / "project")
     code = ("from pipeline.workflow import plan_workflow\n"
-            f"plan = plan_workflow(['experiment=tiny'], {str(project)!r}, cache=False)\n"
+            f"plan = plan_workflow(['experiment=tiny', 'sweep.penalties=[erm]'], {str(project)!r}, cache=False)\n"
             "assert plan.trainable_models == ['linear', 'lstm'], plan.trainable_models")
     assert loaded_after(code) == []
 
@@ -76,13 +76,19 @@ def test_the_plan_is_cached_and_recomputed_when_an_input_changes(tmp_path, monke
     from pipeline import workflow
 
     project = make_project(tmp_path / "project")
-    overrides = ["experiment=tiny", "sweep.models=[persistence,ridge]"]
+    overrides = ["experiment=tiny", "sweep.models=[persistence]"]
     first = workflow.plan_workflow(overrides, project)
     calls = []
     composed = workflow.compose_plan
     monkeypatch.setattr(workflow, "compose_plan", lambda *a: calls.append(a) or composed(*a))
     again = workflow.plan_workflow(overrides, project)
     assert calls == [] and again.to_data() == first.to_data()  # a hit: Hydra not asked again
+    from pipeline.canonical import to_container
+
+    monkeypatch.setattr("pipeline.config.compose_config", lambda *a: calls.append(a))
+    assert to_container(workflow.plan_config(overrides, project)) == to_container(first.cfg) and calls == []
+    monkeypatch.undo()
+    monkeypatch.setattr(workflow, "compose_plan", lambda *a: calls.append(a) or composed(*a))
     stations = project / "config" / "stations.csv"
     stations.write_text(stations.read_text() + "\n")  # a file the plan read, checked on load
     workflow.plan_workflow(overrides, project)

@@ -139,11 +139,11 @@ def render(summary: pd.DataFrame, fmt: str) -> str:
 
 
 def _config(root: Path, overrides: list[str]):
-    from pipeline.config import compose_config, expand_sweep_overrides
+    from pipeline.workflow import plan_config  # the cached plan's config when there is one: no Hydra
 
     if not (Path(root) / "config").exists():
         return None
-    return compose_config(expand_sweep_overrides(list(overrides)), root)
+    return plan_config(list(overrides), root)
 
 
 def run(args) -> int:
