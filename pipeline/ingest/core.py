@@ -164,7 +164,9 @@ def ingest_city(city: str, fmt: dict, raw_dir, stations: pd.DataFrame,
     kept = frame[active()].reset_index(drop=True)
     if kept.empty:  # never hand an empty table to the splits and training
         if len(frame) + raw.pre_dropped.get("unparseable_record", 0) == 0:
-            raise InputError(f"no data row in {len(paths)} delivered file(s)", file=str(paths[0]), field="rows")
+            raise InputError(f"no data row in {len(paths)} delivered file(s)", file=str(paths[0]),
+                             row=spec["header_line"] + 1 if spec["layout"] != "jsonl" else 1,
+                             field="rows")
         raise InputError(f"no usable row for city {city}: every row was dropped "
                          f"({qc.top_codes(pd.Series(reason[reason != '']))}, see unparseable_record too)",
                          file=str(paths[0]), field="rows")
