@@ -1,6 +1,6 @@
 """Faults during a real sweep, each resumed to a complete and consistent project (the real DAG; minutes).
 
-One small project (2 invented cities, persistence and linear, one seed) lives through, in order:
+One small project (2 invented cities, the linear model, one seed) lives through, in order:
 1. a second `shiftgrid run` started while the first holds the project: refused in one line naming the lock;
 2. a training job SIGKILLed mid-run: the sweep fails, its MLflow run is left RUNNING by its job and closed as
    KILLED by the next training job (pipeline.run_state); `shiftgrid run` again completes the sweep;
@@ -42,7 +42,7 @@ forecast:
   horizon_hours: 6
   stride_hours: 2
 sweep:
-  models: [persistence, linear]
+  models: [linear]
   penalties: [erm]
   seeds: [0]
 fit:
