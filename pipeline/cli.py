@@ -11,8 +11,10 @@ from __future__ import annotations
 import argparse
 import importlib
 import sys
+import traceback
 
 from pipeline.errors import InputError
+from pipeline.tracking import redact
 
 # name -> one-line help; the module pipeline.commands.<name> implements it.
 COMMANDS = {
@@ -67,10 +69,13 @@ def main(argv: list[str] | None = None) -> int:
     try:
         return int(args.handler(args) or 0)
     except InputError as error:
-        print(f"error: {error}", file=sys.stderr)
+        print(f"error: {redact(str(error))}", file=sys.stderr)
         return 2
     except KeyboardInterrupt:
         return 130
+    except Exception:  # still a traceback, but MLflow quotes the URL it failed on: credentials redacted
+        print(redact(traceback.format_exc()), file=sys.stderr, end="")
+        return 1
 
 
 if __name__ == "__main__":

@@ -16,6 +16,7 @@ import sys
 from pathlib import Path
 
 from pipeline.sweep_guard import call_interruptible
+from pipeline.tracking import hide_credentials
 
 PROFILES = {"local": "config/profiles/local", "slurm": "config/profiles/slurm"}
 
@@ -44,9 +45,11 @@ def run_pipeline(overrides: list[str], *, root: Path | str = ".", profile: str =
                  extra: list[str] | None = None, quiet: bool = False) -> int:
     """Phase 1: ingestion only. Phase 2: everything else. Returns Snakemake's exit status."""
     flags = ["--quiet", "rules", "host", "reason"] if quiet else []  # keep the progress lines
+    env = job_environment()
+    overrides = hide_credentials(overrides, env)  # Snakemake logs its command line; jobs inherit env
     for phase in (["--until", "ingest_city"], []):
         command = snakemake_command(overrides, root=root, profile=profile, extra=[*phase, *flags, *(extra or [])])
-        status = call_interruptible(command, env=job_environment(), cwd=root)  # Ctrl-C: Snakemake cleans up first
+        status = call_interruptible(command, env=env, cwd=root)  # Ctrl-C: Snakemake cleans up first
         if status != 0:
             return status
     return 0
@@ -55,9 +58,10 @@ def run_pipeline(overrides: list[str], *, root: Path | str = ".", profile: str =
 def start_dry_run(overrides: list[str], *, root: Path | str = ".", extra: list[str] | None = None
                   ) -> subprocess.Popen:
     """`snakemake -n` started, not awaited (`shiftgrid status` explains while it runs); text pipes."""
-    command = snakemake_command(overrides, root=root, extra=["-n", *(extra or [])])
-    return subprocess.Popen(command, env=job_environment(), cwd=root, stdout=subprocess.PIPE,
-                            stderr=subprocess.PIPE, text=True)
+    env = job_environment()
+    command = snakemake_command(hide_credentials(overrides, env), root=root, extra=["-n", *(extra or [])])
+    return subprocess.Popen(command, env=env, cwd=root, stdout=subprocess.PIPE, stderr=subprocess.PIPE,
+                            text=True)
 
 
 def dry_run(overrides: list[str], *, root: Path | str = ".", extra: list[str] | None = None

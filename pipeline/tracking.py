@@ -6,10 +6,16 @@ default store relative to the project folder (`project_store_uri`), so a copied 
 using its own store; commands resolve it against `--root` (`resolve_tracking_uri`).
 A fresh SQLite store opened by parallel jobs breaks, so `setup_store` runs once, in its
 own rule, before any training job. Every call goes through an explicit MlflowClient (no global run).
+A team store (an MLflow server, or a database every node reaches) is `tracking.uri` or, when that is
+unset, MLflow's own MLFLOW_TRACKING_URI, which cluster jobs inherit. Credentials in a URI never reach a
+file, param, tag or message: everything stored or shown is `redact`ed, and `client_for` takes the
+credentials back from MLFLOW_TRACKING_URI (`connection_uri`).
 """
 
 from __future__ import annotations
 
+import os
+import re
 import time
 from pathlib import Path
 from typing import Iterable
@@ -25,17 +31,73 @@ HEADLINE_METRICS = ("target_mae", "target_rmse", "target_mse", "target_mase", "t
 _BATCH = {"metrics": 1000, "params": 100, "tags": 100}
 
 
+ENV_URI = "MLFLOW_TRACKING_URI"
+# Shell- and Hydra-safe (no quoting needed when the URI travels in an override on a command line).
+REDACTED = "REDACTED"
+# user:password@ (or a bare token@) after a scheme, and secret-looking query parameters, anywhere in a text.
+_USERINFO = re.compile(r"(?P<scheme>\b[A-Za-z][A-Za-z0-9+.-]*://)(?P<userinfo>[^/@\s'\"]+)@")
+_QUERY_SECRET = re.compile(r"(?P<key>[?&](?:password|passwd|pwd|token|access_token|secret|api_key)=)[^&\s'\"]+",
+                           re.IGNORECASE)
+
+
+def redact(text: str) -> str:
+    """`text` (a URI, a message, a traceback) with every credential in a URI replaced by REDACTED: the one
+    helper for whatever is stored or shown. Keeps the user name, so the store stays recognisable."""
+    def userinfo(match: re.Match) -> str:
+        user, has_password, _ = match["userinfo"].partition(":")
+        return f"{match['scheme']}{user + ':' if has_password else ''}{REDACTED}@"
+
+    return _QUERY_SECRET.sub(lambda m: m["key"] + REDACTED, _USERINFO.sub(userinfo, str(text)))
+
+
+def configured_uri(uri: str | None) -> str | None:
+    """The store the user chose: `tracking.uri`, else MLFLOW_TRACKING_URI, else None (the project's SQLite)."""
+    return uri or os.environ.get(ENV_URI) or None
+
+
+def connection_uri(uri: str) -> str:
+    """The URI to connect with. A redacted one gets its credentials back from MLFLOW_TRACKING_URI when that
+    names the same store: credentials live in the environment only, never in a file or a command line."""
+    if REDACTED not in uri:
+        return uri
+    full = os.environ.get(ENV_URI, "")
+    if full and redact(full) == uri:
+        return full
+    raise InputError(f"tracking store {uri} needs its credentials, which are kept out of every file and log: "
+                     f"set {ENV_URI} to the full URI in the environment of this process (cluster jobs "
+                     f"inherit it)", field="tracking.uri")
+
+
+def hide_credentials(overrides: list[str], env: dict[str, str]) -> list[str]:
+    """A `tracking.uri=` override carrying credentials travels in `env` (MLFLOW_TRACKING_URI) instead, and
+    the override keeps the redacted URI: Snakemake logs its command line, and SLURM jobs repeat it."""
+    hidden = []
+    for override in overrides:
+        key, equals, value = override.partition("=")
+        if equals and key.lstrip("+") == "tracking.uri" and redact(value) != value:
+            env[ENV_URI] = value
+            override = f"{key}={redact(value)}"
+        hidden.append(override)
+    return hidden
+
+
+def is_server(uri: str) -> bool:
+    return uri.startswith(("http://", "https://"))
+
+
 def project_store_uri(uri: str | None, results_dir: Path | str) -> str:
     """The configured store, or the default SQLite store as the project folder's jobs see it: relative to
     the folder they run in (SQLAlchemy reads `sqlite:///results/mlflow.db` relative to the working
     directory), so nothing in a job's inputs or records names where the folder sits."""
+    uri = configured_uri(uri)
     if uri:
-        return uri
+        return redact(uri)
     return f"sqlite:///{(Path(results_dir) / 'mlflow.db').as_posix()}"
 
 
 def resolve_tracking_uri(uri: str | None, results_dir: Path | str) -> str:
     """The same store with an absolute path, for a process that may run anywhere (commands, tests)."""
+    uri = configured_uri(uri)
     if uri:
         return uri
     return f"sqlite:///{(Path(results_dir).resolve() / 'mlflow.db')}"
@@ -60,16 +122,21 @@ def search_all_runs(client, experiment_ids: list[str], filter_string: str = "") 
 def client_for(uri: str):
     from mlflow.tracking import MlflowClient
 
-    return MlflowClient(tracking_uri=uri)
+    # Finishing a run on a server prints "View run ... at: <tracking URI>" (credentials included) and costs
+    # one more request per run: off.
+    os.environ.setdefault("MLFLOW_SUPPRESS_PRINTING_URL_TO_STDOUT", "true")
+    return MlflowClient(tracking_uri=connection_uri(uri))
 
 
 def setup_store(uri: str, experiment: str, artifact_uri: str) -> str:
-    """Create the store (schema migration happens here, in one process) and the experiment; return its id."""
+    """Create the store (schema migration happens here, in one process) and the experiment; return its id.
+    On a tracking server the server places artifacts (its --artifacts-destination, a path it and every
+    user reach); `artifact_uri` (a folder of this project) is for a store without a server."""
     client = client_for(uri)
     found = client.get_experiment_by_name(experiment)
     if found is not None:
         return found.experiment_id
-    return client.create_experiment(experiment, artifact_location=artifact_uri)
+    return client.create_experiment(experiment, artifact_location=None if is_server(uri) else artifact_uri)
 
 
 def experiment_id(client, experiment: str) -> str:

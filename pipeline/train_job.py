@@ -77,7 +77,7 @@ def unit_digest(job: dict, seed: int, split: dict) -> str:
 def make_record(run_id: str, experiment: str, experiment_id: str, tracking_uri: str, split: dict, job: dict,
                 seed: int, primary_rule: str, metrics: dict, superseded: list[str], reused: bool) -> dict:
     return {"run_id": run_id, "experiment": experiment, "experiment_id": experiment_id,
-            "tracking_uri": tracking_uri, "split_id": split["split_id"], "sources": split["sources"],
+            "tracking_uri": tracking.redact(tracking_uri), "split_id": split["split_id"], "sources": split["sources"],
             "target": split["target"], "model": job["model_name"], "family": job["model"]["family"],
             "penalty": job["penalty_name"], "seed": seed, "selection_rule": primary_rule,
             "metrics": {k: metrics.get(k) for k in tracking.HEADLINE_METRICS}, "supersedes": superseded, "reused": reused}

@@ -14,6 +14,7 @@ and pandas only when it composes.
 
 from __future__ import annotations
 
+import os
 import shlex
 from dataclasses import asdict, dataclass, field
 from pathlib import Path
@@ -21,7 +22,7 @@ from pathlib import Path
 from pipeline import environments, plan_cache, provenance, twins
 from pipeline.canonical import ConfigNode, canonical_json, to_container
 from pipeline.errors import InputError
-from pipeline.tracking import resolve_tracking_uri
+from pipeline.tracking import hide_credentials, resolve_tracking_uri
 
 
 BASELINES = "baselines"  # model key of the one job that fits every closed-form family on every split
@@ -115,9 +116,12 @@ class WorkflowPlan:
 
 
 def parse_overrides(text: str | list | None) -> list[str]:
+    """The override list. A `tracking.uri` with credentials moves to this process's MLFLOW_TRACKING_URI
+    (jobs inherit it) and stays redacted here, so no plan, cache entry or param holds the credentials."""
     if not text:
         return []
-    return list(text) if isinstance(text, (list, tuple)) else shlex.split(str(text))
+    overrides = list(text) if isinstance(text, (list, tuple)) else shlex.split(str(text))
+    return hide_credentials(overrides, os.environ)
 
 
 def _is_trainable(model_cfg: dict) -> bool:

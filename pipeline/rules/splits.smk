@@ -1,6 +1,10 @@
 # Stage 2: tracking store and split records. Both are cheap; the split list itself comes from config.
 # No param may depend on where the project folder sits (a copied or moved project must stay up to date):
 # the store is passed as configured (empty: the default SQLite store under results_dir), not resolved.
+# Configured means tracking.uri, else MLFLOW_TRACKING_URI; credentials redacted (params are stored in
+# .snakemake/ and shown), the job takes them back from its environment (pipeline.tracking).
+
+from pipeline.tracking import configured_uri, redact
 
 
 rule setup_tracking:
@@ -9,7 +13,7 @@ rule setup_tracking:
     log:
         f"{RESULTS}/logs/setup_tracking.log",
     params:
-        uri=PLAN.cfg.tracking.uri or "",
+        uri=redact(configured_uri(PLAN.cfg.tracking.uri) or ""),
         experiment=PLAN.cfg.tracking.experiment,
         results_dir=RESULTS,
         code=PLAN.code_digest("setup_tracking"),

@@ -15,6 +15,7 @@ from pathlib import Path
 from pipeline.atomic import write_json_atomic
 from pipeline.errors import InputError
 from pipeline.sweep_guard import raise_interrupt
+from pipeline.tracking import redact
 from pipeline.provenance import result_versions, versions_file
 
 
@@ -28,14 +29,15 @@ def run_step(snakemake, work) -> None:
             try:
                 work(snakemake)
             except InputError as error:
-                print(f"error: {error}", file=log)
-                print(f"error: {error}", file=sys.__stderr__)
+                print(f"error: {redact(str(error))}", file=log)
+                print(f"error: {redact(str(error))}", file=sys.__stderr__)
                 sys.exit(2)
             except KeyboardInterrupt:
                 print("error: interrupted", file=log)
                 sys.exit(130)
             except Exception:
-                traceback.print_exc(file=log)
+                # MLflow quotes the URL it failed on, credentials included.
+                print(redact(traceback.format_exc()), file=log)
                 print(f"error: step failed, see {log_path}", file=sys.__stderr__)
                 sys.exit(1)
     if log_path:
