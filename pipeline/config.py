@@ -1,7 +1,8 @@
 """Typed, validated configuration: Hydra schema, composition, sweep overrides and per-job slices.
 
 Reads the Hydra tree under `config/` (groups data/, split/, model/, penalty/, fit/, selection/,
-experiment/). The dataclasses below, registered in Hydra's ConfigStore, are the schema: a key that is not
+experiment/). The dataclasses below, registered in Hydra's ConfigStore, are the schema (the `search`
+key's is pipeline.search.SearchConfig, checked where the plan builds the trials): a key that is not
 in the schema, or a value of the wrong type, fails at composition, before any job runs. Model families
 carry their own `Params` dataclass, so `model` is checked by building the family (see `validate`).
 
@@ -28,6 +29,7 @@ from pipeline.canonical import canonical_json, to_container  # noqa: F401 (re-ex
 from pipeline.errors import InputError
 from pipeline.fit_config import FitConfig
 from pipeline.names import check_name
+from pipeline.search import SearchConfig
 from pipeline.splits import SplitConfig
 from pipeline.windows import ForecastConfig
 
@@ -114,6 +116,7 @@ class RootConfig:
     selection: SelectionConfig = field(default_factory=SelectionConfig)
     forecast: ForecastConfig = field(default_factory=ForecastConfig)
     sweep: SweepConfig = field(default_factory=SweepConfig)
+    search: SearchConfig = field(default_factory=SearchConfig)  # hyperparameter search (pipeline.search)
     metrics: MetricsConfig = field(default_factory=MetricsConfig)
     tracking: TrackingConfig = field(default_factory=TrackingConfig)
     report: ReportConfig = field(default_factory=ReportConfig)

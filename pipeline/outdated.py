@@ -108,13 +108,18 @@ def _unit_key(unit: dict) -> tuple:
     return unit["job"]["model_name"], unit["job"]["penalty_name"], unit["seed"]
 
 
+def _sections(unit: dict) -> dict:
+    """A unit's config slice sections, plus its hyperparameter search's trials (pipeline.search) if any."""
+    return {**unit["job"], **({"search": unit["search"]} if unit.get("search") else {})}
+
+
 def unit_changes(old: list, new_json: str) -> list[tuple[str, str, str]]:
     """(model, penalty, section) for every unit whose config slice section differs from the last run."""
-    new = {_unit_key(u): u["job"] for u in json.loads(new_json)}
+    new = {_unit_key(u): _sections(u) for u in json.loads(new_json)}
     before = None
     for value in old:
         if isinstance(value, str) and value.startswith("[") and '"model_name"' in value:
-            before = {_unit_key(u): u["job"] for u in json.loads(value)}
+            before = {_unit_key(u): _sections(u) for u in json.loads(value)}
     if before is None:
         return [("?", "?", "job settings")]
     changes = set()
@@ -231,7 +236,8 @@ def explain(jobs: list[PlannedJob], plan, root: Path | str) -> list[str]:
                 if planned.params_json not in old:
                     for unit_model, penalty, section in unit_changes(old, planned.params_json):
                         label = {"model": f"hyperparameters of model {unit_model} changed",
-                                 "penalty": f"settings of penalty {penalty} changed"}.get(
+                                 "penalty": f"settings of penalty {penalty} changed",
+                                 "search": f"hyperparameter search of {unit_model} + {penalty} changed"}.get(
                             section, f"{section} settings changed")
                         reasons[label].add(key)
             for city in cities:

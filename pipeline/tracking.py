@@ -24,6 +24,12 @@ from pipeline.errors import InputError
 
 RUN_IDENTITY_TAGS = ("split_id", "model", "penalty", "seed")
 SUPERSEDED_TAG = "superseded_by"
+# Hyperparameter search (pipeline.search): a trial's searched values (canonical JSON) complete its identity,
+# so trials of other values never supersede each other; ROLE_TAG is "trial" or "parent" (the run the grid
+# reads, holding the selected trial's results); trials point at their parent with MLflow's own tag.
+TRIAL_TAG = "search.trial"
+ROLE_TAG = "search.role"
+PARENT_TAG = "mlflow.parentRunId"
 # The metrics a run record carries and `show` lists first (the one list of them).
 HEADLINE_METRICS = ("target_mae", "target_rmse", "target_mse", "target_mase", "target_csi", "source_mae", "gap_mae",
                     "worst_source_env_mse")
@@ -200,11 +206,16 @@ def find_current_run(client, experiment_id_: str, unit_digest: str):
 
 
 def supersede_previous(client, experiment_id_: str, identity: dict[str, str], new_run_id: str) -> list[str]:
-    """Tag earlier current runs of the same split/model/penalty/seed as superseded (never deleted)."""
+    """Tag earlier current runs of the same split/model/penalty/seed as superseded (never deleted). A search
+    trial (TRIAL_TAG, read from the new run itself) supersedes only earlier trials of the same values; any
+    other run supersedes only runs that are not trials."""
     clauses = [f"tags.{key} = '{identity[key]}'" for key in RUN_IDENTITY_TAGS]
     older = client.search_runs([experiment_id_], filter_string=" and ".join(clauses), max_results=1000)
+    trial = client.get_run(new_run_id).data.tags.get(TRIAL_TAG)
     superseded = []
     for run in older:
+        if run.data.tags.get(TRIAL_TAG) != trial:
+            continue
         if run.info.run_id != new_run_id and SUPERSEDED_TAG not in run.data.tags:
             client.set_tag(run.info.run_id, SUPERSEDED_TAG, new_run_id)
             superseded.append(run.info.run_id)

@@ -4,7 +4,8 @@ Pure computation (no files, no MLflow): pipeline.train_job reads the inputs, cal
 unit of a job and logs the outcome. Obeys the job slice (pipeline.config.job_slice): model, penalty,
 fit, selection (rule + also: every rule's checkpoint is evaluated), forecast, metrics.
 Metrics are computed in the target's canonical units on the target test block, plus the source test
-block per environment (worst-environment risk, in-distribution vs target gap).
+block per environment (worst-environment risk, in-distribution vs target gap); per rule also its validation
+value at the chosen step (`<rule>.selection_score`), by which a hyperparameter search selects its trial.
 """
 
 from __future__ import annotations
@@ -47,6 +48,19 @@ def _fit(job: dict, seed: int, train, val: dict):
     return model.fit(train, val=val, penalty=_make_penalty(job), fit_config=FitConfig(**job["fit"]))
 
 
+def validation_history(model, val: dict) -> list[dict]:
+    """The fit's evaluations; a closed-form fit, which has none, gets its one evaluation at step 0 with the
+    training loop's risk (MSE on the scaled windows, `val/<set>/all`), so every family's search trials are
+    compared by the same validation score."""
+    if model.history_:
+        return model.history_
+    entry = {"step": 0}
+    for name, windows in val.items():
+        if len(windows.y):
+            entry[f"val/{name}/all"] = float(np.mean((model.predict(windows.X) - windows.y) ** 2))
+    return [entry]
+
+
 def rotation_curves(job: dict, seed: int, windows, split: dict, station_city: dict) -> dict[str, dict]:
     curves = {}
     for group, stations in rotation_groups(split, station_city).items():
@@ -54,8 +68,9 @@ def rotation_curves(job: dict, seed: int, windows, split: dict, station_city: di
         held = np.isin(windows.val_source.station, list(stations))
         if keep.sum() == 0 or held.sum() == 0:
             continue
-        refit = _fit(job, seed, subset(windows.train, keep), {"source": subset(windows.val_source, held)})
-        curves[group] = selection.curve(refit.history_, "val/source/all")
+        held_out = {"source": subset(windows.val_source, held)}
+        refit = _fit(job, seed, subset(windows.train, keep), held_out)
+        curves[group] = selection.curve(validation_history(refit, held_out), "val/source/all")
     return curves
 
 
@@ -120,14 +135,16 @@ def state_for_saving(model) -> dict:
 def run_seed(job: dict, seed: int, windows, split: dict, station_city: dict) -> dict:
     """Fit one seed and evaluate it under every configured selection rule."""
     started = time.perf_counter()
-    model = _fit(job, seed, windows.train, {"source": windows.val_source, "target": windows.val_target})
+    val = {"source": windows.val_source, "target": windows.val_target}
+    model = _fit(job, seed, windows.train, val)
     fit_seconds = time.perf_counter() - started
     primary = job["selection"]["rule"]
     rules = list(dict.fromkeys([primary, *job["selection"]["also"]]))
+    history = validation_history(model, val)
     rotation = None
-    if selection.ROTATION in rules and model.history_:
+    if selection.ROTATION in rules:
         rotation = rotation_curves(job, seed, windows, split, station_city)
-        if not rotation:
+        if not rotation and model.history_:
             rules.remove(selection.ROTATION)  # a single source group cannot be left out
     metrics, predictions, chosen = {}, {}, {}
     for rule in rules:
@@ -137,6 +154,8 @@ def run_seed(job: dict, seed: int, windows, split: dict, station_city: dict) -> 
         chosen[rule] = step
         metrics.update({f"{rule}.{k}": v for k, v in scores.items()})
         metrics[f"{rule}.selected_step"] = step
+        # what a hyperparameter search compares across trials under this rule (pipeline.selection.choose_trial)
+        metrics[f"{rule}.{selection.SCORE}"] = selection.score(rule, history, step, rotation)
     if primary in chosen:
         model.use_snapshot(chosen[primary])
         metrics.update({k.split(".", 1)[1]: v for k, v in metrics.items() if k.startswith(f"{primary}.")})

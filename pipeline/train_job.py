@@ -2,7 +2,8 @@
 
 Called by the `train_model` rule (pipeline/scripts/train_model.py) and by `shiftgrid verify`.
 Reads the split record and clean Parquet files named in it; writes MLflow runs and
-results/runs/<split_id>/<model>/<penalty>/<seed>.json. Obeys the job slice built by
+results/runs/<split_id>/<model>/<penalty>/<seed>.json (for a searched unit: its trials' child runs and their
+parent run, which the record names; pipeline.search_job). Obeys the job slice built by
 pipeline.config.job_slice plus the tracking URI/experiment handed over by the rule.
 """
 
@@ -18,6 +19,7 @@ import pandas as pd
 import yaml
 
 from pipeline import provenance, run_state, selection, tracking, twins
+from pipeline import search, search_job
 from pipeline.config import canonical_json
 from pipeline.atomic import write_json_atomic
 from pipeline.train import history_curves, predictions_frame, run_seed, state_for_saving, station_city_map
@@ -44,6 +46,7 @@ def tags_for(split: dict, job: dict, seed: int, code_digest: str) -> dict[str, s
     tags["sampling"] = job["fit"].get("sampling", twins.DEFAULT_SAMPLING) if job["penalty"] is not None else "na"
     if split.get("environment_fallback_from"):
         tags["environment_fallback_from"] = split["environment_fallback_from"]
+    tags.update(search.trial_tags(job))  # a search trial: its searched values complete its identity
     tags.update({f"data_digest.{city}": digest for city, digest in split["input_digests"].items()})
     tags.update({f"git.{k}": v for k, v in provenance.git_state().items()})
     tags.update({f"version.{k}": v for k, v in provenance.package_versions().items()})
@@ -109,7 +112,8 @@ def _train_and_log(client, experiment_id: str, unit: dict, split: dict, windows,
 def run_train_job(split_path: Path | str, units: list[dict], record_paths: list[Path | str],
                   tracking_uri: str, experiment: str, code_digest: str, clean_paths: dict | None = None,
                   supersede: bool = True, reuse: bool = True) -> list[dict]:
-    """Produce every unit's run ({"job": config slice, "seed"}); write one run record per unit.
+    """Produce every unit's run ({"job": config slice, "seed"}); write one run record per unit. A unit with
+    "search" trains (or reuses) each of its trials and its record names their parent run (pipeline.search_job).
 
     With `reuse`, a unit whose digest matches a current finished run is not retrained: its record points
     at that run. This keeps re-runs minimal inside a job that Snakemake re-runs as a whole (e.g. the
@@ -120,8 +124,8 @@ def run_train_job(split_path: Path | str, units: list[dict], record_paths: list[
     client = tracking.client_for(tracking_uri)
     experiment_id = tracking.experiment_id(client, experiment)
     windows = station_city = prepare_seconds = None
-    records = []
-    for unit, record_path in zip(units, record_paths):
+    done, trials = {}, {}
+    for index, unit, record_path in search_job.expand(units, record_paths):  # a searched unit: its trials
         job, seed = unit["job"], unit["seed"]
         digest = unit_digest(job, seed, split)
         found = tracking.find_current_run(client, experiment_id, digest) if reuse else None
@@ -140,6 +144,19 @@ def run_train_job(split_path: Path | str, units: list[dict], record_paths: list[
             superseded = tracking.supersede_previous(client, experiment_id, identity, run_id) if supersede else []
             record = make_record(run_id, experiment, experiment_id, tracking_uri, split, job, seed, primary,
                                  metrics, superseded, reused=False)
+        if record_path is None:  # a search trial: the record names its parent, logged once every trial is there
+            trials.setdefault(index, []).append(record)
+            continue
         write_json_atomic(record, record_path)
-        records.append(record)
-    return records
+        done[index] = record
+    for index, trial_records in trials.items():
+        unit = units[index]
+        parent = search_job.finish_cell(client, experiment_id, unit, trial_records,
+                                        tags_for(split, unit["job"], unit["seed"], code_digest), supersede, reuse)
+        record = make_record(parent["run_id"], experiment, experiment_id, tracking_uri, split, unit["job"],
+                             unit["seed"], parent["primary"], parent["metrics"], parent["superseded"],
+                             parent["reused"])
+        record["search"] = parent["search"]
+        write_json_atomic(record, record_paths[index])
+        done[index] = record
+    return [done[index] for index in range(len(units))]

@@ -47,11 +47,15 @@ def check_units(units: list[dict]) -> None:
     twins = [u for u in units if u.get("penalty") == ERM]
     if not twins:
         return  # no ERM run in the sweep: nothing is compared
-    expected = treatment(twins[0]["job"])
+    # A searched ERM (pipeline.search) may try several schedules; a penalised trial needs one of them.
+    treatments = [treatment(twin["job"]) for twin in twins]
     for unit in units:
         if unit.get("penalty") in (ERM, None) or unit["job"].get("penalty") is None:
             continue
         found = treatment(unit["job"])
+        if found in treatments:
+            continue
+        expected = treatments[0]
         for key, value in found.items():
             if value != expected[key]:
                 raise InputError(f"{unit['penalty']} has {key} {value} but its ERM twin {expected[key]}: the twin "

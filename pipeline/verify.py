@@ -4,7 +4,8 @@ Reads the original run (tags, metrics, artifacts config/resolved_config.yaml and
 from the MLflow store and the current clean Parquet files (`data.clean_dir`). Writes one new run into a
 scratch experiment `<experiment>-verify` of the same store; never writes run records under
 results/runs (they go to a temporary folder) and never tags anything superseded.
-Config keys obeyed: data.clean_dir (where the current data is), tracking.uri.
+Config keys obeyed: data.clean_dir (where the current data is), tracking.uri. The parent run of a
+hyperparameter search is refused (its trials are runs of their own, each verifiable).
 """
 
 from __future__ import annotations
@@ -15,7 +16,7 @@ import struct
 import tempfile
 from pathlib import Path
 
-from pipeline import audit, provenance
+from pipeline import audit, provenance, tracking
 from pipeline.errors import InputError
 
 SCRATCH_SUFFIX = "-verify"
@@ -48,6 +49,10 @@ def retrain(client, run, uri: str, root: Path | str, clean_dir: str, force: bool
     from pipeline.train_job import run_train_job
 
     run_id, tags = run.info.run_id, run.data.tags
+    if tags.get(tracking.ROLE_TAG) == "parent":  # its rules' results come from different trials: no one fit
+        chosen = sorted({v for k, v in tags.items() if k.startswith("search.selected.")})
+        raise InputError(f"run {run_id} is the parent of a hyperparameter search and holds its selected trials' "
+                         f"results; verify a trial instead: {', '.join(chosen)}", field="run_id")
     logged = audit.resolved_config(client, run_id)
     job, split = logged["job"], logged["split"]
     then = audit.digests_then(tags)

@@ -7,9 +7,9 @@ otherwise the plan comes from pipeline.plan_cache (read/written under `.snakemak
 Each job's params are sorted-key JSON of exactly its config slice plus the digest of the code it runs (the
 rule script's import closure, pipeline.provenance), which is what makes re-runs minimal. Nothing that
 depends on where the project folder sits enters them, so a copied or moved project stays up to date.
-Config keys obeyed: data.*, split.*, forecast.*, sweep.*, model/penalty/fit/selection/metrics (job slices),
-report.* (aggregation params), tracking.* and results_dir. Imports neither torch nor MLflow, and Hydra
-and pandas only when it composes.
+Config keys obeyed: data.*, split.*, forecast.*, sweep.*, search.* (each run's trials, pipeline.search),
+model/penalty/fit/selection/metrics (job slices), report.* (aggregation params), tracking.* and results_dir.
+Imports neither torch nor MLflow, and Hydra and pandas only when it composes.
 """
 
 from __future__ import annotations
@@ -35,14 +35,15 @@ class TrainJob:
     baselines of every split. Units are the runs it produces, in the order of the rule's outputs."""
     split_id: str  # or ALL_SPLITS
     model: str  # sweep model name, or BASELINES
-    units: list[dict]  # {"split_id", "model", "penalty", "seed", "job": config slice}
+    units: list[dict]  # {"split_id", "model", "penalty", "seed", "job": config slice[, "search": trials]}
     code_digest: str
     versions: str = ""  # library versions its code imports, when tracking.dependency_changes=rerun
 
     @property
     def params_json(self) -> str:
-        return canonical_json([{"split_id": u["split_id"], "job": u["job"], "seed": u["seed"]}
-                               for u in self.units])
+        # a searched unit adds its trials (pipeline.search); without a search the params stay as they were
+        return canonical_json([{"split_id": u["split_id"], "job": u["job"], "seed": u["seed"],
+                                **({"search": u["search"]} if u.get("search") else {})} for u in self.units])
 
 
 @dataclass
@@ -162,6 +163,7 @@ def plan_config(overrides: str | list | None = None, root: Path | str = ".") -> 
 
 def compose_plan(overrides: list[str], root: Path) -> WorkflowPlan:
     """Compose the configuration with Hydra (once per model x penalty pair) and plan cities, splits, jobs."""
+    from pipeline import search
     from pipeline.config import NOT_APPLICABLE, compose_config, expand_sweep_overrides, job_slice, validate
     from pipeline.splits import plan_splits
     from pipeline.stations import load_stations
@@ -187,6 +189,8 @@ def compose_plan(overrides: list[str], root: Path) -> WorkflowPlan:
                           cfg.forecast.lookback_hours, cfg.forecast.horizon_hours)}
     plan = WorkflowPlan(cfg=ConfigNode(to_container(cfg)), overrides=overrides, root=root, cities=cities,
                         splits=splits)
+    search_cfg = to_container(cfg.search)
+    search.check_config(search_cfg, root / "config")
     baseline_units, baseline_families = [], []
     for model_name in cfg.sweep.models:
         model_cfg = compose_config([*overrides, f"model={model_name}"], root)
@@ -197,8 +201,9 @@ def compose_plan(overrides: list[str], root: Path) -> WorkflowPlan:
             # runs inside it are reused, so a re-run retrains only the splits that changed.
             plan.baseline_models.append(model_name)
             baseline_families.append(family)
-            baseline_units.append({"model": model_name, "penalty": NOT_APPLICABLE, "seed": 0,
-                                   "job": job_slice(model_cfg, model_name, NOT_APPLICABLE)})
+            baseline_units += search.attach([{"model": model_name, "penalty": NOT_APPLICABLE, "seed": 0,
+                                              "job": job_slice(model_cfg, model_name, NOT_APPLICABLE)}],
+                                            search_cfg, trainable=False)
             continue
         plan.trainable_models.append(model_name)
         units = []
@@ -207,11 +212,13 @@ def compose_plan(overrides: list[str], root: Path) -> WorkflowPlan:
             validate(pair_cfg)
             units += [{"model": model_name, "penalty": penalty_name, "seed": seed,
                        "job": job_slice(pair_cfg, model_name, penalty_name)} for seed in cfg.sweep.seeds]
+        units = search.attach(units, search_cfg, trainable=True)  # the trials of each run, if searched
         # Plan time, not job time: a penalised run with one training environment is ERM in disguise, and
-        # an ERM twin trained under another protocol is no twin (pipeline.environments, pipeline.twins).
-        environments.check_units(splits, units, dict(zip(stations["station_id"].astype(str),
-                                                         stations["city"].astype(str))))
-        twins.check_units(units)
+        # an ERM twin trained under another protocol is no twin (pipeline.environments, pipeline.twins);
+        # checked for every trial of a search.
+        environments.check_units(splits, search.trial_units(units),
+                                 dict(zip(stations["station_id"].astype(str), stations["city"].astype(str))))
+        twins.check_units(search.trial_units(units))
         digest, versions = plan.code_digest("train_model", [family]), plan.versions("train_model", [family])
         for split_id in splits:
             plan.jobs[(split_id, model_name)] = TrainJob(split_id, model_name,

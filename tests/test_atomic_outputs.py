@@ -23,6 +23,8 @@ ALLOWED = {
     ("train_job.py", "write_text"): "artifacts are staged in a private temporary folder, then logged to MLflow",
     ("train_job.py", "to_parquet"): "artifacts are staged in a private temporary folder, then logged to MLflow",
     ("train_job.py", "save"): "artifacts are staged in a private temporary folder, then logged to MLflow",
+    ("search_job.py", "write_text"): "a search parent's artifacts are staged in a private temporary folder",
+    ("search_job.py", "to_parquet"): "a search parent's artifacts are staged in a private temporary folder",
     ("verify.py", "write_text"): "the re-trained run's split file lives in a private temporary folder",
     ("_step.py", "open"): "the job's log file, written as it goes by design",
 }
