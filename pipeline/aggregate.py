@@ -1,7 +1,7 @@
 """Aggregation: run records + MLflow -> the grid tables (I/O shell around pipeline.grid_stats).
 
 Reads the run records results/runs/<split_id>/<model>/<penalty>/<seed>.json, the MLflow runs they name
-(via each record's tracking_uri) and each run's predictions artifact
+(via each record's tracking_uri; for a searched run the parent, and its trials for grid_trials.csv) and each run's predictions artifact
 (predictions/target_predictions.parquet). Writes, in the results folder:
 - grid.parquet: one row per current run: identity, every logged metric (`<rule>.<name>` and the
   un-prefixed primary ones), every tag (`tag.<name>`) and param (`param.<name>`);
@@ -11,6 +11,8 @@ Reads the run records results/runs/<split_id>/<model>/<penalty>/<seed>.json, the
   (absolute, squared, scaled absolute), with Holm-adjusted p-values (pipeline.window_stats);
 - grid_intervals.csv: the 95 % moving-block bootstrap interval over test origins of every cell, per rule
   and resamplable metric (mae, mse, rmse, mase), so `shiftgrid grid --metric` needs no artifact;
+- grid_trials.csv: every hyperparameter-search trial behind a run of the grid (pipeline.trial_table; no rows
+  without a search): its values, the rules that selected it, its selection scores and target metric;
 - grid_meta.json: metric, rules, Friedman/Iman-Davenport/Nemenyi per rule, skipped runs and why.
 Config keys obeyed (handed over by the rule): report.metric, report.bootstrap_samples.
 
@@ -30,7 +32,7 @@ from urllib.parse import unquote, urlparse
 import numpy as np
 import pandas as pd
 
-from pipeline import environments, grid_stats, stats, tracking, window_stats
+from pipeline import environments, grid_stats, stats, tracking, trial_table, window_stats
 from pipeline.atomic import write_csv_atomic, write_parquet_atomic, write_text_atomic
 from pipeline.errors import InputError
 
@@ -233,7 +235,9 @@ def aggregate(record_paths: list[Path | str], out_dir: Path | str, metric: str =
     dm = dm_tests(runs, rules, tables)
     intervals = cell_intervals(runs, rules, tables, n_boot)
     summary, friedman = build_grid(runs, dm, intervals, metric)
+    trials = trial_table.collect(runs, metric, rules, read_record)
     write_parquet_atomic(runs, out_dir / "grid.parquet")
+    write_csv_atomic(trials, out_dir / "grid_trials.csv")
     write_csv_atomic(summary, out_dir / "grid.csv")
     write_csv_atomic(dm, out_dir / "grid_dm.csv")
     write_csv_atomic(intervals, out_dir / "grid_intervals.csv")
@@ -242,7 +246,7 @@ def aggregate(record_paths: list[Path | str], out_dir: Path | str, metric: str =
             "experiment": sorted(runs["experiment"].dropna().unique().tolist()),
             "tracking_uris": sorted(runs["tracking_uri"].unique().tolist()),
             "skipped": {reason: {"count": len(paths), "records": paths} for reason, paths in skipped.items()},
-            "friedman": friedman, "bootstrap_samples": n_boot, "alpha": grid_stats.ALPHA,
+            "n_trials": int(len(trials)), "friedman": friedman, "bootstrap_samples": n_boot, "alpha": grid_stats.ALPHA,
             "tie_tolerance": stats.TIE_TOLERANCE}
     write_text_atomic(json.dumps(meta, indent=1, sort_keys=True, default=_json_default), out_dir / "grid_meta.json")
     return meta

@@ -2,7 +2,8 @@
 handful of runs whose metrics are chosen so ranks, means and tallies have known answers.
 
 Three leave-one-city-out splits over invented cities (vell, orra, quist), model `lin` with erm and irm
-(seeds 0 and 1) and the `persistence` baseline (penalty na, seed 0): 15 runs.
+(seeds 0 and 1) and the `persistence` baseline (penalty na, seed 0): 15 runs. Each lin+irm run is the
+parent of a two-trial hyperparameter search (penalty weights 100 and 10; see SEARCHED).
 """
 
 from __future__ import annotations
@@ -65,6 +66,29 @@ def predictions(mae: float, seed: int) -> pd.DataFrame:
     return pd.concat(frames, ignore_index=True)
 
 
+# lin+irm runs are search parents of two trials: penalty weight 100 (selected by both rules; the parent's
+# metrics) and weight 10 (every target error SEARCH_GAP higher, and a higher selection score)
+SEARCHED = ("lin", "irm")
+WEIGHTS = (100.0, 10.0)
+SEARCH_GAP = 0.3
+
+
+def search_trials(client, experiment_id: str, tags: dict, mae: float) -> list[dict]:
+    """Log the two trials of one searched run; returns their entries of the run record's "search"."""
+    from pipeline import tracking
+
+    trials = []
+    for index, weight in enumerate(WEIGHTS):
+        metrics = metrics_for(mae + SEARCH_GAP * index)
+        metrics.update({f"{rule}.selection_score": 1.0 + index for rule in RULES})
+        values = {"penalty.weight": weight}
+        run_id = tracking.log_run(client, experiment_id, run_name="trial", params=PARAMS, metrics=metrics, curves={},
+                                  tags={**tags, tracking.ROLE_TAG: "trial", tracking.TRIAL_TAG: json.dumps(values)},
+                                  artifacts={})
+        trials.append({"trial": index, "run_id": run_id, "values": values, "reused": False})
+    return trials
+
+
 def build_grid_store(root: Path) -> tuple[list[Path], str]:
     """Log every run to a fresh SQLite store under `root` and write the run records; returns (records, uri)."""
     from pipeline import tracking
@@ -86,6 +110,9 @@ def build_grid_store(root: Path) -> tuple[list[Path], str]:
                 tags = {"split_id": split_id, "model": model, "penalty": penalty, "seed": str(seed),
                         "sources": "+".join(sources), "target": target, "code_digest": "c0ffee",
                         "git.commit": "0123456789abcdef", "selection_label": "source-holdout"}
+                trials = search_trials(client, experiment_id, tags, mae) if (model, penalty) == SEARCHED else []
+                if trials:
+                    tags = {**tags, tracking.ROLE_TAG: "parent", "search.budget": str(len(trials))}
                 run_id = tracking.log_run(client, experiment_id, run_name=f"{split_id}/{model}/{penalty}/{seed}",
                                           params=PARAMS, metrics=metrics,
                                           curves={}, tags=tags,
@@ -96,6 +123,10 @@ def build_grid_store(root: Path) -> tuple[list[Path], str]:
                           "penalty": penalty, "seed": seed, "selection_rule": "source-holdout",
                           "metrics": {k: metrics[k] for k in ("target_mae", "target_csi", "source_mae")},
                           "supersedes": []}
+                if trials:
+                    for trial in trials:
+                        client.set_tag(trial["run_id"], tracking.PARENT_TAG, run_id)
+                    record["search"] = {"budget": len(trials), "trials": trials, "selected": {rule: 0 for rule in RULES}}
                 path = results / "runs" / split_id / model / penalty / f"{seed}.json"
                 path.parent.mkdir(parents=True, exist_ok=True)
                 path.write_text(json.dumps(record))

@@ -25,6 +25,20 @@ def grid(tmp_path_factory):
             "runs": pd.read_parquet(root / "results" / "grid.parquet")}
 
 
+def test_the_trials_behind_searched_runs_are_listed_and_the_grid_holds_only_their_parents(grid):
+    # lin+irm: 3 splits x 2 seeds searched weights 100 (selected) and 10 (target MAE 0.3 higher)
+    trials = pd.read_csv(grid["root"] / "results" / "grid_trials.csv")
+    assert len(trials) == 12 and grid["meta"]["n_trials"] == 12
+    assert set(trials["parent_run_id"]) == set(grid["runs"].query("penalty == 'irm'")["run_id"])
+    assert not set(trials["run_id"]) & set(grid["runs"]["run_id"])
+    chosen = trials[trials["search.penalty.weight"] == 100.0]
+    assert (chosen["selected_by"] == "source-holdout;target-peek").all() and trials["selected_by"].isna().sum() == 6
+    parents = grid["runs"].set_index("run_id")["source-holdout.target_mae"]
+    gap = trials["source-holdout.target_mae"] - trials["parent_run_id"].map(parents)
+    assert np.allclose(gap[trials["search.penalty.weight"] == 100.0], 0.0)
+    assert np.allclose(gap[trials["search.penalty.weight"] == 10.0], 0.3)
+
+
 def cell(summary, split_id, combo, rule="source-holdout"):
     rows = summary[(summary.split_id == split_id) & (summary.combo == combo) & (summary.selection_rule == rule)]
     assert len(rows) == 1

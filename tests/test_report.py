@@ -169,3 +169,35 @@ def test_no_critical_difference_chart_unless_the_omnibus_test_rejects(report):
     summary = pd.read_csv(report["root"] / "results" / "grid.csv")
     meta["friedman"]["source-holdout"]["rejects"] = True
     assert "critical difference (alpha" in ranks_section(summary, meta, "source-holdout", 40)
+
+
+def test_the_search_section_shows_the_penalty_weight_sensitivity_as_target_data_with_its_label(report):
+    # lin+irm runs searched weights 100 (selected everywhere) and 10 (every target MAE 0.3 higher):
+    # means over 3 splits x 2 seeds 1.3 and 1.6; ERM of lin (its selected trials) 8.2 / 6 = 1.367
+    page = report["page"]
+    section = page.split('<section id="search">')[1].split("</section>")[0]
+    assert '<a href="#search">' in page
+    assert section.count('data-selection="target-peek"') == 3  # text, figure, table: each labelled
+    blocks = [re.search(rf'<{tag}[^>]* data-selection="target-peek">.*?</{tag}>', section, flags=re.S).group(0)
+              for tag in ("p", "figure", "table")]
+    assert all(PEEK_LABEL in block for block in blocks)
+    rows = re.findall(r"<tr>(.*?)</tr>", blocks[2].split("<tbody>")[1])
+    cells = [re.findall(r"<td>(.*?)</td>", row) for row in rows]
+    assert [c[2:6] for c in cells] == [["10", "1.6", "6", "0"], ["100", "1.3", "6", "6"]]
+    assert all(c[6] == "1.367" for c in cells)
+    # which value the runs selected is the headline rule's own business: shown unmarked as that rule
+    honest = re.search(r'<table class="" data-selection="source-holdout"><caption>Searched values.*?</table>', section,
+                       flags=re.S).group(0)
+    assert "<td>lin+irm</td><td>penalty.weight</td><td>100</td><td>6</td><td>6</td>" in honest
+
+
+def test_without_a_search_the_report_has_no_search_section(report, tmp_path):
+    import shutil
+
+    from pipeline.report.html import render_report
+
+    results = tmp_path / "results"
+    shutil.copytree(report["root"] / "results", results)
+    (results / "grid_trials.csv").write_text(",".join(["split_id", "model", "penalty", "run_id"]) + "\n")
+    page = render_report(results, results / "plain.html", {"figure_dpi": 40})
+    assert 'id="search"' not in page and 'href="#search"' not in page

@@ -206,3 +206,31 @@ def shift_figure(shift: pd.DataFrame, points: pd.DataFrame, rule: str, rho: floa
     right.set_title(_title(f"Target error vs shift (Spearman ρ = {rho:.2f}, p = {p_value:.2g})", rule))
     fig.tight_layout()
     return fig
+
+
+def weight_sensitivity(table: pd.DataFrame, reference: dict[str, float], metric_label: str, rule: str):
+    """Mean target error of the search trials against their penalty weight, one panel per model and one line
+    per penalty (`table`: model, penalty, weight, mean); dashed: the model's ERM runs (the trials their rule
+    selected). Reading a weight off it uses target data, so the title names the upper bound."""
+    models = sorted(table["model"].unique())
+    fig, axes = plt.subplots(1, len(models), figsize=(3.8 * len(models) + 1.0, 3.5), squeeze=False, sharey=True)
+    for ax, model in zip(axes[0], models):
+        rows = table[table["model"] == model]
+        for penalty, points in rows.groupby("penalty", sort=True):
+            points = points.sort_values("weight")
+            ax.plot(points["weight"], points["mean"], "o-", lw=1.4, label=grid_stats.penalty_display(penalty))
+        if np.isfinite(reference.get(model, np.nan)):
+            ax.axhline(reference[model], ls="--", lw=1.2, color="#636363", label="erm (selected trial)")
+        if (rows["weight"] > 0).all():
+            ax.set_xscale("log")
+        else:  # a weight of 0 has no place on a log axis
+            ax.set_xscale("symlog", linthresh=float(rows.loc[rows["weight"] > 0, "weight"].min(initial=1.0)))
+        ax.set_title(model)
+        ax.set_xlabel("penalty weight")
+        ax.grid(alpha=0.3)
+        ax.legend(fontsize=8, frameon=False)
+    axes[0, 0].set_ylabel(f"mean {metric_label}\n(target test block, every trial)")
+    fig.suptitle(f"Target error against the penalty weight (checkpoints: {selection.label(rule)})\nuses target "
+                 f"data: a weight read off this figure is {selection.UPPER_BOUND_LABEL}")
+    fig.tight_layout()
+    return fig

@@ -1,7 +1,7 @@
 """Assemble results/report.html: one self-contained page, figures embedded as base64 PNG, no network.
 
 Reads (paths handed over by the `render_report` rule or a caller): results/grid.parquet, grid.csv,
-grid_meta.json, results/shift.csv (optional), data/qc/<city>.json and results/splits/<split_id>.json.
+grid_meta.json, grid_trials.csv (the search section, pipeline.report.search_html), results/shift.csv (optional), data/qc/<city>.json and results/splits/<split_id>.json.
 Writes the HTML file. Config keys obeyed (the report slice): report.title, report.selection,
 report.figure_dpi, report.top_rows (rows of the summary table shown per split, best first); and
 data.ground_truth for the verdict (pipeline.report.verdict_html), which opens the page.
@@ -24,42 +24,12 @@ from pipeline.atomic import write_text_atomic
 from pipeline.caution import CAUTION  # one wording of the caution for the CLI and the report
 from pipeline.ingest.qc import summary_row
 from pipeline.report import figures, shift_data
+from pipeline.report.blocks import figure as _figure, rule_caption as _rule_caption, table as _table
+from pipeline.report.search_html import search_section
 from pipeline.report.style import CSS
 from pipeline.report.verdict_html import verdict_section
 
 E = html.escape
-
-
-def _figure(fig, dpi: int, caption: str, rule: str | None) -> str:
-    data = figures.png_base64(fig, dpi)
-    attr = f' data-selection="{E(rule)}"' if rule else ""
-    return (f'<figure{attr}><img alt="{E(caption)}" src="data:image/png;base64,{data}">'
-            f"<figcaption>{E(caption)}</figcaption></figure>")
-
-
-def _table(frame: pd.DataFrame, caption: str, rule: str | None = None, classes: str = "",
-           column_rules: dict[str, str] | None = None) -> str:
-    """An HTML table; `column_rules` marks whole columns (header and cells) with the rule they come from."""
-    attr = f' data-selection="{E(rule)}"' if rule else ""
-    column_rules = column_rules or {}
-    marks = [f' data-selection="{E(column_rules[col])}"' if col in column_rules else "" for col in frame.columns]
-    head = "".join(f"<th{mark}>{E(str(col))}</th>" for col, mark in zip(frame.columns, marks))
-    body = "".join("<tr>" + "".join(f"<td{mark}>{E(_fmt(value))}</td>" for value, mark in zip(row, marks)) + "</tr>"
-                   for row in frame.itertuples(index=False))
-    return (f'<table class="{classes}"{attr}><caption>{E(caption)}</caption><thead><tr>{head}</tr></thead>'
-            f"<tbody>{body}</tbody></table>")
-
-
-def _fmt(value) -> str:
-    if isinstance(value, (float, np.floating)):
-        if not np.isfinite(value):
-            return "–"
-        return f"{value:.4g}"
-    return str(value)
-
-
-def _rule_caption(text: str, rule: str) -> str:
-    return f"{text} — selection: {selection.label(rule)}"
 
 
 def setup_section(meta: dict, runs: pd.DataFrame, qc: dict[str, dict], splits: list[dict]) -> str:
@@ -241,27 +211,32 @@ def load_inputs(grid_dir: Path, qc_paths, split_paths, shift_path):
     qc = {Path(p).stem: json.loads(Path(p).read_text()) for p in qc_paths}
     splits = [json.loads(Path(p).read_text()) for p in split_paths]
     shift = pd.read_csv(shift_path) if shift_path and Path(shift_path).exists() else None
-    return runs, summary, meta, qc, splits, shift
+    trials_path = grid_dir / "grid_trials.csv"  # written by the aggregation since the search existed
+    trials = pd.read_csv(trials_path) if trials_path.exists() else None
+    return runs, summary, meta, qc, splits, shift, trials
 
 
 def render_report(grid_dir: Path | str, out_path: Path | str, report_cfg: dict, qc_paths=(), split_paths=(),
                   shift_path: Path | str | None = None, ground_truth: dict | None = None) -> str:
     """Build the page and write it to `out_path`; returns the HTML text. The verdict comes first."""
-    runs, summary_all, meta, qc, splits, shift = load_inputs(Path(grid_dir), qc_paths, split_paths, shift_path)
+    runs, summary_all, meta, qc, splits, shift, trials = load_inputs(Path(grid_dir), qc_paths, split_paths,
+                                                                     shift_path)
     rule = report_cfg.get("selection", selection.HOLDOUT)
     rule = rule if rule in meta["rules"] else meta["rules"][0]
     dpi, top_rows = int(report_cfg.get("figure_dpi", 100)), int(report_cfg.get("top_rows", 12))
     summary = summary_all[summary_all["selection_rule"] == rule]
     title = report_cfg.get("title", "shiftgrid comparison")
     label = meta.get("metric_label", meta["metric"])
+    search = search_section(trials, runs, meta, rule, dpi)  # empty without a hyperparameter search
     body = [f"<header><h1>{E(title)}</h1><p class='meta'>metric: {E(label)} · headline selection: "
             f"{E(selection.label(rule))} · generated {dt.datetime.now(dt.timezone.utc):%Y-%m-%d %H:%M} UTC</p>"
             f'<p class="caution" role="note">{E(CAUTION)}</p></header>',
             '<nav><a href="#verdict">Verdict</a><a href="#setup">Setup</a><a href="#grid">Grid</a>'
+            + ('<a href="#search">Search</a>' if search else "") +
             '<a href="#ranks">Ranks</a><a href="#horizon">Horizons</a><a href="#shift">Shift</a>'
             '<a href="#provenance">Provenance</a></nav>',
             verdict_section(summary, meta, rule, ground_truth),
-            setup_section(meta, runs, qc, splits), grid_section(summary_all, meta, rule, dpi, top_rows),
+            setup_section(meta, runs, qc, splits), grid_section(summary_all, meta, rule, dpi, top_rows), search,
             ranks_section(summary_all, meta, rule, dpi), curves_section(runs, rule, dpi),
             shift_section(shift, summary, rule, dpi), provenance_section(runs, meta, rule),
             f'<footer><p class="caution">{E(CAUTION)}</p></footer>']

@@ -24,6 +24,7 @@ rule aggregate_grid:
         summary=f"{RESULTS}/grid.csv",
         dm=f"{RESULTS}/grid_dm.csv",
         intervals=f"{RESULTS}/grid_intervals.csv",
+        trials=f"{RESULTS}/grid_trials.csv",
         meta=f"{RESULTS}/grid_meta.json",
     log:
         f"{RESULTS}/logs/aggregate_grid.log",
@@ -56,6 +57,7 @@ rule render_report:
     input:
         runs=f"{RESULTS}/grid.parquet",
         summary=f"{RESULTS}/grid.csv",
+        trials=f"{RESULTS}/grid_trials.csv",
         meta=f"{RESULTS}/grid_meta.json",
         shift=f"{RESULTS}/shift.csv",
         qc=[f"{PLAN.cfg.data.qc_dir}/{city}.json" for city in PLAN.cities],

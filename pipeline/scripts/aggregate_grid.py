@@ -1,5 +1,5 @@
 """Rule aggregate_grid: run records + MLflow -> results/grid.parquet, grid.csv, grid_dm.csv, grid_intervals.csv,
-grid_meta.json."""
+grid_trials.csv, grid_meta.json."""
 
 import json
 from pathlib import Path
