@@ -235,7 +235,8 @@ def attach(units: list[dict], search: dict, trainable: bool) -> list[dict]:
         return units
     searched = [unit["penalty"] for unit, space in zip(units, spaces) if space]
     bare = [unit["penalty"] for unit, space in zip(units, spaces) if not space]
-    if trainable and budget > 1 and searched and bare:  # ERM in the sweep unsearched against a searched penalty, or the reverse
+    # an unsearched ERM against a searched penalty (or the reverse) would compare one try with `budget` tries
+    if trainable and budget > 1 and searched and bare:
         model = units[0]["model"]
         raise InputError(f"{model} + {bare[0]} has no search space but {model} + {searched[0]} has one: every "
                          f"method gets the same budget of {budget} trials (declare a space for {bare[0]}, e.g. "

@@ -50,8 +50,9 @@ def collect(runs: pd.DataFrame, metric: str, rules: list[str], read_record) -> p
         for trial in info["trials"]:
             logged = _trial_run(client, trial["run_id"], run.record).data.metrics
             row = {key: getattr(run, key) for key in IDENTITY}
+            chosen_by = [rule for rule in rules if info["selected"].get(rule) == trial["trial"]]
             row.update({"parent_run_id": run.run_id, "trial": int(trial["trial"]), "run_id": trial["run_id"],
-                        "selected_by": ";".join(rule for rule in rules if info["selected"].get(rule) == trial["trial"])})
+                        "selected_by": ";".join(chosen_by)})
             row.update({f"{VALUE_PREFIX}{key}": value for key, value in trial["values"].items()})
             for rule in rules:
                 row[f"{rule}.{selection.SCORE}"] = logged.get(f"{rule}.{selection.SCORE}")

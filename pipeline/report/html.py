@@ -1,7 +1,8 @@
 """Assemble results/report.html: one self-contained page, figures embedded as base64 PNG, no network.
 
 Reads (paths handed over by the `render_report` rule or a caller): results/grid.parquet, grid.csv,
-grid_meta.json, grid_trials.csv (the search section, pipeline.report.search_html), results/shift.csv (optional), data/qc/<city>.json and results/splits/<split_id>.json.
+grid_meta.json, grid_trials.csv (the search section, pipeline.report.search_html), results/shift.csv
+(optional), data/qc/<city>.json and results/splits/<split_id>.json.
 Writes the HTML file. Config keys obeyed (the report slice): report.title, report.selection,
 report.figure_dpi, report.top_rows (rows of the summary table shown per split, best first); and
 data.ground_truth for the verdict (pipeline.report.verdict_html), which opens the page.
