@@ -1,7 +1,8 @@
 """Run Snakemake as a subprocess (steadier than its Python API, which changed inside 9.x).
 
 Reads nothing itself; builds the command lines for `shiftgrid run`, `demo --run` and `status`. Hydra
-overrides travel as `--config overrides="..."` and are re-composed by the Snakefile.
+overrides travel as `--config overrides=[...]`, a JSON list that Snakemake reads back as a list (a shell-quoted
+string loses its quotes there, so `split.cities=[a,b]` broke), and are re-composed by the Snakefile.
 Ingestion runs as its own first phase: within one invocation Snakemake does not re-check downstream
 jobs after an upstream job finishes, so a byte-identical re-ingested table would otherwise still
 re-run everything after it.
@@ -9,8 +10,8 @@ re-run everything after it.
 
 from __future__ import annotations
 
+import json
 import os
-import shlex
 import subprocess
 import sys
 from pathlib import Path
@@ -26,7 +27,7 @@ def snakemake_command(overrides: list[str], *, root: Path | str = ".", profile: 
     command = [sys.executable, "-m", "snakemake", "--snakefile", str(Path(root) / "Snakefile"),
                "--directory", str(root), "--profile", str(Path(root) / PROFILES.get(profile, profile))]
     if overrides:
-        command += ["--config", f"overrides={shlex.join(overrides)}"]
+        command += ["--config", f"overrides={json.dumps(list(overrides))}"]
     command += list(targets or [])
     command += list(extra or [])
     return command
