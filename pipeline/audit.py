@@ -107,8 +107,12 @@ def resolved_config(client, run_id: str) -> dict:
     """The run's logged {job, split} (artifact config/resolved_config.yaml)."""
     with tempfile.TemporaryDirectory() as workdir:
         text = download_artifact(client, run_id, CONFIG_ARTIFACT, workdir).read_text()
-    logged = yaml.safe_load(text) or {}
-    if "job" not in logged or "split" not in logged:
+    try:
+        logged = yaml.safe_load(text) or {}
+    except yaml.YAMLError as error:  # a damaged or tampered artifact: say which, in one line
+        raise InputError(f"run {run_id}: {CONFIG_ARTIFACT} is not readable YAML "
+                         f"({str(error).splitlines()[0]})", field=CONFIG_ARTIFACT) from None
+    if not isinstance(logged, dict) or "job" not in logged or "split" not in logged:
         raise InputError(f"run {run_id}: {CONFIG_ARTIFACT} lacks 'job' or 'split'", field=CONFIG_ARTIFACT)
     return logged
 

@@ -191,3 +191,12 @@ def test_runs_table_has_the_target_city_in_its_own_column():
     target_at = header.index("target")
     assert line[target_at:target_at + len("corvessa")] == "corvessa"
     assert "->" not in header and max(len(header), len(line)) <= 100
+
+
+def test_a_damaged_config_artifact_is_one_line(tmp_path, monkeypatch):
+    bad = tmp_path / "resolved_config.yaml"
+    bad.write_text("job: !!python/object/apply:os.system ['true']\nsplit: {}\n")
+    monkeypatch.setattr(audit, "download_artifact", lambda client, run_id, path, workdir: bad)
+    with pytest.raises(InputError) as caught:
+        audit.resolved_config(None, "abc123")
+    assert "not readable YAML" in str(caught.value) and "\n" not in str(caught.value)
