@@ -198,13 +198,14 @@ SCREEN_COLUMNS = 100
 
 
 def fit_to_screen(lines: list[str], width: int = SCREEN_COLUMNS) -> str:
-    """Wrap lines longer than the screen, continuing them under their own indentation plus four spaces."""
+    """Wrap lines longer than the screen under their own indentation plus four spaces; a single word longer
+    than the screen (a path, a digest) is kept whole so it can be copied."""
     import textwrap
 
     out = []
     for line in lines:
         indent = " " * (len(line) - len(line.lstrip()) + 4)
-        out.extend(textwrap.wrap(line, width, subsequent_indent=indent, break_long_words=True,
+        out.extend(textwrap.wrap(line, width, subsequent_indent=indent, break_long_words=False,
                                  break_on_hyphens=False) if len(line) > width else [line])
     return "\n".join(out)
 
