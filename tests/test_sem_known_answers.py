@@ -136,11 +136,11 @@ def test_the_grid_of_a_dag_run_shows_irm_ahead_of_erm_where_the_spurious_mechani
 
 @pytest.mark.e2e
 def test_after_holm_the_penalty_wins_where_the_mechanism_changes_and_loses_where_only_noise_changes(
-        tmp_path_factory):
+        sem_runs):
     # The `sem` experiment scores both test environments in one grid. Theory (Arjovsky et al. 2019,
     # introductory example; docs/known-answers.md): IRMv1 beats pooled ERM where X2's mechanism changes
     # (driftmere) and loses where only the noise variance changes (evenholt, ERM risk 1.40 vs 3 per s2 unit).
-    _, results = sem_results(tmp_path_factory, "sem")
+    _, results = sem_runs.results("sem")
     dm = pd.read_csv(results / "grid_dm.csv")
     # grid metric mse -> squared-error loss; one Holm family = every penalised-vs-ERM test of the rule
     family = dm[(dm["selection_rule"] == "source-holdout") & (dm["dm_loss"] == "squared")]
