@@ -84,6 +84,18 @@ def _group_members(group: int) -> list[int]:
     return members
 
 
+# A batch scheduler's client commands in Snakemake's group are not jobs: the SLURM executor runs them to
+# submit, watch and, on this very interrupt, cancel its jobs (a SIGTERM to scancel left them queued).
+SCHEDULER_CLIENTS = {"sbatch", "squeue", "scancel", "sacct"}
+
+
+def _command_name(pid: int) -> str:
+    try:
+        return Path(f"/proc/{pid}/comm").read_text().strip()
+    except OSError:  # ended meanwhile
+        return ""
+
+
 def _stop(process: subprocess.Popen) -> None:
     """Snakemake gets SIGINT (it then cancels, removes incomplete outputs and unlocks); its jobs get SIGTERM,
     which a job still importing obeys silently and a working job turns into its own clean stop (a SIGINT
@@ -99,8 +111,9 @@ def _stop(process: subprocess.Popen) -> None:
     try:
         for _ in range(INTERRUPT_GRACE_S):
             for pid in set(_group_members(group)) - told:
-                with contextlib.suppress(ProcessLookupError):
-                    os.kill(pid, signal.SIGTERM)
+                if _command_name(pid) not in SCHEDULER_CLIENTS:
+                    with contextlib.suppress(ProcessLookupError):
+                        os.kill(pid, signal.SIGTERM)
                 told.add(pid)
             try:
                 process.wait(timeout=1)
