@@ -53,7 +53,7 @@ say "services ready after $(($(date +%s) - STARTED)) s"
 
 # 3. Tests: -rs prints every skip with its reason; the runs inside have their own hard limits.
 # Its own --basetemp: other pytest sessions on the machine prune the shared one.
-timeout -s KILL 1500 "$PY" -m pytest -p no:cacheprovider --basetemp "$SCRATCH/pytest" -v -s -rs tests/cluster
+timeout -s KILL 1500 "$PY" -m pytest -p no:cacheprovider --basetemp "$SCRATCH/pytest" -v -s -rs --durations=0 tests/cluster
 status=$?
 say "finished in $(($(date +%s) - STARTED)) s, pytest exit status $status"
 exit $status

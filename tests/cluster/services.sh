@@ -48,8 +48,10 @@ start_slurm() {
     fi
     host=$(hostname -s)
     cpus=$(nproc)
-    # Half the available memory: the machine is shared, and a job asking for more than this stays pending.
-    mem=$(awk '/MemAvailable/ {print int($2 / 1024 / 2)}' /proc/meminfo)
+    # Three quarters of the machine's memory, whatever others use now: SLURM only books it (task/none
+    # enforces nothing; a tiny job uses < 1 GB), and the profile's largest group job (the closing steps,
+    # 10 GB booked) must fit, or it stays pending forever.
+    mem=$(awk '/MemTotal/ {print int($2 / 1024 * 3 / 4)}' /proc/meminfo)
     ctld_port=$(free_port); slurmd_port=$(free_port)
     cat > "$s/slurm.conf" <<EOF
 ClusterName=shiftgridtest
@@ -73,7 +75,7 @@ ReturnToService=2
 SchedulerType=sched/backfill
 SelectType=select/cons_tres
 SelectTypeParameters=CR_Core_Memory
-# No slurmdbd: no accounting, so `sacct` cannot work; the profile checks job states with squeue, which
+# No slurmdbd: no accounting, so sacct cannot work; the profile checks job states with squeue, which
 # forgets a job MinJobAge seconds after it ends (keep it well above the status-check interval).
 AccountingStorageType=accounting_storage/none
 JobAcctGatherType=jobacct_gather/none
