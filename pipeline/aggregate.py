@@ -32,7 +32,7 @@ from urllib.parse import unquote, urlparse
 import numpy as np
 import pandas as pd
 
-from pipeline import environments, grid_stats, stats, tracking, trial_table, window_stats
+from pipeline import environments, grid_stats, names, stats, tracking, trial_table, window_stats
 from pipeline.atomic import write_csv_atomic, write_parquet_atomic, write_text_atomic
 from pipeline.errors import InputError
 
@@ -181,8 +181,8 @@ def dm_tests(runs: pd.DataFrame, rules: list[str], tables: dict[str, dict]) -> p
     sampling = runs["sampling"] if "sampling" in runs else grid_stats.PROTOCOL_DEFAULTS["sampling"]
     for (split_id, model, _), group in runs.assign(sampling=sampling).groupby(["split_id", "model", "sampling"],
                                                                                sort=True):
-        erm = group[group["penalty"] == grid_stats.BASELINE_PENALTY]["run_id"].tolist()
-        others = group[~group["penalty"].isin([grid_stats.BASELINE_PENALTY, grid_stats.NOT_APPLICABLE])]
+        erm = group[group["penalty"] == names.ERM]["run_id"].tolist()
+        others = group[~group["penalty"].isin([names.ERM, names.NOT_APPLICABLE])]
         if not erm or others.empty:
             continue
         horizon, stride = tables[erm[0]]["horizon"], tables[erm[0]]["stride"]

@@ -28,12 +28,11 @@ from pipeline import selection
 from pipeline.canonical import canonical_json, to_container  # noqa: F401 (re-exported: callers import them here)
 from pipeline.errors import InputError
 from pipeline.fit_config import FitConfig
-from pipeline.names import check_name
+from pipeline.names import ERM, NOT_APPLICABLE, check_name
 from pipeline.search import SearchConfig
 from pipeline.splits import SplitConfig
 from pipeline.windows import ForecastConfig
 
-NOT_APPLICABLE = "na"  # penalty label of families that are not gradient-trained (shown as "n/a")
 DEPENDENCY_CHANGES = ("report", "rerun")  # values of tracking.dependency_changes
 
 
@@ -55,7 +54,7 @@ class DataConfig:
 
 @dataclass
 class PenaltyConfig:
-    name: str = "erm"  # erm | irm | vrex | groupdro
+    name: str = ERM  # erm | irm | vrex | groupdro
     weight: float = 0.0
     warmup_steps: int = 0
     extra: Dict[str, Any] = field(default_factory=dict)  # penalty-specific, e.g. {eta: 0.01} for groupdro

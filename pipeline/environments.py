@@ -19,9 +19,9 @@ from __future__ import annotations
 import json
 
 from pipeline.errors import InputError
+from pipeline.names import ERM
+from pipeline.selection import ROTATION
 
-ROTATION_RULE = "source-rotation"  # pipeline.selection.ROTATION; repeated here to stay import-light
-ERM = "erm"
 
 
 def admitted_environments(split: dict) -> int:
@@ -81,12 +81,12 @@ def check_environments(split: dict, job: dict, station_city: dict[str, str]) -> 
                          f"({split.get('environment')} unit: {', '.join(split['environments'])}); {hint}",
                          field="split.environment")
     selection = job.get("selection") or {}
-    if ROTATION_RULE in [selection.get("rule"), *(selection.get("also") or [])]:
+    if ROTATION in [selection.get("rule"), *(selection.get("also") or [])]:
         short = {group: n for group, n in refit_environment_counts(split, station_city).items() if n < 2}
         if short:
             group = sorted(short)[0]
-            raise InputError(f"{split_id}: penalty {name} with {ROTATION_RULE}: the refit without {group} "
-                             f"trains on {short[group]} environment; drop {ROTATION_RULE} from selection "
+            raise InputError(f"{split_id}: penalty {name} with {ROTATION}: the refit without {group} "
+                             f"trains on {short[group]} environment; drop {ROTATION} from selection "
                              f"or use more source groups", field="selection")
 
 

@@ -23,12 +23,11 @@ import pandas as pd
 from pipeline import resampling, selection, stats
 from pipeline.window_stats import loss_for
 from pipeline.errors import InputError
+from pipeline.names import ERM, NOT_APPLICABLE, penalty_shown
 from pipeline.variables import BY_NAME
 
 HIGHER_IS_BETTER = frozenset({"pod", "csi", "ets"})
 BEST_AT_ONE = frozenset({"bias"})
-BASELINE_PENALTY = "erm"
-NOT_APPLICABLE = "na"  # penalty of families that are not gradient-trained
 # sampling and environment last: combo_label and split_label index the first six. A penalty is compared
 # with the ERM run of the same split, model AND sampling (pipeline.twins): other batches, other protocol.
 ID_COLUMNS = ("split_id", "sources", "target", "model", "family", "penalty", "sampling", "environment")
@@ -44,12 +43,8 @@ CHANGE_NOTE = ("change vs ERM twin = (penalty - ERM) / |ERM| of the cell means, 
                "lowered the metric")
 
 
-def penalty_display(penalty: str) -> str:
-    return "n/a" if penalty == NOT_APPLICABLE else penalty
-
-
 def combo_label(model: str, penalty: str) -> str:
-    return f"{model}+{penalty_display(penalty)}"
+    return f"{model}+{penalty_shown(penalty)}"
 
 
 def split_label(sources, target: str) -> str:
@@ -223,11 +218,11 @@ def summarise(runs: pd.DataFrame, metric: str, rule: str) -> pd.DataFrame:
 
 
 def _add_erm_comparison(summary: pd.DataFrame, column: str) -> pd.DataFrame:
-    erm = summary[summary["penalty"] == BASELINE_PENALTY].set_index(["split_id", "model", "sampling"])
+    erm = summary[summary["penalty"] == ERM].set_index(["split_id", "model", "sampling"])
     summary = summary.copy()
     for name in ("vs_erm_change", "vs_erm_outcome", "vs_erm_wins", "vs_erm_ties", "vs_erm_losses", "vs_erm_missing"):
         summary[name] = np.nan
-    penalised = ~summary["penalty"].isin([BASELINE_PENALTY, NOT_APPLICABLE])
+    penalised = ~summary["penalty"].isin([ERM, NOT_APPLICABLE])
     for (model, penalty), group in summary[penalised].groupby(["model", "penalty"]):
         twins = [erm.loc[(split, model, sampling)] if (split, model, sampling) in erm.index else None
                  for split, sampling in zip(group["split_id"], group["sampling"])]

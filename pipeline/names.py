@@ -14,6 +14,24 @@ from pipeline.errors import InputError
 SAFE_NAME = re.compile(r"^[a-z][a-z0-9_]*$")  # station ids, model and penalty names
 CITY_NAME = re.compile(r"^[a-z][a-z0-9]*$")  # no "_": split ids join city names with "+" and "-"
 
+# Penalty labels that are not penalties a user configures. Every penalised run is compared with the ERM
+# run of the same split, model and sampling (its twin, pipeline.twins). Families that are not
+# gradient-trained take no penalty: their runs are labelled NOT_APPLICABLE in tags, file names and tables,
+# and shown as "n/a" on the command line and in the report (a "/" cannot be part of a file name).
+ERM = "erm"
+NOT_APPLICABLE = "na"
+NOT_APPLICABLE_SHOWN = "n/a"
+
+
+def penalty_shown(penalty: str) -> str:
+    """How a penalty label is written for people (tables, figures, the command line)."""
+    return NOT_APPLICABLE_SHOWN if penalty == NOT_APPLICABLE else penalty
+
+
+def penalty_label(text: str) -> str:
+    """The stored label of a penalty written as people write it (`--penalty n/a`); the inverse of penalty_shown."""
+    return NOT_APPLICABLE if text == NOT_APPLICABLE_SHOWN else text
+
 
 def check_name(value, pattern: re.Pattern = SAFE_NAME, *, file: str | None = None, row: int | None = None,
                field: str | None = None) -> str:

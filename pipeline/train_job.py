@@ -18,7 +18,7 @@ from pathlib import Path
 import pandas as pd
 import yaml
 
-from pipeline import provenance, run_state, selection, tracking, twins
+from pipeline import names, provenance, run_state, selection, tracking, twins
 from pipeline import search, search_job
 from pipeline.config import canonical_json
 from pipeline.atomic import write_json_atomic
@@ -43,7 +43,7 @@ def tags_for(split: dict, job: dict, seed: int, code_digest: str) -> dict[str, s
             "package_digest": provenance.source_digest(["."])}
     # The protocol a run shares with its ERM twin (pipeline.twins): how its batches were drawn ("na" for
     # closed-form families, which draw none), and whether its split fell back to a finer environment unit.
-    tags["sampling"] = job["fit"].get("sampling", twins.DEFAULT_SAMPLING) if job["penalty"] is not None else "na"
+    tags["sampling"] = job["fit"].get("sampling", twins.DEFAULT_SAMPLING) if job["penalty"] is not None else names.NOT_APPLICABLE
     if split.get("environment_fallback_from"):
         tags["environment_fallback_from"] = split["environment_fallback_from"]
     tags.update(search.trial_tags(job))  # a search trial: its searched values complete its identity

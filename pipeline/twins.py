@@ -16,8 +16,8 @@ also keys twins on it (pipeline.grid_stats).
 from __future__ import annotations
 
 from pipeline.errors import InputError
+from pipeline.names import ERM
 
-ERM = "erm"
 DEFAULT_SAMPLING = "balanced"  # what runs logged before fit.sampling existed used
 
 

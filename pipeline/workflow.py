@@ -164,7 +164,8 @@ def plan_config(overrides: str | list | None = None, root: Path | str = ".") -> 
 def compose_plan(overrides: list[str], root: Path) -> WorkflowPlan:
     """Compose the configuration with Hydra (once per model x penalty pair) and plan cities, splits, jobs."""
     from pipeline import search
-    from pipeline.config import NOT_APPLICABLE, compose_config, expand_sweep_overrides, job_slice, validate
+    from pipeline.config import compose_config, expand_sweep_overrides, job_slice, validate
+    from pipeline.names import NOT_APPLICABLE
     from pipeline.splits import plan_splits
     from pipeline.stations import load_stations
 

@@ -17,7 +17,7 @@ from pathlib import Path
 import numpy as np
 import pandas as pd
 
-from pipeline import grid_stats, selection
+from pipeline import grid_stats, names, selection
 from pipeline.errors import InputError
 from pipeline.resampling import SEED_RANGE
 
@@ -56,7 +56,7 @@ def grid_table(results_dir: Path, metric: str, rule: str, targets=None, models=N
                penalties=None) -> pd.DataFrame:
     """The summary (pipeline.grid_stats.summarise) of the filtered runs, DM columns joined in."""
     runs = load_runs(results_dir)
-    penalties = [grid_stats.NOT_APPLICABLE if p == "n/a" else p for p in penalties] if penalties else None
+    penalties = [names.penalty_label(p) for p in penalties] if penalties else None
     for column, wanted in (("target", targets), ("model", models), ("penalty", penalties)):
         if wanted:
             unknown = sorted(set(wanted) - set(runs[column]))
@@ -71,7 +71,7 @@ def grid_table(results_dir: Path, metric: str, rule: str, targets=None, models=N
     tables = {name: pd.read_csv(path) if path.exists() else None for name, path in paths.items()}
     summary = grid_stats.attach_tests(summary, tables["dm"], tables["intervals"])
     summary["best"] = np.where(summary["best_in_split"], BEST, "")
-    summary["penalty"] = summary["penalty"].map(grid_stats.penalty_display)
+    summary["penalty"] = summary["penalty"].map(names.penalty_shown)
     return summary.sort_values(["split", "rank", "model"]).reset_index(drop=True)
 
 

@@ -9,7 +9,7 @@ with full IDs. Writes nothing.
 import json
 from datetime import datetime, timezone
 
-from pipeline import audit, tracking
+from pipeline import audit, names, tracking
 from pipeline.errors import InputError
 
 FORMATS = ("table", "csv", "json")
@@ -51,7 +51,7 @@ def _quoted(value: str) -> str:
 def search(client, experiment_id: str, args) -> list[dict]:
     clauses = [f"tags.{name} = {_quoted(value)}" for name, value in
                (("target", args.target), ("model", args.model),
-                ("penalty", "na" if args.penalty == "n/a" else args.penalty),
+                ("penalty", args.penalty and names.penalty_label(args.penalty)),
                 ("seed", None if args.seed is None else str(args.seed))) if value]
     if args.since:
         clauses.append(f"attributes.start_time >= {_since_millis(args.since)}")
@@ -68,7 +68,7 @@ def search(client, experiment_id: str, args) -> list[dict]:
             continue
         rows.append({"run_id": found.info.run_id, "started": audit.when(found.info.start_time)[:16],
                      "split_id": tags.get("split_id"), "sources": tags.get("sources"), "target": tags.get("target"),
-                     "model": tags.get("model"), "penalty": "n/a" if tags.get("penalty") == "na" else tags.get("penalty"),
+                     "model": tags.get("model"), "penalty": tags.get("penalty") and names.penalty_shown(tags["penalty"]),
                      "seed": tags.get("seed"), "state": state,
                      "superseded_by": successor or "", "target_mae": found.data.metrics.get("target_mae"),
                      "_start": found.info.start_time or 0})

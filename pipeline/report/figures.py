@@ -18,7 +18,7 @@ import matplotlib.pyplot as plt  # noqa: E402
 import numpy as np  # noqa: E402
 import pandas as pd  # noqa: E402
 
-from pipeline import grid_stats, selection  # noqa: E402
+from pipeline import grid_stats, names, selection  # noqa: E402
 
 BEST_MARK = "★"  # marks the best cell of a split in addition to its outline (never colour alone)
 plt.rcParams.update({"font.size": 9, "axes.titlesize": 10, "figure.titlesize": 11, "axes.spines.top": False,
@@ -39,7 +39,7 @@ def _title(text: str, rule: str) -> str:
 def _ordered_combos(summary: pd.DataFrame) -> list[str]:
     """Columns ordered by model, then ERM / n/a before the penalties, so twins sit side by side."""
     order = summary[["model", "penalty", "combo"]].drop_duplicates()
-    order = order.assign(key=order["penalty"].map(lambda p: (p not in ("erm", "na"), p)))
+    order = order.assign(key=order["penalty"].map(lambda p: (p not in (names.ERM, names.NOT_APPLICABLE), p)))
     return order.sort_values(["model", "key"])["combo"].tolist()
 
 
@@ -218,7 +218,7 @@ def weight_sensitivity(table: pd.DataFrame, reference: dict[str, float], metric_
         rows = table[table["model"] == model]
         for penalty, points in rows.groupby("penalty", sort=True):
             points = points.sort_values("weight")
-            ax.plot(points["weight"], points["mean"], "o-", lw=1.4, label=grid_stats.penalty_display(penalty))
+            ax.plot(points["weight"], points["mean"], "o-", lw=1.4, label=names.penalty_shown(penalty))
         if np.isfinite(reference.get(model, np.nan)):
             ax.axhline(reference[model], ls="--", lw=1.2, color="#636363", label="erm (selected trial)")
         if (rows["weight"] > 0).all():

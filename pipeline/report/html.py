@@ -20,7 +20,7 @@ from pathlib import Path
 import numpy as np
 import pandas as pd
 
-from pipeline import grid_stats, selection
+from pipeline import grid_stats, names, selection
 from pipeline.atomic import write_text_atomic
 from pipeline.caution import CAUTION  # one wording of the caution for the CLI and the report
 from pipeline.ingest.qc import summary_row
@@ -41,7 +41,7 @@ def setup_section(meta: dict, runs: pd.DataFrame, qc: dict[str, dict], splits: l
              ("metric", meta.get("metric_label", meta["metric"])),
              ("selection rules logged", ", ".join(selection.label(rule) for rule in meta["rules"])),
              ("models", ", ".join(sorted(runs["model"].unique()))),
-             ("penalties", ", ".join(grid_stats.penalty_display(p) for p in sorted(runs["penalty"].unique()))),
+             ("penalties", ", ".join(names.penalty_shown(p) for p in sorted(runs["penalty"].unique()))),
              ("seeds", ", ".join(map(str, sorted(runs["seed"].unique()))))]
     items = "".join(f"<dt>{E(k)}</dt><dd>{E(v)}</dd>" for k, v in facts)
     split_rows = pd.DataFrame([{"split": grid_stats.split_label(s["sources"], s["target"]), "scheme": s.get("scheme"),
@@ -193,7 +193,7 @@ def shift_section(shift: pd.DataFrame | None, summary: pd.DataFrame, rule: str, 
 def provenance_section(runs: pd.DataFrame, meta: dict, rule: str) -> str:
     column = grid_stats.metric_column(runs.columns, meta["metric"], rule)
     table = pd.DataFrame({"split": [grid_stats.split_label(s, t) for s, t in zip(runs["sources"], runs["target"])],
-                          "model": runs["model"], "penalty": runs["penalty"].map(grid_stats.penalty_display),
+                          "model": runs["model"], "penalty": runs["penalty"].map(names.penalty_shown),
                           "seed": runs["seed"],
                           f"{grid_stats.grid_metric_label(runs, column)} ({column})": runs[column],
                           "run_id": runs["run_id"],

@@ -18,7 +18,7 @@ import html
 import numpy as np
 import pandas as pd
 
-from pipeline import grid_stats, selection, trial_table
+from pipeline import grid_stats, names, selection, trial_table
 from pipeline.report import figures
 from pipeline.report.blocks import figure, rule_caption, table
 
@@ -75,9 +75,9 @@ def search_section(trials: pd.DataFrame, runs: pd.DataFrame, meta: dict, rule: s
                                                              rule), rule)]
     if WEIGHT_COLUMN in trials.columns and trials[WEIGHT_COLUMN].notna().any():
         points = sensitivity(trials, column, rule)
-        erm = runs[runs["penalty"] == grid_stats.BASELINE_PENALTY].groupby("model")[column].mean()
+        erm = runs[runs["penalty"] == names.ERM].groupby("model")[column].mean()
         reference = {model: float(erm.get(model, np.nan)) for model in points["model"].unique()}
-        shown = pd.DataFrame({"model": points["model"], "penalty": points["penalty"].map(grid_stats.penalty_display),
+        shown = pd.DataFrame({"model": points["model"], "penalty": points["penalty"].map(names.penalty_shown),
                               "penalty weight": points["weight"],
                               f"mean {label}, target test block": points["mean"], "trials": points["trials"],
                               f"runs that selected it ({selection.label(rule)})": points["chosen"],
