@@ -8,6 +8,8 @@ escape sequences or megabytes of garbage: `one_line` escapes every non-printable
 the length, so a message is always exactly one harmless line.
 """
 
+from dataclasses import fields
+
 MAX_MESSAGE_CHARS = 1000
 
 
@@ -32,3 +34,23 @@ class InputError(Exception):
         parts.append(str(message))
         super().__init__(one_line(": ".join(parts)))
         self.file, self.row, self.field = file, row, field
+
+
+def check_keys(values, known, field: str, *, required=(), what: str = "key", file: str | None = None) -> None:
+    """One-line InputError naming `FIELD.KEY` for the first key of `values` that is not in `known`, or the
+    first `required` key that is missing. The one check of a mapping's keys (config groups, dataclass
+    schemas, model parameters), so every such error reads the same."""
+    listed = ", ".join(sorted(known)) or "none"
+    for key in values:
+        if key not in known:
+            raise InputError(f"unknown {what} (known: {listed})", file=file, field=f"{field}.{key}")
+    for key in required:
+        if key not in values:
+            raise InputError(f"missing {what} (required: {', '.join(required)})", file=file, field=f"{field}.{key}")
+
+
+def from_mapping(schema, values, field: str, *, file: str | None = None):
+    """`schema(**values)` for a dataclass `schema`, after check_keys against its fields (None: the defaults)."""
+    values = dict(values or {})
+    check_keys(values, {f.name for f in fields(schema)}, field, file=file)
+    return schema(**values)

@@ -8,9 +8,9 @@ DAG plan (pipeline.config, pipeline.workflow) use it without loading torch. Conf
 from __future__ import annotations
 
 import math
-from dataclasses import dataclass, fields
+from dataclasses import dataclass
 
-from pipeline.errors import InputError
+from pipeline.errors import InputError, from_mapping
 
 SAMPLING_MODES = ("balanced", "pooled")  # fit.sampling; the samplers live in pipeline.sampling
 
@@ -49,8 +49,4 @@ class FitConfig:
 
     @classmethod
     def from_dict(cls, values: dict | None) -> "FitConfig":
-        known = {f.name for f in fields(cls)}
-        unknown = sorted(set(values or {}) - known)
-        if unknown:
-            raise InputError(f"unknown key {unknown[0]!r} (known: {', '.join(sorted(known))})", field="fit")
-        return cls(**(values or {}))
+        return from_mapping(cls, values, "fit")

@@ -29,14 +29,14 @@ import itertools
 import json
 import math
 from collections.abc import Mapping, Sequence
-from dataclasses import asdict, dataclass, field, fields
+from dataclasses import asdict, dataclass, field
 from typing import Any, Dict, List, Optional
 
 import pandas as pd
 
 from pipeline.atomic import write_json_atomic
 from pipeline.environments import training_environment_count
-from pipeline.errors import InputError
+from pipeline.errors import InputError, from_mapping
 from pipeline.geo import cluster_stations
 from pipeline.provenance import file_digest
 
@@ -78,12 +78,7 @@ def plain_container(value):
 def _as_config(cfg) -> SplitConfig:
     if isinstance(cfg, SplitConfig):
         cfg = asdict(cfg)
-    values = plain_container(cfg)
-    known = {f.name for f in fields(SplitConfig)}
-    for key in values:
-        if key not in known:
-            raise InputError(f"unknown key (known: {', '.join(sorted(known))})", field=f"split.{key}")
-    return SplitConfig(**values)
+    return from_mapping(SplitConfig, plain_container(cfg), "split")
 
 
 def _validate(cfg: SplitConfig, all_cities: list[str], lookback: int, horizon: int) -> int:

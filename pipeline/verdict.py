@@ -21,7 +21,7 @@ import numpy as np
 import pandas as pd
 
 from pipeline import stats
-from pipeline.errors import InputError
+from pipeline.errors import InputError, check_keys
 
 GROUND_TRUTH_KEYS = ("about", "link", "holds")
 CAN, CANNOT = "can help", "cannot help"
@@ -34,10 +34,7 @@ def check_ground_truth(ground_truth: dict | None, cities: list[str] | None = Non
     field = "data.ground_truth"
     if not isinstance(ground_truth, dict):
         raise InputError(f"must be a mapping with keys {', '.join(GROUND_TRUTH_KEYS)}", file="config", field=field)
-    unknown = sorted(set(ground_truth) - set(GROUND_TRUTH_KEYS))
-    missing = [key for key in GROUND_TRUTH_KEYS if key not in ground_truth]
-    if unknown or missing:
-        raise InputError(f"unknown keys {unknown}, missing keys {missing}", file="config", field=field)
+    check_keys(ground_truth, GROUND_TRUTH_KEYS, field, required=GROUND_TRUTH_KEYS, file="config")
     link, holds = ground_truth["link"], ground_truth["holds"]
     if not isinstance(link, dict) or not link:
         raise InputError("must map every city to a label", file="config", field=f"{field}.link")

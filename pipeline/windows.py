@@ -32,14 +32,14 @@ Rules (each one keeps information from crossing a block boundary or flowing from
 
 from __future__ import annotations
 
-from dataclasses import asdict, dataclass, field, fields
+from dataclasses import asdict, dataclass, field
 from typing import List
 
 import numpy as np
 from numpy.lib.stride_tricks import sliding_window_view
 import pandas as pd
 
-from pipeline.errors import InputError
+from pipeline.errors import InputError, from_mapping
 from pipeline.features import FeatureScaler, candidate_variables, derive_features, feature_names
 from pipeline.metrics import seasonal_naive_scale
 from pipeline.splits import ADMITTED_SUFFIX, admitted_target_block, plain_container
@@ -98,12 +98,8 @@ class Windows:
 def _as_config(cfg) -> ForecastConfig:
     if cfg is None:
         return ForecastConfig()
-    values = plain_container(asdict(cfg) if isinstance(cfg, ForecastConfig) else cfg)
-    known = {f.name for f in fields(ForecastConfig)}
-    for key in values:
-        if key not in known:
-            raise InputError(f"unknown key (known: {', '.join(sorted(known))})", field=f"forecast.{key}")
-    cfg = ForecastConfig(**values)
+    cfg = from_mapping(ForecastConfig, plain_container(asdict(cfg) if isinstance(cfg, ForecastConfig) else cfg),
+                       "forecast")
     for name in ("lookback_hours", "horizon_hours", "stride_hours"):
         if not isinstance(getattr(cfg, name), int) or getattr(cfg, name) < 1:
             raise InputError(f"must be an integer >= 1, got {getattr(cfg, name)!r}", field=f"forecast.{name}")

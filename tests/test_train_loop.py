@@ -172,7 +172,7 @@ def test_bad_fit_values_raise_input_error(values, field):
 
 
 def test_unknown_fit_key_is_named():
-    with pytest.raises(InputError, match="unknown key 'epochs'"):
+    with pytest.raises(InputError, match="fit.epochs: unknown key"):
         FitConfig.from_dict({"epochs": 3})
 
 

@@ -39,8 +39,10 @@ def test_sem_ground_truth_matches_the_known_answer_scenario():
 
 def test_bad_ground_truth_is_a_one_line_error_naming_the_field():
     truth = declared("demo")
-    with pytest.raises(InputError, match="data.ground_truth: unknown keys \\['extra'\\]"):
+    with pytest.raises(InputError, match="data.ground_truth.extra: unknown key"):
         check_ground_truth({**truth, "extra": 1})
+    with pytest.raises(InputError, match="data.ground_truth.holds: missing key"):
+        check_ground_truth({key: value for key, value in truth.items() if key != "holds"})
     with pytest.raises(InputError, match="data.ground_truth.holds"):
         check_ground_truth({**truth, "holds": ["nowhere"]})
     with pytest.raises(InputError, match="data.ground_truth.link: no link label for cities \\['gorse'\\]"):

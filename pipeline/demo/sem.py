@@ -35,7 +35,7 @@ from pathlib import Path
 import numpy as np
 import pandas as pd
 
-from pipeline.errors import InputError
+from pipeline.errors import InputError, check_keys
 from pipeline.atomic import write_text_atomic
 
 DUMP_COLUMNS = {"x1": "X1", "y": "Y", "x2": "X2"}  # SEM variable -> column name in the raw dump
@@ -46,10 +46,7 @@ ENVIRONMENT_KEYS = {"s2", "x2_noise_var", "x2_sign"}
 def environment_params(name: str, values: dict) -> dict:
     """{s2, x2_noise_var, x2_sign} of one environment, checked; defaults are the paper's (v = 1, +1)."""
     values = dict(values or {})
-    unknown = sorted(set(values) - ENVIRONMENT_KEYS)
-    if unknown:
-        raise InputError(f"unknown keys {unknown} (known: {sorted(ENVIRONMENT_KEYS)})",
-                         field=f"data.generator.environments.{name}")
+    check_keys(values, ENVIRONMENT_KEYS, f"data.generator.environments.{name}")
     params = {"s2": values.get("s2"), "x2_noise_var": values.get("x2_noise_var", 1.0),
               "x2_sign": values.get("x2_sign", 1.0)}
     for key in ("s2", "x2_noise_var"):

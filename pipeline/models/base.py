@@ -24,7 +24,7 @@ from typing import Any, ClassVar
 
 import numpy as np
 
-from pipeline.errors import InputError
+from pipeline.errors import InputError, check_keys
 from pipeline.models import level
 from pipeline.window_check import check_window_set
 
@@ -69,11 +69,8 @@ class ForecastModel:
         pass
 
     def __init__(self, seed: int = 0, **params):
-        known = {f.name for f in fields(self.Params)}
-        for key in params:
-            if key not in known:
-                raise InputError(f"unknown parameter {key!r} for model family {self.family!r} "
-                                 f"(known: {', '.join(sorted(known)) or 'none'})", field=f"model.{key}")
+        check_keys(params, {f.name for f in fields(self.Params)}, "model",
+                   what=f"parameter of model family {self.family!r}")
         self.seed = seed
         self.params = dict(params)
 
