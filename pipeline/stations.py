@@ -1,6 +1,7 @@
 """Station table: load and validate config/stations.csv.
 
-Reads the station table (columns station_id, city, lat, lon, elevation_m, site_type); writes nothing.
+Reads the station table (columns station_id, city, lat, lon, elevation_m, site_type; site types from
+config/variables.yaml); writes nothing.
 Config key obeyed: `data.stations` (the path). Every failure is an InputError naming the file, the row
 and the field. ROW is the line number in the file as an editor shows it: the header is line 1, the
 first station is line 2.
@@ -14,10 +15,9 @@ import pandas as pd
 from pipeline.errors import InputError
 from pipeline.names import CITY_NAME, SAFE_NAME, check_name
 from pipeline.textfile import read_text
+from pipeline.variables import registry
 
 REQUIRED_COLUMNS = ("station_id", "city", "lat", "lon", "elevation_m", "site_type")
-SITE_TYPES = frozenset({"urban_traffic", "urban_background", "suburban", "rural_background",
-                        "industrial", "airport"})
 _HEADER_LINES = 1
 
 
@@ -44,6 +44,7 @@ def validate_stations(table: pd.DataFrame, file: str) -> pd.DataFrame:
     if table.empty:
         raise InputError("no stations", file=file)
     seen: dict[str, int] = {}
+    site_types = registry().site_types  # config/variables.yaml
     lats, lons, elevations = [], [], []
     lines = table["_line"].tolist() if "_line" in table else [_line(p) for p in range(len(table))]
     table = table.drop(columns="_line", errors="ignore")
@@ -59,8 +60,9 @@ def validate_stations(table: pd.DataFrame, file: str) -> pd.DataFrame:
         # Lowest land surface is about -430 m, highest about 8850 m (common knowledge).
         elevations.append(_number(row.elevation_m, file, line, "elevation_m", -500.0, 9000.0))
         site_type = str(row.site_type).strip()
-        if site_type not in SITE_TYPES:
-            raise InputError(f"unknown site type '{site_type}' (known: {', '.join(sorted(SITE_TYPES))})",
+        if site_type not in site_types:
+            raise InputError(f"unknown site type '{site_type}' (known: {', '.join(sorted(site_types))}; "
+                             f"a new one goes into config/variables.yaml)",
                              file=file, row=line, field="site_type")
     typed = pd.DataFrame({
         "station_id": table["station_id"].str.strip().astype("string"),

@@ -60,7 +60,8 @@ def test_value_flags_and_gaps(tmp_path):
     assert (kept_0400["pm25"], kept_0400["rh_pct"]) == (7, 60)
     assert at(clean, "2025-10-26T07:00Z")["no2_qc"] == QC_MISSING  # empty cell
     values = qc["values"]
-    assert values["pm25"] == {"ok": 6, "missing": 3, "sentinel": 1, "out_of_range": 0, "unparseable": 0}
+    assert values["pm25"] == {"ok": 6, "missing": 3, "sentinel": 1, "out_of_range": 0, "unparseable": 0,
+                              "incomplete": 0}
     # Grid 2025-10-25 22:00 .. 2025-10-26 07:00 UTC = 10 hours, 7 delivered, 04:00-06:00 UTC missing.
     assert qc["gaps"]["s1"] == {"first": "2025-10-25T22:00:00+00:00", "last": "2025-10-26T07:00:00+00:00",
                                 "hours_on_grid": 10, "hours_with_data": 7, "missing_hours": 3,

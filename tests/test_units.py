@@ -69,7 +69,9 @@ def test_meteorological_and_mass_units(variable, unit, value, expected):
 
 def test_unit_spellings_are_normalised():
     assert normalise_unit(" µg/m³ ") == "ug/m3" and normalise_unit("MPH") == "mph"
-    assert normalise_unit("furlongs") is None
+    assert normalise_unit("blorps") is None and normalise_unit("") is None
+    # other units are spelled as pint spells them, so a study can declare e.g. solar radiation in W/m2
+    assert normalise_unit("W/m2") == normalise_unit("W/m^2") == "watt / meter ** 2"
 
 
 @pytest.mark.parametrize("variable, unit", [("no2", "furlongs"), ("pm25", "ppb"), ("temp_c", "m/s")])
