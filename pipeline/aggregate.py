@@ -52,14 +52,6 @@ def read_record(path: Path | str) -> dict:
     return record
 
 
-def _store_exists(uri: str, record_path: str) -> None:
-    """MLflow would silently create an empty SQLite store: refuse a store file that is not there."""
-    if uri.startswith("sqlite:///"):
-        db_file = Path(uri[len("sqlite:///"):])
-        if not db_file.exists():
-            raise InputError(f"tracking store {db_file} does not exist", file=record_path, field="tracking_uri")
-
-
 def _same(recorded, logged) -> bool:
     if recorded is None or logged is None:
         return recorded is None and logged is None
@@ -126,8 +118,7 @@ def collect_runs(record_paths: list[Path | str]) -> tuple[pd.DataFrame, dict]:
         record = read_record(path)
         uri = record["tracking_uri"]
         if uri not in clients:
-            _store_exists(uri, path)
-            clients[uri] = tracking.client_for(uri)
+            clients[uri] = tracking.open_existing_store(uri, file=path, field="tracking_uri")
         run = fetch_run(clients[uri], record, path)
         if tracking.SUPERSEDED_TAG in run.data.tags:
             skipped.setdefault("superseded", []).append(path)

@@ -24,16 +24,6 @@ TIMING_METRICS = ("fit_seconds", "compute_seconds", "prepare_seconds")
 DIGEST_TAG = "data_digest."
 
 
-def open_store(uri: str):
-    """A client on an existing store; MLflow would silently create an empty SQLite file, so refuse that."""
-    if uri.startswith("sqlite:///"):
-        db_file = Path(uri[len("sqlite:///"):])
-        if not db_file.exists():
-            raise InputError(f"tracking store {db_file} does not exist; run the pipeline first or pass "
-                             f"--tracking-uri", field="tracking.uri")
-    return tracking.client_for(uri)
-
-
 def tracking_uri_for(root: Path | str, overrides: list[str], explicit: str | None = None) -> tuple[str, object]:
     """(tracking URI, composed config): --tracking-uri wins, else the config's store under results_dir."""
     from pipeline.workflow import plan_config  # the cached plan's config when there is one: no Hydra

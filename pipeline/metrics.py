@@ -20,6 +20,7 @@ from pipeline.errors import InputError
 EXCEEDANCE_KEYS = ("hits", "false_alarms", "misses", "correct_negatives",
                    "pod", "far", "csi", "ets", "bias")
 HEADLINE_KEYS = ("mse", "rmse", "mae", "mase", "pod", "far", "csi", "ets", "bias")
+SEASON_HOURS = 24  # seasonal period m of the MASE scale: the daily cycle of hourly series
 
 
 def _valid_pairs(y, yhat) -> tuple[np.ndarray, np.ndarray]:
@@ -54,7 +55,7 @@ def mae(y, yhat) -> float:
     return float(np.mean(np.abs(y_ok - yhat_ok)))
 
 
-def seasonal_naive_scale(series, m: int = 24) -> float:
+def seasonal_naive_scale(series, m: int = SEASON_HOURS) -> float:
     """MASE scale of ONE station: mean |y_t - y_{t-m}| over its training series (Hyndman & Koehler 2006).
 
     `series` is the station's 1-D training series on a complete hourly grid, so a lag of m steps is m

@@ -18,6 +18,8 @@ import contextlib
 import os
 import socket
 
+from pipeline import tracking
+
 HOST_TAG, PID_TAG = "host", "pid"
 UNIT_TAG = "unit_digest"  # set by pipeline.train_job: config slice, seed, code and split of one run
 ORPHAN_TAG = "closed_as_orphan_by"
@@ -58,7 +60,7 @@ def _process_gone(pid_text: str | None) -> bool:
 
 def close_orphans(client, experiment_id: str, unit_digest: str) -> list[str]:
     """Close (KILLED) the RUNNING runs whose job is gone; return their ids. See the module docstring."""
-    running = client.search_runs([experiment_id], filter_string="attributes.status = 'RUNNING'", max_results=1000)
+    running = tracking.search_all_runs(client, [experiment_id], "attributes.status = 'RUNNING'")
     host = socket.gethostname()
     closed_by = f"{host}:{os.getpid()}"
     closed = []

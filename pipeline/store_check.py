@@ -20,7 +20,7 @@ from pathlib import Path
 from urllib.parse import urlsplit
 
 from pipeline.errors import InputError
-from pipeline.tracking import redact
+from pipeline.tracking import redact, sqlite_path
 
 PROBE_TIMEOUT_S = 5.0  # a writer holding the SQLite lock this long, or a server this slow to accept, is down
 MIN_FREE_BYTES = 50 * 2**20  # an MLflow run with its artifacts takes well under this
@@ -30,12 +30,6 @@ _DISK_ERRNOS = {errno.ENOSPC, errno.EDQUOT, errno.EFBIG, errno.EROFS, errno.EACC
 
 def _fail(uri: str, message: str) -> InputError:
     return InputError(message, file=f"tracking store {redact(uri)}", field="tracking.uri")
-
-
-def sqlite_path(uri: str) -> Path | None:
-    """The database file of a `sqlite:///PATH` URI (absolute or relative to the working folder), else None."""
-    prefix = "sqlite:///"
-    return Path(uri[len(prefix):].split("?", 1)[0]) if uri.startswith(prefix) else None
 
 
 def check_store(uri: str) -> None:

@@ -38,6 +38,8 @@ _BATCH = {"metrics": 1000, "params": 100, "tags": 100}
 
 
 ENV_URI = "MLFLOW_TRACKING_URI"
+SQLITE = "sqlite:///"  # scheme of the default store; SQLAlchemy reads the path after it
+STORE_FILE = "mlflow.db"  # the default store's file under results_dir
 # Shell- and Hydra-safe (no quoting needed when the URI travels in an override on a command line).
 REDACTED = "REDACTED"
 # user:password@ (or a bare token@) after a scheme, and secret-looking query parameters, anywhere in a text.
@@ -91,6 +93,21 @@ def is_server(uri: str) -> bool:
     return uri.startswith(("http://", "https://"))
 
 
+def sqlite_path(uri: str) -> Path | None:
+    """The database file of a `sqlite:///PATH` URI (absolute or relative to the working folder), else None."""
+    return Path(uri[len(SQLITE):].split("?", 1)[0]) if uri.startswith(SQLITE) else None
+
+
+def open_existing_store(uri: str, *, file: str | None = None, field: str = "tracking.uri"):
+    """A client on a store that is there: MLflow would silently create an empty SQLite file, so a missing
+    one is an InputError naming it (and `file`, the record or setting that pointed at it)."""
+    path = sqlite_path(uri)
+    if path is not None and not path.exists():
+        raise InputError(f"tracking store {path} does not exist; run the pipeline first or pass --tracking-uri",
+                         file=file, field=field)
+    return client_for(uri)
+
+
 def project_store_uri(uri: str | None, results_dir: Path | str) -> str:
     """The configured store, or the default SQLite store as the project folder's jobs see it: relative to
     the folder they run in (SQLAlchemy reads `sqlite:///results/mlflow.db` relative to the working
@@ -98,7 +115,7 @@ def project_store_uri(uri: str | None, results_dir: Path | str) -> str:
     uri = configured_uri(uri)
     if uri:
         return redact(uri)
-    return f"sqlite:///{(Path(results_dir) / 'mlflow.db').as_posix()}"
+    return f"{SQLITE}{(Path(results_dir) / STORE_FILE).as_posix()}"
 
 
 def resolve_tracking_uri(uri: str | None, results_dir: Path | str) -> str:
@@ -106,7 +123,7 @@ def resolve_tracking_uri(uri: str | None, results_dir: Path | str) -> str:
     uri = configured_uri(uri)
     if uri:
         return uri
-    return f"sqlite:///{(Path(results_dir).resolve() / 'mlflow.db')}"
+    return f"{SQLITE}{Path(results_dir).resolve() / STORE_FILE}"
 
 
 def artifact_location(results_dir: Path | str) -> str:
@@ -114,7 +131,8 @@ def artifact_location(results_dir: Path | str) -> str:
 
 
 def search_all_runs(client, experiment_ids: list[str], filter_string: str = "") -> list:
-    """Every run matching `filter_string`, following MLflow's result pages."""
+    """Every run matching `filter_string`, following MLflow's result pages (the one pager: a single
+    search_runs call stops at its max_results)."""
     runs, token = [], None
     while experiment_ids:
         page = client.search_runs(experiment_ids, filter_string, max_results=1000, page_token=token)
@@ -138,11 +156,15 @@ def setup_store(uri: str, experiment: str, artifact_uri: str) -> str:
     """Create the store (schema migration happens here, in one process) and the experiment; return its id.
     On a tracking server the server places artifacts (its --artifacts-destination, a path it and every
     user reach); `artifact_uri` (a folder of this project) is for a store without a server."""
-    client = client_for(uri)
+    return ensure_experiment(client_for(uri), experiment, None if is_server(uri) else artifact_uri)
+
+
+def ensure_experiment(client, experiment: str, artifact_uri: str | None) -> str:
+    """The id of the experiment `experiment`, created with its artifacts under `artifact_uri` when missing."""
     found = client.get_experiment_by_name(experiment)
     if found is not None:
         return found.experiment_id
-    return client.create_experiment(experiment, artifact_location=None if is_server(uri) else artifact_uri)
+    return client.create_experiment(experiment, artifact_location=artifact_uri)
 
 
 def experiment_id(client, experiment: str) -> str:
@@ -199,8 +221,7 @@ def log_run(client, experiment_id_: str, *, run_name: str, params: dict[str, str
 
 def find_current_run(client, experiment_id_: str, unit_digest: str):
     """A finished, not superseded run logged with this unit digest, or None."""
-    runs = client.search_runs([experiment_id_], filter_string=f"tags.unit_digest = '{unit_digest}'",
-                              max_results=50)
+    runs = search_all_runs(client, [experiment_id_], f"tags.unit_digest = '{unit_digest}'")
     current = [r for r in runs if r.info.status == "FINISHED" and SUPERSEDED_TAG not in r.data.tags]
     return current[0] if current else None
 
@@ -210,7 +231,7 @@ def supersede_previous(client, experiment_id_: str, identity: dict[str, str], ne
     trial (TRIAL_TAG, read from the new run itself) supersedes only earlier trials of the same values; any
     other run supersedes only runs that are not trials."""
     clauses = [f"tags.{key} = '{identity[key]}'" for key in RUN_IDENTITY_TAGS]
-    older = client.search_runs([experiment_id_], filter_string=" and ".join(clauses), max_results=1000)
+    older = search_all_runs(client, [experiment_id_], " and ".join(clauses))
     trial = client.get_run(new_run_id).data.tags.get(TRIAL_TAG)
     superseded = []
     for run in older:

@@ -38,10 +38,7 @@ def scratch_experiment(client, original_experiment_id: str) -> tuple[str, str]:
     name = f"{original.name}{SCRATCH_SUFFIX}"
     location = original.artifact_location
     artifact_uri = f"{location.rstrip('/')}{SCRATCH_SUFFIX}" if location.startswith("file:") else None
-    found = client.get_experiment_by_name(name)
-    if found is not None:
-        return name, found.experiment_id
-    return name, client.create_experiment(name, artifact_location=artifact_uri)
+    return name, tracking.ensure_experiment(client, name, artifact_uri)
 
 
 def retrain(client, run, uri: str, root: Path | str, clean_dir: str, force: bool = False) -> dict:

@@ -41,11 +41,10 @@ import pandas as pd
 
 from pipeline.errors import InputError, from_mapping
 from pipeline.features import FeatureScaler, candidate_variables, derive_features, feature_names
-from pipeline.metrics import seasonal_naive_scale
+from pipeline.metrics import SEASON_HOURS, seasonal_naive_scale
 from pipeline.splits import ADMITTED_SUFFIX, admitted_target_block, plain_container
 
 SKIP_REASONS = ("input_missing", "target_missing")
-SEASON_HOURS = 24  # seasonal period m of the MASE scale (daily cycle)
 
 
 @dataclass

@@ -90,7 +90,7 @@ def format_table(rows: list[dict]) -> str:
 
 def run(args) -> int:
     uri, cfg = audit.tracking_uri_for(args.root, args.overrides, args.tracking_uri)
-    client = audit.open_store(uri)
+    client = tracking.open_existing_store(uri)
     name = args.experiment or cfg.tracking.experiment
     experiment = audit.find_experiment(client, name, args.root)
     rows = search(client, experiment.experiment_id, args)

@@ -7,7 +7,7 @@ Writes nothing. A run ID prefix of 6+ characters works when it is unique.
 
 from pathlib import Path
 
-from pipeline import audit
+from pipeline import audit, tracking
 
 
 def add_common(parser) -> None:
@@ -23,7 +23,7 @@ def add_arguments(parser) -> None:
 
 def run(args) -> int:
     uri, cfg = audit.tracking_uri_for(args.root, args.overrides, args.tracking_uri)
-    client = audit.open_store(uri)
+    client = tracking.open_existing_store(uri)
     found = audit.get_run(client, args.run_id)
     info = audit.describe_run(client, found, Path(args.root), cfg.results_dir, cfg.data.clean_dir)
     print(audit.format_show(info, all_metrics=args.all_metrics))

@@ -8,7 +8,7 @@ re-trained run differs, 2 on bad input (including changed data without --force).
 
 from pathlib import Path
 
-from pipeline import audit
+from pipeline import audit, tracking
 from pipeline import verify as verifying
 from pipeline.commands.show import add_common
 
@@ -21,7 +21,7 @@ def add_arguments(parser) -> None:
 
 def run(args) -> int:
     uri, cfg = audit.tracking_uri_for(args.root, args.overrides, args.tracking_uri)
-    client = audit.open_store(uri)
+    client = tracking.open_existing_store(uri)
     found = audit.get_run(client, args.run_id)
     outcome = verifying.verify_run(client, found, uri, Path(args.root), cfg.data.clean_dir, force=args.force)
     print(verifying.format_outcome(found.info.run_id, outcome))
