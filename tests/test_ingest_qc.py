@@ -39,7 +39,7 @@ def test_autumn_dump_counts_every_row_once(tmp_path):
     assert (rows["read"], rows["kept"], rows["dropped"]) == (12, 7, 5)
     assert {k: v for k, v in rows["dropped_by_reason"].items() if v} == {
         "unknown_station": 1, "unparseable_timestamp": 1, "exact_duplicate": 1,
-        "timestamp_not_on_the_hour": 1, "conflicting_duplicate": 1}
+        "timestamp_off_the_step": 1, "conflicting_duplicate": 1}
     assert qc["duplicates"]["conflicting_keys"] == 1 and qc["unknown_station_codes"] == {"S9": 1}
     assert qc["files"][0]["blank_lines"] == 1
 

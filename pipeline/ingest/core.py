@@ -1,8 +1,9 @@
-"""Ingest one city: raw dump files -> canonical hourly UTC table + QC report.
+"""Ingest one city: raw dump files -> canonical UTC table on the study's cadence + QC report.
 
 Reads the files matched by the city's format (`files`, relative to `raw_dir`) and the station table;
 `run_ingest` writes data/clean/<city>.parquet and data/qc/<city>.json atomically. Obeys the data-config
-keys `cities.<city>` (the format dict, see formats.py), `stations` and `reference_temperature_c`.
+keys `cities.<city>` (the format dict, see formats.py; `cadence` and `completeness` as cadence.py
+describes), `stations` and `reference_temperature_c`.
 
 Each delivered row is either kept or dropped for exactly one reason (the first that applies, in the
 order of DROP_REASONS); rows_read == rows_kept + sum(dropped_by_reason) always holds.
@@ -14,7 +15,7 @@ import numpy as np
 import pandas as pd
 
 from pipeline.errors import InputError
-from pipeline.ingest import jsonl, long_csv, qc, timeparse, wide_csv
+from pipeline.ingest import cadence, jsonl, long_csv, qc, timeparse, wide_csv
 from pipeline.atomic import write_json_atomic, write_parquet_atomic
 from pipeline.ingest.formats import validate_format
 from pipeline.ingest.values import parse_numbers, to_canonical
@@ -25,7 +26,7 @@ from pipeline.variables import QC_MISSING, VARIABLE_NAMES, qc_column
 READERS = {"wide_csv": wide_csv, "long_csv": long_csv, "jsonl": jsonl}
 DROP_REASONS = ("unparseable_record", "unknown_station", "variable_not_mapped", "unparseable_timestamp",
                 "timestamp_outside_window", "exact_duplicate", "nonexistent_local_time",
-                "ambiguous_local_time", "timestamp_not_on_the_hour", "conflicting_duplicate")
+                "ambiguous_local_time", "timestamp_off_the_step", "conflicting_duplicate")
 
 
 def _matching_files(raw_dir, pattern: str) -> list[Path]:
@@ -84,22 +85,26 @@ def _convert_long(kept: pd.DataFrame, spec: dict, temperature: float):
     return keys, values, conversions
 
 
-def _complete_grid(keys: pd.DataFrame, values: dict) -> pd.DataFrame:
-    """One row per station and hour from its first to last delivered hour; absent hours MISSING."""
+def _complete_grid(keys: pd.DataFrame, values: dict, step: pd.Timedelta) -> pd.DataFrame:
+    """One row per station and step from its first to last delivered step; absent steps MISSING."""
     delivered = pd.DataFrame({"station_id": keys["station_id"].to_numpy(), "time": keys["time"].to_numpy()})
     for variable, (numbers, flags) in values.items():
         delivered[variable] = numbers
         delivered[qc_column(variable)] = flags
     pieces = []
     for station, group in delivered.groupby("station_id", sort=True):
-        hours = pd.date_range(group["time"].min(), group["time"].max(), freq="h")
+        hours = pd.date_range(group["time"].min(), group["time"].max(), freq=step)
         pieces.append(pd.DataFrame({"station_id": station, "time": hours}))
     grid = pd.concat(pieces, ignore_index=True)
-    clean = grid.merge(delivered, on=["station_id", "time"], how="left")
+    return _with_every_variable(grid.merge(delivered, on=["station_id", "time"], how="left"), values)
+
+
+def _with_every_variable(clean: pd.DataFrame, delivered) -> pd.DataFrame:
+    """The clean-table schema: every canonical variable and its QC column; undelivered ones MISSING."""
     columns = {"station_id": clean["station_id"].astype("string"),
                "time": clean["time"].astype("datetime64[ns, UTC]")}
     for variable in VARIABLE_NAMES:
-        if variable in values:
+        if variable in delivered:
             columns[variable] = clean[variable].astype("float64")
             columns[qc_column(variable)] = clean[qc_column(variable)].fillna(QC_MISSING).astype("int8")
         else:  # not delivered by this city
@@ -153,10 +158,17 @@ def ingest_city(city: str, fmt: dict, raw_dir, stations: pd.DataFrame,
         utc[rows] = local_utc.astype("datetime64[ns, UTC]")
         reason[np.flatnonzero(rows)[time_reason.to_numpy() != ""]] = time_reason[time_reason != ""].to_numpy()
     dst["hour_label"] = spec["time"]["label"]
-    frame["utc"] = timeparse.apply_label(utc, spec["time"]).astype("datetime64[ns, UTC]")
+    study_step = cadence.parse_cadence(spec["cadence"])
+    step = cadence.delivered_step(utc.where(active()), frame[series_keys]) or study_step
+    if study_step < step:
+        raise InputError(f"cadence {spec['cadence']} is finer than the delivery's step "
+                         f"{cadence.cadence_label(step)}: no rule makes values finer; declare "
+                         f"{cadence.cadence_label(step)} or coarser", file=config_file or "data config",
+                         field=f"cities.{city}.cadence")
+    frame["utc"] = timeparse.apply_label(utc, spec["time"], step).astype("datetime64[ns, UTC]")
     reason[active() & timeparse.outside_window(frame["utc"], window)] = "timestamp_outside_window"
-    off_hour = frame["utc"].notna() & (frame["utc"] != frame["utc"].dt.floor("h"))
-    reason[active() & off_hour.to_numpy()] = "timestamp_not_on_the_hour"
+    off_step = frame["utc"].notna() & (frame["utc"] != frame["utc"].dt.floor(step))
+    reason[active() & off_step.to_numpy()] = "timestamp_off_the_step"
     losers, conflict_groups = qc.mark_conflicting_duplicates(frame, active(), ["utc", *series_keys],
                                                              spec["duplicates"])
     reason[losers] = "conflicting_duplicate"
@@ -175,7 +187,11 @@ def ingest_city(city: str, fmt: dict, raw_dir, stations: pd.DataFrame,
     else:
         keys = kept[["station_id", "utc"]].rename(columns={"utc": "time"})
         values, conversions = _convert_wide(kept, spec, reference_temperature_c)
-    clean = _complete_grid(keys, values)
+    clean = _complete_grid(keys, values, step)
+    aggregation = None
+    if study_step > step:
+        clean, aggregation = cadence.aggregate(clean, sorted(values), step, study_step, spec["completeness"])
+        clean = _with_every_variable(clean, values)
 
     dropped = {name: int((reason == name).sum()) for name in DROP_REASONS}
     dropped["unparseable_record"] = raw.pre_dropped.get("unparseable_record", 0)
@@ -200,13 +216,15 @@ def ingest_city(city: str, fmt: dict, raw_dir, stations: pd.DataFrame,
         "unmapped_variable_codes": (qc.top_codes(frame.loc[reason == "variable_not_mapped", "variable_raw"])
                                     if raw.long else {}),
         "dst": dst,
+        "cadence": {"study": spec["cadence"], "delivered": cadence.cadence_label(step),
+                    "aggregation": aggregation},
         "conversions": conversions,
         "variables_delivered": sorted(values),
         "variables_not_delivered": [v for v in VARIABLE_NAMES if v not in values],
         "values": qc.flag_counts(clean, VARIABLE_NAMES),
         "stations_without_data": sorted(known - set(clean["station_id"])),
         **qc.series_notes(clean, sorted(values)),
-        "gaps": {station: qc.station_gaps(group["utc"])
+        "gaps": {station: qc.station_gaps(group["utc"], step)
                  for station, group in kept.groupby("station_id", sort=True)},
         "clean_rows": int(len(clean)),
     }

@@ -20,6 +20,8 @@ new format needs only config. Keys (defaults in brackets):
   separator [","] (one character)  decimal ["."]  header_line [1]  encoding ["utf-8"] (a BOM is skipped)
   sentinels [[]]  missing_values [["", "NA", "N/A", "#N/A", "NaN", "null", "None", "-"]] (any letter case)
   duplicates      keep_last | keep_first  (which of conflicting rows survives)  [keep_last]
+  cadence         the study's time step the delivery is aligned to (10min, 15min, 1h, 1d, ...)  [1h]
+  completeness    share of valid finer values an aggregated step needs (see cadence.py)     [0.75]
 """
 
 import codecs
@@ -29,12 +31,13 @@ import zoneinfo
 import pandas as pd
 
 from pipeline.errors import InputError
+from pipeline.ingest.cadence import DEFAULT_CADENCE, DEFAULT_COMPLETENESS, cadence_label, parse_cadence
 from pipeline.units import conversion_to_canonical
 from pipeline.variables import BY_NAME
 
 LAYOUTS = ("wide_csv", "long_csv", "jsonl")
 _COMMON = {"layout", "files", "station_column", "station_map", "time", "sentinels", "missing_values",
-           "duplicates", "encoding", "units"}
+           "duplicates", "encoding", "units", "cadence", "completeness"}
 _CSV = {"separator", "decimal", "header_line"}
 _ALLOWED = {
     "wide_csv": _COMMON | _CSV | {"columns"},
@@ -49,7 +52,7 @@ _REQUIRED = {
 _TIME_KEYS = {"column", "parts", "format", "timezone", "label", "ambiguous", "nonexistent", "earliest", "latest"}
 DEFAULTS = {"separator": ",", "decimal": ".", "header_line": 1, "encoding": "utf-8", "sentinels": [],
             "missing_values": ["", "NA", "N/A", "#N/A", "NaN", "null", "None", "-"], "duplicates": "keep_last",
-            "station_map": {}, "units": {}}
+            "station_map": {}, "units": {}, "cadence": DEFAULT_CADENCE, "completeness": DEFAULT_COMPLETENESS}
 # Hourly monitoring networks report from the 1970s on; a stamp before that is a typo or a zero date.
 # `latest` None means the time of ingestion: a reading cannot come from the future.
 TIME_DEFAULTS = {"timezone": "UTC", "label": "start", "ambiguous": "order", "nonexistent": "drop",
@@ -117,6 +120,10 @@ def validate_format(city: str, fmt: dict, reference_temperature_c: float = 25.0,
             time[key] = _instant(time[key], config_file, f"{prefix}.time.{key}")
     if time["latest"] is not None and pd.Timestamp(time["latest"]) <= pd.Timestamp(time["earliest"]):
         _fail("must be later than time.earliest", config_file, f"{prefix}.time.latest")
+    spec["cadence"] = cadence_label(parse_cadence(spec["cadence"], config_file, f"{prefix}.cadence"))
+    completeness = spec["completeness"]
+    if isinstance(completeness, bool) or not isinstance(completeness, (int, float)) or not 0 < completeness <= 1:
+        _fail(f"must be a share in (0, 1], got {completeness!r}", config_file, f"{prefix}.completeness")
     if spec["duplicates"] not in ("keep_last", "keep_first"):
         _fail("must be keep_last or keep_first", config_file, f"{prefix}.duplicates")
     if layout == "long_csv":

@@ -42,19 +42,23 @@ def mark_conflicting_duplicates(frame: pd.DataFrame, active: np.ndarray, keys: l
     return losers, groups
 
 
-def station_gaps(times: pd.Series) -> dict:
-    """Gap statistics of one station from its delivered (kept) UTC hours."""
-    hours = pd.Series(times.unique()).sort_values().reset_index(drop=True)
-    first, last = hours.iloc[0], hours.iloc[-1]
-    on_grid = int((last - first) / HOUR) + 1
-    steps = (hours.diff() / HOUR).iloc[1:].astype(int) - 1  # missing hours before each delivered hour
+def station_gaps(times: pd.Series, step: pd.Timedelta = HOUR) -> dict:
+    """Gap statistics of one station from its delivered (kept) UTC stamps, counted in delivered steps.
+
+    Counts are named in hours for an hourly delivery, else in steps (with the step's length beside them).
+    """
+    stamps = pd.Series(times.unique()).sort_values().reset_index(drop=True)
+    first, last = stamps.iloc[0], stamps.iloc[-1]
+    on_grid = int((last - first) / step) + 1
+    steps = (stamps.diff() / step).iloc[1:].astype(int) - 1  # missing steps before each delivered one
     gaps = steps[steps > 0]
     longest = int(gaps.max()) if len(gaps) else 0
-    longest_start = (hours.iloc[int(gaps.idxmax()) - 1] + HOUR).isoformat() if len(gaps) else None
-    return {"first": first.isoformat(), "last": last.isoformat(), "hours_on_grid": on_grid,
-            "hours_with_data": len(hours), "missing_hours": on_grid - len(hours),
-            "gap_count": int(len(gaps)), "longest_gap_hours": longest,
-            "longest_gap_start": longest_start}
+    longest_start = (stamps.iloc[int(gaps.idxmax()) - 1] + step).isoformat() if len(gaps) else None
+    unit = "hours" if step == HOUR else "steps"
+    stats = {"first": first.isoformat(), "last": last.isoformat(), f"{unit}_on_grid": on_grid,
+             f"{unit}_with_data": len(stamps), f"missing_{unit}": on_grid - len(stamps),
+             "gap_count": int(len(gaps)), f"longest_gap_{unit}": longest, "longest_gap_start": longest_start}
+    return stats if step == HOUR else {**stats, "step": str(step)}
 
 
 def flag_counts(clean: pd.DataFrame, variables) -> dict:

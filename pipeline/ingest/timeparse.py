@@ -93,9 +93,9 @@ def localize_to_utc(naive: pd.Series, group_keys: pd.DataFrame, time_spec: dict)
     return utc, reason, report
 
 
-def apply_label(utc: pd.Series, time_spec: dict) -> pd.Series:
-    """Hour-ending stamps (label `end`) name the hour by its end: move them to the hour's start."""
-    return utc - pd.Timedelta(hours=1) if time_spec["label"] == "end" else utc
+def apply_label(utc: pd.Series, time_spec: dict, step: pd.Timedelta = pd.Timedelta(hours=1)) -> pd.Series:
+    """Period-ending stamps (label `end`) name a delivered step by its end: move them to its start."""
+    return utc - step if time_spec["label"] == "end" else utc
 
 
 # Real UTC offsets lie within [-12 h, +14 h] and hour-ending labels move a stamp by one hour: a naive
