@@ -18,6 +18,7 @@ import numpy as np
 import pandas as pd
 
 from pipeline import grid_stats, names, selection
+from pipeline.commands import add_run_filters
 from pipeline.errors import InputError
 from pipeline.resampling import SEED_RANGE
 
@@ -36,9 +37,7 @@ def _csv_list(text: str | None) -> list[str] | None:
 def add_arguments(parser) -> None:
     parser.add_argument("overrides", nargs="*", help="Hydra overrides, as for `run`, e.g. experiment=demo")
     parser.add_argument("--results", help="results folder (default: results_dir of the config)")
-    parser.add_argument("--target", help="only these target cities (comma-separated)")
-    parser.add_argument("--model", help="only these models (comma-separated)")
-    parser.add_argument("--penalty", help="only these penalties (comma-separated; n/a for baselines)")
+    add_run_filters(parser, several=True)
     parser.add_argument("--metric", help="any logged metric: mae, rmse, mase, csi, target_mae_h06, ... "
                                          "(default: report.metric)")
     parser.add_argument("--selection", choices=selection.RULES, help="selection rule (default: report.selection)")

@@ -10,6 +10,7 @@ import json
 from datetime import datetime, timezone
 
 from pipeline import audit, names, tracking
+from pipeline.commands import add_run_filters
 from pipeline.errors import InputError
 
 FORMATS = ("table", "csv", "json")
@@ -21,11 +22,8 @@ def add_arguments(parser) -> None:
     parser.add_argument("overrides", nargs="*", help="Hydra overrides locating the store, e.g. experiment=demo")
     parser.add_argument("--tracking-uri", help="MLflow tracking URI (default: the config's store)")
     parser.add_argument("--experiment", help="MLflow experiment (default: tracking.experiment)")
-    parser.add_argument("--target", help="only runs whose target city is this one")
+    add_run_filters(parser, several=False)
     parser.add_argument("--source", help="only runs that have this city among their source cities")
-    parser.add_argument("--model", help="only runs of this model (a name of the sweep, e.g. lstm)")
-    parser.add_argument("--penalty", help="only runs with this penalty (erm, irm, vrex, groupdro; n/a for the "
-                                          "closed-form baselines)")
     parser.add_argument("--seed", type=int, help="only runs with this seed")
     parser.add_argument("--since", help="only runs started on or after this date (YYYY-MM-DD, UTC)")
     state = parser.add_mutually_exclusive_group()
