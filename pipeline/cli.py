@@ -1,6 +1,6 @@
 """`shiftgrid` command line: what Snakemake itself does not show.
 
-Each command lives in its own module `pipeline/commands/<name>.py` with `add_arguments(parser)` and
+Each command lives in its own module `pipeline/commands/<name>.py` (`-` in a name is `_` there) with `add_arguments(parser)` and
 `run(args) -> int`; this file only registers them. Only the module of the command being run is imported
 (`shiftgrid --help` imports none), so a command pays for its own libraries and no other's. Bad input
 anywhere ends in one line `error: ...` and exit status 2, never a traceback. Reads and writes nothing.
@@ -26,7 +26,13 @@ COMMANDS = {
     "show": "everything recorded about one run ID",
     "verify": "re-train one run from its logged config and compare it bit for bit",
     "shift": "pairwise city shift diagnostics next to geographic distance",
+    "new-city": "draft a new city's dump format from a sample, then check it without writing anything",
 }
+
+
+def command_module(name: str) -> str:
+    """The module implementing a command (a hyphen in the command is an underscore in the module)."""
+    return f"pipeline.commands.{name.replace('-', '_')}"
 
 
 def requested_command(argv: list[str]) -> str | None:
@@ -50,9 +56,9 @@ def build_parser(load: set[str] | None = None) -> argparse.ArgumentParser:
         module = None
         if load is None or name in load:
             try:
-                module = importlib.import_module(f"pipeline.commands.{name}")
+                module = importlib.import_module(command_module(name))
             except ModuleNotFoundError as error:
-                if error.name != f"pipeline.commands.{name}":
+                if error.name != command_module(name):
                     raise
                 continue
         sub = commands.add_parser(name, help=help_text, description=help_text)

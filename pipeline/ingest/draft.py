@@ -1,0 +1,428 @@
+"""Draft a new city's format dict from a sample of its raw dump, for a person to review.
+
+Reads the given dump files as text (every record of each, up to `max_rows` per file); writes nothing.
+Proposes the keys of a format dict (pipeline.ingest.formats): layout, files, encoding, separator,
+decimal, header_line, station_column, time (pipeline.ingest.draft_clock), columns / variables,
+units, sentinels, each with a confidence (high: read from the data; medium: likely; low: a guess to
+check) and the questions the data cannot answer. `render` writes the draft as a data-config YAML
+block whose comments carry the confidences, evidence and questions.
+
+Names of columns are matched against the canonical variables (pipeline.variables) and the spellings
+agencies use for them (SYNONYMS); units against the spellings pipeline.units knows. Where a unit cannot
+be read from the header, the values decide when they can (a pressure near 1000 is in hPa, near 30 in
+inHg); gases, wind speed and rain stay guesses: the same numbers fit several units.
+"""
+
+from __future__ import annotations
+
+import json
+import re
+from dataclasses import dataclass, field
+from pathlib import Path
+
+import pandas as pd
+import yaml
+
+from pipeline.errors import InputError
+from pipeline.ingest.draft_clock import ClockDraft, draft_clock
+from pipeline.ingest.raw import read_csv_text
+from pipeline.textfile import read_text
+from pipeline.units import conversion_to_canonical, normalise_unit
+from pipeline.variables import BY_NAME
+
+# Spellings seen in deliveries (lower case, separators removed) -> canonical variable. A column whose
+# name is a canonical variable's own name matches too, so a variable declared in config needs no entry.
+SYNONYMS = {
+    "pm25": ("pm25", "pm2", "pmfine", "finepm"), "pm10": ("pm10",), "no2": ("no2", "nitrogendioxide"),
+    "o3": ("o3", "ozone"), "so2": ("so2", "sulphurdioxide", "sulfurdioxide"), "co": ("co", "carbonmonoxide"),
+    "temp_c": ("temp", "temperature", "t", "t2m", "tair", "ta", "airtemp", "airtemperature"),
+    "rh_pct": ("rh", "humidity", "humid", "hum", "relativehumidity"),
+    "wind_speed_ms": ("ws", "wspd", "windspeed", "wsp", "wind"),
+    "wind_dir_deg": ("wd", "wdir", "winddir", "winddirection"),
+    "pressure_hpa": ("p", "pres", "press", "pressure", "psfc", "slp", "airpressure"),
+    "precip_mm": ("rain", "precip", "prcp", "rainfall", "precipitation"),
+    "aux": ("aux", "traffic", "trafficidx", "trafficindex"),
+}
+STATION_NAMES = ("station", "stationid", "stationcode", "site", "siteid", "sitecode", "sid", "code", "origin",
+                 "location", "stn", "monitor", "id")
+VALUE_NAMES = ("value", "val", "concentration", "measurement", "reading", "obs")
+SENTINEL_CANDIDATES = (-9999.0, -999.9, -999.0, -888.0, -99.9, -99.0, 9999.0, 99999.0)
+SEPARATORS = (",", ";", "\t", "|")
+CONFIDENCE_ORDER = {"high": 2, "medium": 1, "low": 0}
+
+
+@dataclass
+class Entry:
+    """One proposed key with its value, confidence and a word on why."""
+    value: object
+    confidence: str
+    why: str = ""
+
+
+@dataclass
+class Draft:
+    city: str
+    entries: dict[str, Entry] = field(default_factory=dict)  # format key -> proposal, in format order
+    mapping: dict[str, Entry] = field(default_factory=dict)  # column / code -> canonical variable
+    units: dict[str, Entry] = field(default_factory=dict)  # canonical variable -> delivered unit
+    unmapped: dict[str, str] = field(default_factory=dict)  # column / code -> what its values look like
+    clock: ClockDraft | None = None
+    station_codes: dict[str, int] = field(default_factory=dict)
+    questions: list[str] = field(default_factory=list)
+    rows_sampled: int = 0
+    files: list[str] = field(default_factory=list)
+
+    def block(self) -> dict:
+        """The proposed format dict (what goes under `data.cities.<city>`)."""
+        block = {key: entry.value for key, entry in self.entries.items()}
+        block["time"] = dict(self.clock.time)
+        mapped = {raw: entry.value for raw, entry in self.mapping.items()}
+        block["variables" if block["layout"] == "long_csv" else "columns"] = mapped
+        if self.units:
+            block["units"] = {variable: entry.value for variable, entry in self.units.items()}
+        return block
+
+
+def _key(name: str) -> str:
+    return re.sub(r"[^a-z0-9]", "", str(name).lower())
+
+
+def _numbers(text: pd.Series, decimal: str) -> pd.Series:
+    cleaned = text.astype(str).str.strip()
+    if decimal != ".":
+        cleaned = cleaned.str.replace(decimal, ".", regex=False)
+    return pd.to_numeric(cleaned, errors="coerce")
+
+
+def _is_numeric(text: pd.Series, decimal: str) -> bool:
+    filled = text.astype(str).str.strip() != ""
+    return bool(filled.any()) and _numbers(text[filled], decimal).notna().mean() >= 0.9
+
+
+# -- reading the sample ------------------------------------------------------------------------------
+
+def _encoding(path: Path) -> str:
+    try:
+        read_text(path, "utf-8")
+        return "utf-8"
+    except InputError:
+        return "latin-1"  # every byte decodes; the reviewer checks accents in codes and units
+
+
+def sniff_csv(lines: list[str]) -> tuple[str, int]:
+    """(separator, header line number): the separator that splits most lines into one equal number of
+    fields; the header is the first line with that number of fields (lines before it are a preamble)."""
+    body = [line for line in lines if line.strip()][:200]
+    best = None
+    for separator in SEPARATORS:
+        counts = pd.Series([len(line.split(separator)) for line in body])
+        modal = int(counts.mode().iloc[0]) if len(counts) else 1
+        share = float((counts == modal).mean()) if len(counts) else 0.0
+        if modal > 1 and (best is None or (share, modal) > (best[2], best[1])):
+            best = (separator, modal, share)
+    if best is None:
+        raise InputError("no delimiter splits the lines into columns (tried , ; tab |)", field="separator")
+    separator, modal = best[0], best[1]
+    header = next(i for i, line in enumerate(lines, start=1) if len(line.split(separator)) == modal)
+    return separator, header
+
+
+def _decimal(table: pd.DataFrame, separator: str) -> str:
+    """A comma decimal mark shows as digits,digits in cells when the separator is not a comma."""
+    if separator == ",":
+        return "."
+    cells = pd.concat([table[c] for c in table.columns if c != "line"], ignore_index=True).astype(str).str.strip()
+    comma = cells.str.fullmatch(r"-?\d+,\d+").sum()
+    point = cells.str.fullmatch(r"-?\d+\.\d+").sum()
+    return "," if comma > point else "."
+
+
+def _flatten(record: dict, prefix: str = "") -> dict:
+    flat = {}
+    for key, value in record.items():
+        path = f"{prefix}{key}"
+        if isinstance(value, dict):
+            flat.update(_flatten(value, path + "."))
+        else:
+            flat[path] = "" if value is None else str(value)
+    return flat
+
+
+def _read_jsonl(paths: list[Path], encoding: str, max_rows: int) -> pd.DataFrame:
+    rows = []
+    for path in paths:
+        taken = 0
+        for line in read_text(path, encoding).split("\n"):
+            if taken >= max_rows:
+                break
+            try:
+                record = json.loads(line) if line.strip() else None
+            except (json.JSONDecodeError, RecursionError):
+                record = None  # a broken line: ingestion counts these, the draft skips them
+            if isinstance(record, dict):
+                rows.append(_flatten(record))
+                taken += 1
+    return pd.DataFrame(rows).fillna("").astype(str)
+
+
+def read_sample(paths: list[Path], max_rows: int) -> tuple[pd.DataFrame, dict[str, Entry]]:
+    """The sample as a table of text columns, and the reading keys proposed (layout guess, CSV keys)."""
+    encoding = _encoding(paths[0])
+    text = read_text(paths[0], encoding)
+    entries = {"encoding": Entry(encoding, "high" if encoding == "utf-8" else "low",
+                                 "" if encoding == "utf-8" else "not UTF-8: latin-1 reads every byte, check it")}
+    first = next((line.strip() for line in text.split("\n") if line.strip()), "")
+    if not first:
+        raise InputError("the file is empty", file=str(paths[0]), row=1)
+    if first.startswith("{"):
+        entries["layout"] = Entry("jsonl", "high", "one JSON object per line")
+        return _read_jsonl(paths, encoding, max_rows), entries
+    separator, header = sniff_csv(text.split("\n"))
+    spec = {"separator": separator, "header_line": header, "encoding": encoding}
+    tables = [read_csv_text(path, spec).table.head(max_rows) for path in paths]
+    table = pd.concat(tables, ignore_index=True).drop(columns="line")
+    entries["separator"] = Entry(separator, "high", "splits every line into the header's fields")
+    entries["decimal"] = Entry(_decimal(table, separator), "high")
+    entries["header_line"] = Entry(header, "high" if header == 1 else "medium",
+                                   "" if header == 1 else f"{header - 1} preamble line(s) before the header")
+    return table, entries
+
+
+# -- columns --------------------------------------------------------------------------------------------
+
+def _unit_in_name(name: str) -> tuple[str, str | None]:
+    """(name without a unit, the unit written in it): 'PM2.5 (ug/m3)' -> ('PM2.5', 'ug/m3'), 'temp_F' -> ('temp', 'degF')."""
+    bracket = re.search(r"\s*[\(\[]([^\)\]]+)[\)\]]\s*$", name)
+    if bracket and normalise_unit(bracket.group(1)):
+        return name[:bracket.start()], normalise_unit(bracket.group(1))
+    head, sep, tail = name.rpartition("_")
+    if sep and head and normalise_unit(tail) and tail.lower() not in ("1",):
+        return head, normalise_unit(tail)
+    return name, None
+
+
+def match_variable(name: str) -> tuple[str | None, str]:
+    """(canonical variable, confidence) for a column name or a code of a long dump."""
+    bare, _ = _unit_in_name(name)
+    whole, last = _key(bare), _key(bare.rsplit(".", 1)[-1])
+    for candidate, confidence in ((whole, "high"), (last, "medium")):
+        for variable in BY_NAME:
+            spellings = (_key(variable), *SYNONYMS.get(variable, ()))
+            if candidate in spellings:
+                short = len(candidate) == 1  # "t" or "p" alone is likely but not certain
+                return variable, "medium" if short else confidence
+    return None, ""
+
+
+def _by_values(numbers: pd.Series) -> tuple[str | None, str]:
+    """Variables whose values give them away: pressure (narrow, near 1000 hPa) and wind direction."""
+    numbers = numbers.dropna()
+    if numbers.empty:
+        return None, ""
+    low, high, median = numbers.quantile(0.01), numbers.quantile(0.99), numbers.median()
+    if 850 <= low and high <= 1100 and high - low < 120:
+        return "pressure_hpa", "values between 850 and 1100 with a narrow spread look like air pressure"
+    if 0 <= numbers.min() and numbers.max() <= 360 and high - low > 250 and (numbers % 1 == 0).mean() > 0.9:
+        return "wind_dir_deg", "whole numbers spread over 0..360 look like wind direction"
+    return None, f"values {low:.4g} .. {high:.4g}, median {median:.4g}"
+
+
+def guess_unit(variable: str, numbers: pd.Series) -> Entry:
+    """The delivered unit of a variable from its values, when they can tell."""
+    canonical = BY_NAME[variable].unit
+    numbers = numbers.dropna()
+    numbers = numbers[~numbers.isin(SENTINEL_CANDIDATES)]
+    if numbers.empty:
+        return Entry(canonical, "low", "no numbers to judge by")
+    median, high, low = float(numbers.median()), float(numbers.quantile(0.99)), float(numbers.quantile(0.01))
+    if variable == "temp_c":
+        if low > 180:
+            return Entry("K", "high", f"median {median:.1f}: kelvin")
+        if high > 50 or median > 35:
+            return Entry("degF", "medium", f"median {median:.1f}, 99th percentile {high:.1f}: too warm for degC")
+        return Entry("degC", "medium", f"median {median:.1f}")
+    if variable == "rh_pct":
+        return Entry("fraction", "high", "values within 0..1") if high <= 1.0 else Entry("%", "high")
+    if variable == "pressure_hpa":
+        for unit, (lo, hi) in {"hPa": (800, 1100), "kPa": (80, 110), "inHg": (23, 33), "mmHg": (600, 800),
+                               "Pa": (80000, 110000)}.items():
+            if lo <= median <= hi:
+                return Entry(unit, "high", f"median {median:.1f}")
+    if variable in ("wind_dir_deg", "aux") or canonical == "ug/m3" and variable.startswith("pm"):
+        return Entry(canonical, "high" if variable != "aux" else "medium")
+    options = {"wind_speed_ms": "km/h, mph or knots", "precip_mm": "inch", "co": "ppm"}
+    alternative = options.get(variable, "ppb" if variable in ("no2", "o3", "so2") else "another unit")
+    return Entry(canonical, "low", f"median {median:.4g}: {canonical} assumed, {alternative} fit the values too")
+
+
+def find_sentinels(table: pd.DataFrame, columns: list[str], decimal: str) -> list:
+    if not columns:
+        return []
+    values = pd.concat([_numbers(table[c], decimal) for c in columns], ignore_index=True)
+    return [int(v) if v % 1 == 0 else v for v in SENTINEL_CANDIDATES if (values == v).any()]
+
+
+def _station_column(table: pd.DataFrame, exclude: set, decimal: str) -> tuple[str | None, str]:
+    text_columns = [c for c in table.columns if c not in exclude and not _is_numeric(table[c], decimal)]
+    for column in text_columns:
+        if _key(column) in STATION_NAMES:
+            return column, "high"
+    by_size = sorted(text_columns, key=lambda c: table[c].nunique())
+    return (by_size[0], "medium") if by_size else (None, "")
+
+
+def _long_columns(table: pd.DataFrame, exclude: set, decimal: str) -> dict | None:
+    """{variable_column, value_column[, unit_column]} when one column names a variable on each row."""
+    text = [c for c in table.columns if c not in exclude and not _is_numeric(table[c], decimal)]
+    variable_column = None
+    for column in text:
+        codes = table[column].str.strip().unique()
+        if len(codes) >= 2 and sum(match_variable(code)[0] is not None for code in codes) >= len(codes) / 2:
+            variable_column = column
+            break
+    if variable_column is None:
+        return None
+    numeric = [c for c in table.columns if c not in exclude and _is_numeric(table[c], decimal)]
+    if not numeric:
+        return None
+    value_column = next((c for c in numeric if _key(c) in VALUE_NAMES), numeric[0])
+    found = {"variable_column": variable_column, "value_column": value_column}
+    for column in text:
+        if column != variable_column and table[column].map(lambda u: normalise_unit(u) is not None).mean() > 0.9:
+            found["unit_column"] = column
+    return found
+
+
+def _map_wide(draft: Draft, table: pd.DataFrame, columns: list[str], decimal: str) -> None:
+    for column in columns:
+        numbers = _numbers(table[column], decimal)
+        variable, confidence = match_variable(column)
+        why = "named so"
+        if variable is None:
+            variable, why = _by_values(numbers)
+            confidence = "low"
+        if variable is None or variable in {e.value for e in draft.mapping.values()}:
+            draft.unmapped[column] = why if variable is None else f"also looks like {variable}"
+            continue
+        draft.mapping[column] = Entry(variable, confidence, why)
+        _, written = _unit_in_name(column)
+        unit = Entry(written, "high", "written in the column name") if written else guess_unit(variable, numbers)
+        try:
+            conversion_to_canonical(variable, unit.value)
+        except InputError:
+            unit = Entry(BY_NAME[variable].unit, "low", f"{unit.value} cannot be converted: canonical assumed")
+        draft.units[variable] = unit
+
+
+def _map_long(draft: Draft, table: pd.DataFrame, long: dict, decimal: str) -> None:
+    codes = table[long["variable_column"]].str.strip()
+    for code in sorted(codes.unique()):
+        variable, confidence = match_variable(code)
+        if variable is None or variable in {e.value for e in draft.mapping.values()}:
+            draft.unmapped[code] = f"{int((codes == code).sum())} rows"
+            continue
+        draft.mapping[code] = Entry(variable, confidence, "named so")
+        if "unit_column" not in long:
+            draft.units[variable] = guess_unit(variable, _numbers(table.loc[codes == code, long["value_column"]],
+                                                                   decimal))
+
+
+# -- the draft ---------------------------------------------------------------------------------------------
+
+def files_pattern(paths: list[Path], raw_dir: Path) -> str:
+    """The `files` glob: the files' folder relative to raw_dir, and their common suffix."""
+    folder = paths[0].resolve().parent
+    try:
+        relative = folder.relative_to(Path(raw_dir).resolve()).as_posix()
+    except ValueError:
+        relative = folder.name
+    suffixes = {p.suffix for p in paths}
+    return f"{relative}/*{suffixes.pop() if len(suffixes) == 1 else ''}"
+
+
+def draft_format(paths: list[Path], city: str, raw_dir: Path | str = "data/raw", max_rows: int = 200_000) -> Draft:
+    """Propose a format dict for the dump files `paths` (read as text, nothing written)."""
+    paths = sorted(Path(p) for p in paths)
+    if not paths:
+        raise InputError("no dump file given", field="files")
+    table, reading = read_sample(paths, max_rows)
+    if table.empty:
+        raise InputError("no record in the sample", file=str(paths[0]))
+    decimal = reading["decimal"].value if "decimal" in reading else "."
+    draft = Draft(city, rows_sampled=len(table), files=[str(p) for p in paths])
+    draft.entries["layout"] = reading.pop("layout", Entry("wide_csv", "high"))
+    draft.entries["files"] = Entry(files_pattern(paths, Path(raw_dir)), "high")
+    for key in ("encoding", "separator", "decimal", "header_line"):
+        if key in reading:
+            draft.entries[key] = reading[key]
+    station, station_confidence = _station_column(table, set(), decimal)
+    # The clock is drafted after the station (its DST test compares stations), the columns after both.
+    clock = draft_clock(table, station, [c for c in table.columns if c != station])
+    if clock is None:
+        raise InputError("no column holds timestamps in a known format, and no year/month/day/hour columns",
+                         file=str(paths[0]), field="time")
+    draft.clock = clock
+    used = set(clock.columns) | set(clock.spare)
+    station, station_confidence = _station_column(table, used, decimal)
+    if station is None:
+        raise InputError("no text column could hold the station code", file=str(paths[0]), field="station_column")
+    draft.entries["station_column"] = Entry(station, station_confidence)
+    draft.station_codes = {str(k): int(v) for k, v in table[station].str.strip().value_counts().head(30).items()}
+    used.add(station)
+    long = _long_columns(table, used, decimal) if draft.entries["layout"].value != "jsonl" else None
+    if long:
+        draft.entries["layout"] = Entry("long_csv", "high", f"{long['variable_column']} names a variable on each row")
+        for key, column in long.items():
+            draft.entries[key] = Entry(column, "high" if key != "value_column" else "medium")
+        _map_long(draft, table, long, decimal)
+        value_columns = [long["value_column"]]
+    else:
+        value_columns = [c for c in table.columns if c not in used]
+        _map_wide(draft, table, [c for c in value_columns if _is_numeric(table[c], decimal)], decimal)
+        for column in value_columns:
+            if column not in draft.mapping and column not in draft.unmapped:
+                draft.unmapped[column] = "not numbers"
+    sentinels = find_sentinels(table, value_columns, decimal)
+    if sentinels:
+        draft.entries["sentinels"] = Entry(sentinels, "medium", "no-data codes found among the values")
+    draft.questions = list(clock.questions)
+    if any(e.confidence == "low" for e in draft.units.values()):
+        draft.questions.append("units marked low are guesses: the agency's documentation decides")
+    return draft
+
+
+# -- rendering -----------------------------------------------------------------------------------------------
+
+def _flow(value) -> str:
+    return yaml.safe_dump(value, default_flow_style=True, width=10_000, sort_keys=False).strip()
+
+
+def _line(indent: int, key: str, value, entry: Entry | None = None) -> str:
+    text = " " * indent + _flow({key: value})[1:-1]
+    if entry is not None:
+        text += f"   # {entry.confidence}" + (f": {entry.why}" if entry.why else "")
+    return text
+
+
+def render(draft: Draft) -> str:
+    """The draft as a YAML data-config block; comments carry confidences, evidence and questions."""
+    block = draft.block()
+    out = [f"# Drafted from {len(draft.files)} file(s), {draft.rows_sampled} records sampled. Review every line:",
+           "# high = read from the data, medium = likely, low = a guess. Then try it: shiftgrid new-city check FILE",
+           "cities:", f"  {draft.city}:"]
+    for key, entry in draft.entries.items():
+        out.append(_line(4, key, entry.value, entry))
+        if key == "station_column":
+            codes = ", ".join(f"{code} ({n})" for code, n in draft.station_codes.items())
+            out.append(f"    # station codes (rows): {codes}; add station_map if the station table uses other ids")
+    out.append(_line(4, "time", block["time"], Entry(None, draft.clock.confidence)))
+    out += [f"    #   {line}" for line in draft.clock.evidence]
+    key = "variables" if block["layout"] == "long_csv" else "columns"
+    out.append(f"    {key}:")
+    out += [_line(6, raw, entry.value, entry) for raw, entry in draft.mapping.items()]
+    out += [f"      # not mapped: {raw} ({why})" for raw, why in draft.unmapped.items()]
+    if draft.units:
+        out.append("    units:")
+        out += [_line(6, variable, entry.value, entry) for variable, entry in draft.units.items()]
+    out += ["# Questions:"] + [f"#   - {q}" for q in draft.questions]
+    return "\n".join(out) + "\n"
