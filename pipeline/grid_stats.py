@@ -108,7 +108,6 @@ def available_rules(runs: pd.DataFrame) -> list[str]:
             if any(col.startswith(f"{rule}.") and runs[col].notna().any() for col in runs.columns)]
 
 
-UNITLESS = frozenset({"mase", "pod", "far", "csi", "ets", "bias"})
 THRESHOLD_SCORES = frozenset({"pod", "far", "csi", "ets", "bias"})
 _PLACES = (("source_", " on the source test block"), ("gap_", ", target minus source"),
            ("worst_source_env_", " in the worst source environment"), ("target_", ""))

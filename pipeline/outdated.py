@@ -181,11 +181,6 @@ def recorded_version_notes(results_dir: Path) -> list[str]:
             for change, rules in sorted(changes.items())]
 
 
-def _clean_city(path: str) -> str | None:
-    found = re.search(r"([a-z][a-z0-9]*)\.parquet$", path)
-    return found.group(1) if found and "clean" in path else None
-
-
 def explain(jobs: list[PlannedJob], plan, root: Path | str) -> list[str]:
     """Plain reasons, one line each, with how many jobs each one brings."""
     reasons: dict[str, set] = defaultdict(set)

@@ -21,7 +21,6 @@ from pipeline.errors import InputError
 
 LOSSES = ("absolute", "squared", "scaled_absolute")
 INTERVAL_METRICS = ("mae", "mse", "rmse", "mase")  # metrics that are sums over windows, hence resamplable
-ERROR_COLUMNS = ("abs_sum", "sq_sum", "count", "naive_scale")
 
 
 def loss_for(metric_base: str) -> str:

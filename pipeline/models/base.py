@@ -74,10 +74,6 @@ class ForecastModel:
         self.seed = seed
         self.params = dict(params)
 
-    def get_params(self) -> dict:
-        """All hyperparameters with defaults filled in, plus the seed (what a run record should log)."""
-        return {"seed": self.seed, **asdict(self.Params(**self.params))}
-
     def __repr__(self) -> str:
         args = ", ".join([f"seed={self.seed!r}"] + [f"{k}={v!r}" for k, v in self.params.items()])
         return f"{type(self).__name__}({args})"
