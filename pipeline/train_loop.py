@@ -72,11 +72,17 @@ def predict_network(network: torch.nn.Module, X: np.ndarray) -> np.ndarray:
 
 def evaluate(network: torch.nn.Module, val: dict[str, Any]) -> dict[str, float]:
     """MSE per validation set, overall (`val/<set>/all`) and per environment (`val/<set>/<env>`)."""
+    return validation_scores({name: predict_network(network, windows.X) for name, windows in val.items()
+                              if len(windows.y)}, val)
+
+
+def validation_scores(predictions: dict[str, np.ndarray], val: dict[str, Any]) -> dict[str, float]:
+    """The scores of `evaluate` from forecasts already made, one array per non-empty validation set."""
     results = {}
     for set_name, windows in val.items():
         if len(windows.y) == 0:
             continue  # an empty set has no risk; its keys are absent rather than NaN
-        squared = (predict_network(network, windows.X) - windows.y) ** 2
+        squared = (predictions[set_name] - windows.y) ** 2
         results[f"val/{set_name}/all"] = float(squared.mean())
         for e in np.unique(windows.env):
             results[f"val/{set_name}/{windows.env_names[e]}"] = float(squared[windows.env == e].mean())
@@ -106,14 +112,90 @@ def _check_batches(sampler, penalty: Penalty, env_names: list, cfg: FitConfig) -
                          f"{penalty.min_windows_per_env}", field="fit.batch_size")
 
 
-def _empty_training_logs(risk_keys: dict[str, str]) -> dict[str, list[float]]:
-    """Per-step training values gathered between two evaluations, by history key."""
-    return {key: [] for key in ("train_loss", "penalty_value", *risk_keys.values())}
+class FitProgress:
+    """One fit's bookkeeping, the same for a single network and for every member of an ensemble
+    (pipeline.ensemble): training values between evaluations, the history, snapshots after the warm-up,
+    early stopping on `val/source/all`, and the time spent evaluating."""
+
+    def __init__(self, env_names: list, penalty: Penalty, cfg: FitConfig):
+        self.env_names, self.penalty, self.cfg = env_names, penalty, cfg
+        # penalty log key -> history key of each environment's training risk
+        self.risk_keys = {f"risk/{e}": f"train/risk/{name}" for e, name in enumerate(env_names)}
+        self.since_eval = self._empty_logs()
+        self.history: list[dict[str, float]] = []
+        self.snapshots: dict[int, dict[str, torch.Tensor]] = {}
+        self.best_value, self.best_step, self.evals_without_gain = math.inf, None, 0
+        self.stop_reason: str | None = None  # set when the fit must stop before fit.max_steps
+        self.eval_seconds = 0.0
+
+    def _empty_logs(self) -> dict[str, list[float]]:
+        return {key: [] for key in ("train_loss", "penalty_value", *self.risk_keys.values())}
+
+    def record_step(self, logs: dict[str, float]) -> None:
+        """The penalty's logs of one optimizer step."""
+        # Unscaled objective (loss / loss_scale) so histories with and without rescaling compare.
+        self.since_eval["train_loss"].append(logs["loss"] / logs["loss_scale"])
+        self.since_eval["penalty_value"].append(logs["penalty_value"])
+        for risk_key, history_key in self.risk_keys.items():
+            self.since_eval[history_key].append(logs[risk_key])
+
+    def evaluation_due(self, step: int) -> bool:
+        return step % self.cfg.eval_every == 0 or step == self.cfg.max_steps
+
+    def add_evaluation(self, step: int, weight: float, scores: dict[str, float], seconds: float, state,
+                       final: bool = False) -> None:
+        """A history entry from the validation `scores` at `step`; `weight`: the penalty weight of the last
+        step taken (of the next one for a `final` entry); `state()` gives the weights to snapshot.
+        A `final` evaluation (the fit stopped between evaluations) is always snapshotted, never counted."""
+        entry = {"step": step, "penalty_weight": weight}
+        # The mean of each gathered value; none for a key with no step since the last evaluation.
+        entry.update({key: float(np.mean(values)) for key, values in self.since_eval.items() if values})
+        entry.update(scores)
+        self.history.append(entry)
+        self.eval_seconds += seconds
+        self.since_eval = self._empty_logs()
+        if not final and step <= self.penalty.warmup_steps:
+            return  # a warm-up model: on the curve, never selected, not counted for stopping
+        self.snapshots[step] = state()
+        criterion = entry.get(f"val/{EARLY_STOP_SET}/all")
+        if final or criterion is None:
+            return
+        if criterion < self.best_value:
+            self.best_value, self.best_step, self.evals_without_gain = criterion, step, 0
+        else:
+            self.evals_without_gain += 1
+            if self.evals_without_gain >= self.cfg.patience:
+                self.stop_reason = "early_stopping"
+
+    def result(self, final_step: int, fit_seconds: float) -> TrainResult:
+        return TrainResult(history=self.history, snapshots=self.snapshots, best_step=self.best_step,
+                           final_step=final_step, stop_reason=self.stop_reason or "max_steps",
+                           fit_seconds=fit_seconds, train_env_names=self.env_names,
+                           eval_seconds=self.eval_seconds)
 
 
-def _means(logs: dict[str, list[float]]) -> dict[str, float]:
-    """The mean of each gathered value; none for a key with no step since the last evaluation."""
-    return {key: float(np.mean(values)) for key, values in logs.items() if values}
+def timed_evaluation(network: torch.nn.Module, val: dict[str, Any]) -> tuple[dict[str, float], float]:
+    started = time.perf_counter()
+    scores = evaluate(network, val)
+    return scores, time.perf_counter() - started
+
+
+def check_fit_inputs(train: WindowSetLike, val: dict[str, WindowSetLike], penalty: Penalty,
+                     cfg: FitConfig) -> None:
+    """One-line InputErrors for window sets and a schedule that no fit can use."""
+    check_window_set(train, "train")
+    if len(train.y) == 0:
+        raise InputError("no training windows", field="train")
+    for set_name, windows in val.items():
+        check_window_set(windows, f"val/{set_name}")
+    if penalty.warmup_steps >= cfg.max_steps:
+        raise InputError(f"{penalty.warmup_steps} leaves no step after the warm-up to select from "
+                         f"(fit.max_steps {cfg.max_steps})", field="penalty.warmup_steps")
+
+
+def training_tensors(train: WindowSetLike) -> tuple[torch.Tensor, torch.Tensor]:
+    return (torch.from_numpy(np.ascontiguousarray(train.X, dtype=np.float32)),
+            torch.from_numpy(np.ascontiguousarray(train.y, dtype=np.float32)))
 
 
 def train_network(build_network, train: WindowSetLike, val: dict[str, WindowSetLike] | None = None,
@@ -127,14 +209,7 @@ def train_network(build_network, train: WindowSetLike, val: dict[str, WindowSetL
     cfg = fit_config if fit_config is not None else FitConfig()
     penalty = penalty if penalty is not None else build_penalty("erm")
     val = dict(val or {})
-    check_window_set(train, "train")
-    if len(train.y) == 0:
-        raise InputError("no training windows", field="train")
-    for set_name, windows in val.items():
-        check_window_set(windows, f"val/{set_name}")
-    if penalty.warmup_steps >= cfg.max_steps:
-        raise InputError(f"{penalty.warmup_steps} leaves no step after the warm-up to select from "
-                         f"(fit.max_steps {cfg.max_steps})", field="penalty.warmup_steps")
+    check_fit_inputs(train, val, penalty, cfg)
     torch.set_num_threads(cfg.threads)
     penalty.reset()
 
@@ -145,16 +220,10 @@ def train_network(build_network, train: WindowSetLike, val: dict[str, WindowSetL
         sampler = make_sampler(cfg.sampling, np.asarray(train.env), cfg.batch_size, sampler_generator,
                                penalty.min_windows_per_env)
         _check_batches(sampler, penalty, train.env_names, cfg)
-        X = torch.from_numpy(np.ascontiguousarray(train.X, dtype=np.float32))
-        y = torch.from_numpy(np.ascontiguousarray(train.y, dtype=np.float32))
+        X, y = training_tensors(train)
         optimizer = make_optimizer(network, cfg)
-        history, snapshots = [], {}
-        best_value, best_step, evals_without_gain = math.inf, None, 0
-        stop_reason, step, eval_seconds = "max_steps", 0, 0.0
-        env_names = [train.env_names[e] for e in sampler.env_ids]
-        # penalty log key -> history key of each environment's training risk
-        risk_keys = {f"risk/{e}": f"train/risk/{name}" for e, name in enumerate(env_names)}
-        since_eval = _empty_training_logs(risk_keys)
+        progress = FitProgress([train.env_names[e] for e in sampler.env_ids], penalty, cfg)
+        step = 0
 
         while step < cfg.max_steps:
             if penalty.resets_optimizer_at(step):
@@ -165,7 +234,7 @@ def train_network(build_network, train: WindowSetLike, val: dict[str, WindowSetL
             targets_by_env = list(torch.split(y[index], sampler.counts))
             loss, logs = penalty(preds_by_env, targets_by_env, step, env_weights=sampler.risk_weights)
             if not math.isfinite(logs["loss"]):  # the penalty's float of the loss: no second pass over it
-                stop_reason = "non_finite_loss"
+                progress.stop_reason = "non_finite_loss"
                 break
             optimizer.zero_grad(set_to_none=True)
             loss.backward()
@@ -173,43 +242,15 @@ def train_network(build_network, train: WindowSetLike, val: dict[str, WindowSetL
                 torch.nn.utils.clip_grad_norm_(network.parameters(), cfg.grad_clip)
             optimizer.step()
             step += 1
-            # Unscaled objective (loss / loss_scale) so histories with and without rescaling compare.
-            since_eval["train_loss"].append(logs["loss"] / logs["loss_scale"])
-            since_eval["penalty_value"].append(logs["penalty_value"])
-            for risk_key, history_key in risk_keys.items():
-                since_eval[history_key].append(logs[risk_key])
+            progress.record_step(logs)
+            if progress.evaluation_due(step):
+                progress.add_evaluation(step, logs["penalty_weight"], *timed_evaluation(network, val),
+                                        lambda: copy_state(network))
+                if progress.stop_reason:
+                    break
 
-            if step % cfg.eval_every == 0 or step == cfg.max_steps:
-                entry = {"step": step, "penalty_weight": logs["penalty_weight"]}
-                entry.update(_means(since_eval))
-                eval_started = time.perf_counter()
-                entry.update(evaluate(network, val))
-                eval_seconds += time.perf_counter() - eval_started
-                history.append(entry)
-                since_eval = _empty_training_logs(risk_keys)
-                if step <= penalty.warmup_steps:
-                    continue  # a warm-up model: on the curve, never selected, not counted for stopping
-                snapshots[step] = copy_state(network)
-                criterion = entry.get(f"val/{EARLY_STOP_SET}/all")
-                if criterion is not None:
-                    if criterion < best_value:
-                        best_value, best_step, evals_without_gain = criterion, step, 0
-                    else:
-                        evals_without_gain += 1
-                        if evals_without_gain >= cfg.patience:
-                            stop_reason = "early_stopping"
-                            break
+        if step not in progress.snapshots:  # stopped on a non-finite loss between evaluations: keep the state
+            progress.add_evaluation(step, penalty.effective_weight(step), *timed_evaluation(network, val),
+                                    lambda: copy_state(network), final=True)
 
-        if step not in snapshots:  # stopped on a non-finite loss between evaluations: keep the state
-            entry = {"step": step, "penalty_weight": penalty.effective_weight(step)}
-            entry.update(_means(since_eval))
-            eval_started = time.perf_counter()
-            entry.update(evaluate(network, val))
-            eval_seconds += time.perf_counter() - eval_started
-            history.append(entry)
-            snapshots[step] = copy_state(network)
-
-    result = TrainResult(history=history, snapshots=snapshots, best_step=best_step, final_step=step,
-                         stop_reason=stop_reason, fit_seconds=time.perf_counter() - started,
-                         train_env_names=env_names, eval_seconds=eval_seconds)
-    return network, result
+    return network, progress.result(step, time.perf_counter() - started)
