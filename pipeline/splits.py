@@ -286,8 +286,8 @@ def _city_time_range(path, station_ids: list[str]) -> tuple[pd.Timestamp, pd.Tim
     if times.empty:
         raise InputError(f"no rows for any of the split's stations {station_ids}", file=str(path),
                          field="station_id")
-    if not (times.dt.floor("h") == times).all():
-        raise InputError("times must be whole hours", file=str(path), field="time")
+    if not (times.dt.floor("min") == times).all():  # any cadence of whole minutes (pipeline.ingest.cadence)
+        raise InputError("times must be whole minutes", file=str(path), field="time")
     return times.min(), times.max() + pd.Timedelta(hours=1)
 
 

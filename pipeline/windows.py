@@ -1,9 +1,15 @@
-"""Leakage-free forecast windows for one split: inputs X (lookback hours), targets y (horizon hours).
+"""Leakage-free forecast windows for one split: inputs X (lookback steps), targets y (horizon steps).
 
 Reads: a split record (pipeline.splits.build_split) and the clean tables of its cities as DataFrames
 (columns station_id, time (UTC), one float column per canonical variable); writes nothing.
 Config keys obeyed: `forecast.*` (schema ForecastConfig) and, from the split record, time_blocks,
 admitted_target_block / target_train_fraction, environments, target_environments, gap_hours.
+
+Cadence: the clean tables' time step (read from their time column: the step every city's grid shares;
+hourly when no station has two rows). The forecast lengths are durations in hours (`lookback_hours`,
+`horizon_hours`, `stride_hours`, `fill_limit_hours`; a split's `gap_hours`) and are cut in steps of that
+cadence, so a daily study writes lookback_hours: 336 for 14 days; a length that is not a whole number of
+steps is refused, naming the key. For a 10-min cadence an hour is 6 steps.
 
 Rules (each one keeps information from crossing a block boundary or flowing from test to training):
 - Everything is done per station AND per time block: a block's rows are cut out first (re-indexed onto
@@ -22,7 +28,7 @@ Rules (each one keeps information from crossing a block boundary or flowing from
   validation or test data. The target variable itself cannot be dropped.
 - Scaling: per-feature mean/std fitted on the source stations' train-block rows ONLY (after filling,
   pooled over stations), applied to every set; y uses the mean/std of the target input feature.
-- Stride: windows start every `stride_hours`, counted from the start of the block.
+- Stride: windows start every `stride_hours` (in steps of the cadence), counted from the start of the block.
 - Environments: train/val_source/test_source windows get the environment of their station from the split's
   `environments`; val_target/test_target get `target_environments`; the admitted part of the target's
   train block (target_train_fraction > 0) is one more training environment "<target>-admitted".
@@ -45,6 +51,7 @@ from pipeline.metrics import SEASON_HOURS, seasonal_naive_scale
 from pipeline.splits import ADMITTED_SUFFIX, admitted_target_block, plain_container
 
 SKIP_REASONS = ("input_missing", "target_missing")
+HOUR = pd.Timedelta(hours=1)
 
 
 @dataclass
@@ -68,6 +75,7 @@ class WindowSet:
     feature_names: list
     env_names: list
     target_index: int
+    step_hours: float = 1.0  # the cadence: hours between consecutive rows of a window
 
     def __len__(self) -> int:
         return len(self.y)
@@ -88,6 +96,7 @@ class Windows:
     env_names: list
     target_index: int
     target: str
+    step_hours: float = 1.0  # the cadence
 
     def unscale_target(self, arr) -> np.ndarray:
         """Scaled target values (any shape) back to canonical units."""
@@ -108,8 +117,29 @@ def _as_config(cfg) -> ForecastConfig:
     return cfg
 
 
+def _steps(hours: int, step: pd.Timedelta, name: str) -> int:
+    """A length in hours as a whole number of cadence steps; InputError naming the key otherwise."""
+    steps = pd.Timedelta(hours=hours) / step
+    if steps != int(steps):
+        raise InputError(f"{hours} h is not a whole number of {step} steps (the clean tables' cadence)",
+                         field=f"forecast.{name}")
+    return int(steps)
+
+
+def _cadence(frames: dict, city_of: dict) -> pd.Timedelta:
+    """The one time step of every station's grid (hourly when no station has two rows)."""
+    steps = {}
+    for station_id, frame in frames.items():
+        if len(frame) > 1:
+            steps.setdefault(frame.index.to_series().diff().min(), city_of[station_id])
+    if len(steps) > 1:
+        found = ", ".join(f"{city} every {step}" for step, city in steps.items())
+        raise InputError(f"the split's clean tables have different cadences ({found})", field="cadence")
+    return next(iter(steps), HOUR)
+
+
 def _station_frames(record: dict, tables: dict, variables: list[str]):
-    """({station_id: frame indexed by UTC hour with the variable columns}, {station_id: city})."""
+    """({station_id: frame indexed by UTC step with the variable columns}, {station_id: city})."""
     wanted = set(record["source_stations"]) | set(record["target_stations"])
     frames, city_of = {}, {}
     for city in sorted(set(record["sources"]) | {record["target"]}):
@@ -132,20 +162,20 @@ def _station_frames(record: dict, tables: dict, variables: list[str]):
     return frames, city_of
 
 
-def _block(frame: pd.DataFrame | None, span, columns: list[str]) -> pd.DataFrame:
-    """The rows of [start, end) on the complete hourly grid (absent hours become NaN rows)."""
-    hours = pd.date_range(span[0], span[1], freq="h", inclusive="left").as_unit("ns")
+def _block(frame: pd.DataFrame | None, span, columns: list[str], step: pd.Timedelta = HOUR) -> pd.DataFrame:
+    """The rows of [start, end) on the complete grid of the cadence (absent steps become NaN rows)."""
+    hours = pd.date_range(span[0].ceil(step), span[1], freq=step, inclusive="left").as_unit("ns")
     if frame is None:
         return pd.DataFrame(np.nan, index=hours, columns=columns)
     return frame[columns].reindex(hours)
 
 
-def _kept_variables(frames, city_of, record, candidates, target, train_span):
+def _kept_variables(frames, city_of, record, candidates, target, train_span, step):
     """Drop variables that a source city, or the target, does not deliver at all in the train block."""
     groups = {f"source city {city}": [s for s in record["source_stations"] if city_of.get(s) == city]
               for city in record["sources"]}
     groups[f"target {record['target']}"] = list(record["target_stations"])
-    train_rows = {s: _block(frames.get(s), train_span, candidates) for s in frames}
+    train_rows = {s: _block(frames.get(s), train_span, candidates, step) for s in frames}
     dropped: dict[str, str] = {}
     for variable in candidates:
         for group, station_ids in groups.items():
@@ -157,10 +187,12 @@ def _kept_variables(frames, city_of, record, candidates, target, train_span):
     return [v for v in candidates if v not in dropped], dropped
 
 
-def _cut_windows(features, target_raw, hours, cfg: ForecastConfig, skipped: dict):
-    """Windows of one station in one block: (X (n,L,F), raw y (n,H), origin (n,)); counts skips."""
-    lookback, horizon = cfg.lookback_hours, cfg.horizon_hours
-    starts = np.arange(0, max(len(target_raw) - lookback - horizon + 1, 0), cfg.stride_hours)
+def _cut_windows(features, target_raw, hours, lengths: dict, skipped: dict):
+    """Windows of one station in one block: (X (n,L,F), raw y (n,H), origin (n,)); counts skips.
+
+    `lengths`: lookback, horizon and stride in steps of the cadence."""
+    lookback, horizon = lengths["lookback"], lengths["horizon"]
+    starts = np.arange(0, max(len(target_raw) - lookback - horizon + 1, 0), lengths["stride"])
     # prefix sums of "row has a NaN" give the NaN count of any window in O(1)
     bad_input = np.concatenate([[0], np.cumsum(np.isnan(features).any(axis=1))])
     bad_target = np.concatenate([[0], np.cumsum(np.isnan(target_raw))])
@@ -176,7 +208,7 @@ def _cut_windows(features, target_raw, hours, cfg: ForecastConfig, skipped: dict
     return X, y, hours[keep + lookback - 1]
 
 
-def _naive_scales(frames, station_ids, target, train_span) -> dict[str, float]:
+def _naive_scales(frames, station_ids, target, train_span, step) -> dict[str, float]:
     """The MASE scale of every target station over its own train block (canonical units, m = 24 h).
 
     One scale per station (Hyndman & Koehler 2006 scale each series by its own in-sample naive error);
@@ -184,10 +216,11 @@ def _naive_scales(frames, station_ids, target, train_span) -> dict[str, float]:
     values 24 h apart gets NaN and is left out of the station mean of MASE; when no target station has
     a scale, MASE is undefined for the split and that is an error.
     """
-    scales = {s: seasonal_naive_scale(_block(frames.get(s), train_span, [target])[target].to_numpy(),
-                                      SEASON_HOURS) for s in station_ids}
+    season = max(int(pd.Timedelta(hours=SEASON_HOURS) // step), 1)  # one step for a daily cadence
+    scales = {s: seasonal_naive_scale(_block(frames.get(s), train_span, [target], step)[target].to_numpy(),
+                                      season) for s in station_ids}
     if not any(np.isfinite(list(scales.values()))):
-        raise InputError(f"no pair of {target} values {SEASON_HOURS} h apart in the target train block "
+        raise InputError(f"no pair of {target} values {season * step} apart in the target train block "
                          f"of stations {list(station_ids)}: the MASE scale is undefined",
                          field="target_naive_scales")
     return scales
@@ -209,15 +242,21 @@ def build_windows(split_record: dict, tables: dict, cfg: ForecastConfig | dict |
                           admitted_target_block(record["time_blocks"], record["target_train_fraction"]))
     candidates = candidate_variables(cfg.target, list(cfg.exclude_features))
     frames, city_of = _station_frames(record, tables, candidates)
-    variables, dropped = _kept_variables(frames, city_of, record, candidates, cfg.target, spans["train"])
+    step = _cadence(frames, city_of)
+    lengths = {name: _steps(getattr(cfg, f"{name}_hours"), step, f"{name}_hours")
+               for name in ("lookback", "horizon", "stride", "fill_limit")}
+    short = [name for name in ("lookback", "horizon", "stride") if lengths[name] < 1]
+    if short:
+        raise InputError(f"shorter than one {step} step", field=f"forecast.{short[0]}_hours")
+    variables, dropped = _kept_variables(frames, city_of, record, candidates, cfg.target, spans["train"], step)
     for name in cfg.exclude_features:
         dropped[name] = "excluded by forecast.exclude_features"
     names = feature_names(variables, cfg.calendar)
 
     def station_block(station_id, span):
         """(features before scaling, raw target, hours) of one station in one block."""
-        rows = _block(frames.get(station_id), span, variables)
-        filled = rows.ffill(limit=cfg.fill_limit_hours) if cfg.fill_limit_hours else rows
+        rows = _block(frames.get(station_id), span, variables, step)
+        filled = rows.ffill(limit=lengths["fill_limit"]) if lengths["fill_limit"] else rows
         hours = rows.index.tz_convert(None).to_numpy("datetime64[ns]")  # UTC wall clock, tz-naive
         return derive_features(filled, variables, cfg.calendar), rows[cfg.target].to_numpy(), hours
 
@@ -234,9 +273,9 @@ def build_windows(split_record: dict, tables: dict, cfg: ForecastConfig | dict |
     def window_set(parts) -> WindowSet:
         """parts: list of (station_id, env name, (features, raw target, hours))."""
         # float32 before cutting: windows repeat every row up to L times, so halve the memory early
-        pieces = [(s, env, _cut_windows(scaler.transform(f).astype(np.float32), t, h, cfg, skipped))
+        pieces = [(s, env, _cut_windows(scaler.transform(f).astype(np.float32), t, h, lengths, skipped))
                   for s, env, (f, t, h) in parts]
-        n_features, L, H = len(names), cfg.lookback_hours, cfg.horizon_hours
+        n_features, L, H = len(names), lengths["lookback"], lengths["horizon"]
         X = np.concatenate([p[2][0] for p in pieces] + [np.empty((0, L, n_features))]).astype(np.float32)
         y_raw = np.concatenate([p[2][1] for p in pieces] + [np.empty((0, H))])
         return WindowSet(
@@ -245,7 +284,8 @@ def build_windows(split_record: dict, tables: dict, cfg: ForecastConfig | dict |
                                + [np.empty(0, dtype=np.int64)]),
             station=np.array([p[0] for p in pieces for _ in range(len(p[2][1]))], dtype=object),
             origin=np.concatenate([p[2][2] for p in pieces] + [np.empty(0, "datetime64[ns]")]),
-            feature_names=list(names), env_names=env_names, target_index=names.index(cfg.target))
+            feature_names=list(names), env_names=env_names, target_index=names.index(cfg.target),
+            step_hours=step / HOUR)
 
     sources, targets = record["source_stations"], record["target_stations"]
     train_parts = [(s, env_of[s], source_train[s]) for s in sources]
@@ -259,9 +299,9 @@ def build_windows(split_record: dict, tables: dict, cfg: ForecastConfig | dict |
         val_target=window_set([(s, target_env_of[s], station_block(s, spans["val"])) for s in targets]),
         test_target=window_set([(s, target_env_of[s], station_block(s, spans["test"])) for s in targets]),
         scaler=scaler, skipped=skipped,
-        target_naive_scales=_naive_scales(frames, targets, cfg.target, spans["train"]),
+        target_naive_scales=_naive_scales(frames, targets, cfg.target, spans["train"], step),
         dropped_features=dropped, feature_names=list(names), env_names=env_names,
-        target_index=names.index(cfg.target), target=cfg.target)
+        target_index=names.index(cfg.target), target=cfg.target, step_hours=step / HOUR)
     if len(windows.train) == 0:
         raise InputError(f"{record['split_id']}: no training window (skipped: {skipped})", field="windows")
     return windows

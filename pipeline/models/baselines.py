@@ -1,7 +1,7 @@
 """Reference forecasts with nothing (or almost nothing) to learn: persistence and seasonal naive.
 
 Reads window sets (only the target column of X is used: `target_index`); writes nothing. Obeys
-`model.season_hours` (seasonal_naive). Both ignore penalties and fit settings (see ClosedFormModel).
+`model.season_hours` (seasonal_naive; cut in steps of the windows' cadence, `step_hours`). Both ignore penalties and fit settings (see ClosedFormModel).
 Both accept `model.level` (pipeline.models.level) so that one override covers a whole sweep; it does not
 change their forecasts, which already follow the window's own level (up to float rounding).
 """
@@ -35,11 +35,12 @@ class Persistence(ClosedFormModel):
 
 
 class SeasonalNaive(ClosedFormModel):
-    """y_hat(t + h) = y(t + h - k*m) with k = ceil(h / m): the value one season (m hours) earlier.
+    """y_hat(t + h) = y(t + h - k*m) with k = ceil(h / m): the value one season (m steps) earlier.
 
     For h <= m this is the observed value m hours before the forecast hour; for h > m the last observed
     season is repeated (common practice, e.g. Hyndman & Athanasopoulos, FPP3 "seasonal naive"). Needs
-    lookback >= m.
+    lookback >= m. m is `season_hours` in steps of the cadence: 24 h is 24 steps of hourly data, 144 of
+    10-min data; a daily study sets 168 (a week, 7 steps).
     """
 
     family = "seasonal_naive"
@@ -53,13 +54,20 @@ class SeasonalNaive(ClosedFormModel):
             check_positive_ints(self, "season_hours")
 
     def _fit_closed_form(self, train) -> None:
-        season = self.hparams_.season_hours
-        if self.lookback_ < season:
-            raise InputError(f"seasonal_naive needs a lookback of at least {season} hours, "
-                             f"got {self.lookback_}", field="forecast.lookback_hours")
+        step_hours = float(getattr(train, "step_hours", 1.0))
+        steps = self.hparams_.season_hours / step_hours
+        if steps != int(steps):
+            raise InputError(f"{self.hparams_.season_hours} h is not a whole number of {step_hours:g} h steps",
+                             field="model.season_hours")
+        self.season_steps_ = int(steps)
+        if self.lookback_ < self.season_steps_:
+            raise InputError(f"seasonal_naive needs a lookback of at least {self.hparams_.season_hours} hours, "
+                             f"got {self.lookback_} steps of {step_hours:g} h", field="forecast.lookback_hours")
 
     def _source_positions(self) -> np.ndarray:
-        season = self.hparams_.season_hours
+        # A model rebuilt from a saved state was not fitted here: its windows were hourly (the only
+        # cadence before cadences existed), so one step is one hour.
+        season = getattr(self, "season_steps_", self.hparams_.season_hours)
         steps = np.arange(1, self.horizon_ + 1)
         seasons_back = -(-steps // season)  # ceil(h / m)
         return self.lookback_ - 1 + steps - seasons_back * season
