@@ -24,12 +24,12 @@ PACKAGE_DIR = Path(__file__).resolve().parent
 TRAINING_ENTRY = "pipeline.train_job"  # what both training rules and `shiftgrid verify` run per unit
 
 # Versions written into every run's tags (`version.*`), shown by `shiftgrid show`.
-KEY_PACKAGES = ("shiftgrid", "torch", "numpy", "pandas", "pyarrow", "scikit-learn", "scipy", "statsmodels",
-                "mlflow", "snakemake", "hydra-core", "omegaconf")
+KEY_PACKAGES = ("shiftgrid", "torch", "numpy", "pandas", "pyarrow", "scikit-learn", "scipy", "mlflow",
+                "snakemake", "hydra-core", "omegaconf")
 # Libraries whose version can change a job's numbers: import name -> distributions. A rule depends on
 # those its code imports; pyarrow comes with pandas because pandas reads and writes Parquet through it.
 RESULT_LIBRARIES = {"torch": ("torch",), "numpy": ("numpy",), "pandas": ("pandas", "pyarrow"),
-                    "sklearn": ("scikit-learn",), "scipy": ("scipy",), "statsmodels": ("statsmodels",),
+                    "sklearn": ("scikit-learn",), "scipy": ("scipy",),
                     "mlflow": ("mlflow",), "matplotlib": ("matplotlib",)}
 
 
