@@ -43,8 +43,14 @@ def _sem(cfg, root: Path, generator: dict, days: int | None) -> dict:
     return write_sem_dump(root / cfg.data.raw_dir, load_stations(root / cfg.data.stations), generator, days)
 
 
+def _swiss_nox(cfg, root: Path, generator: dict, days: int | None) -> dict:
+    from pipeline.demo.swiss_nox import write_swiss_nox_dump
+
+    return {"written": str(write_swiss_nox_dump(root / cfg.data.raw_dir)), "days": "all (real data)"}
+
+
 # data.generator.kind -> writer(cfg, root, generator settings, days) -> summary
-GENERATORS = {"demo": _invented_scenario, "airports": _airports, "sem": _sem}
+GENERATORS = {"demo": _invented_scenario, "airports": _airports, "sem": _sem, "swiss_nox": _swiss_nox}
 
 
 def write_dumps(overrides: list[str], root: Path, days: int | None) -> dict:

@@ -15,7 +15,7 @@ import numpy as np
 import pandas as pd
 
 from pipeline.errors import InputError
-from pipeline.ingest import cadence, jsonl, long_csv, qc, timeparse, wide_csv
+from pipeline.ingest import cadence, jsonl, long_csv, qc, station_columns_csv, timeparse, wide_csv
 from pipeline.atomic import write_json_atomic, write_parquet_atomic
 from pipeline.ingest.formats import validate_format
 from pipeline.ingest.values import parse_numbers, to_canonical
@@ -23,7 +23,7 @@ from pipeline.stations import load_stations, stations_of_city
 from pipeline.units import conversion_to_canonical
 from pipeline.variables import QC_MISSING, VARIABLE_NAMES, qc_column
 
-READERS = {"wide_csv": wide_csv, "long_csv": long_csv, "jsonl": jsonl}
+READERS = {"wide_csv": wide_csv, "long_csv": long_csv, "jsonl": jsonl, "station_columns_csv": station_columns_csv}
 DROP_REASONS = ("unparseable_record", "unknown_station", "variable_not_mapped", "unparseable_timestamp",
                 "timestamp_outside_window", "exact_duplicate", "nonexistent_local_time",
                 "ambiguous_local_time", "timestamp_off_the_step", "conflicting_duplicate")

@@ -3,7 +3,7 @@
 Reads nothing from disk. A format dict describes one city's raw dump completely, so a new city with a
 new format needs only config. Keys (defaults in brackets):
 
-  layout          wide_csv | long_csv | jsonl                                   (required)
+  layout          wide_csv | long_csv | jsonl | station_columns_csv           (required)
   files           glob relative to raw_dir, e.g. "mycity/*.csv"; matched files are read in name order
   station_column  column (jsonl: field) holding the station code                (required)
   station_map     {code in the dump: station_id}                                [codes used as ids]
@@ -17,6 +17,7 @@ new format needs only config. Keys (defaults in brackets):
   columns         wide_csv / jsonl: {column or dotted field path: canonical variable}
   units           wide_csv / jsonl: {canonical variable: delivered unit}; long_csv: optional fallback
   variable_column, value_column, unit_column, variables ({code: canonical})      long_csv only
+  station_columns (the columns that are stations), variable (canonical)   station_columns_csv only
   separator [","] (one character)  decimal ["."]  header_line [1]  encoding ["utf-8"] (a BOM is skipped)
   sentinels [[]]  missing_values [["", "NA", "N/A", "#N/A", "NaN", "null", "None", "-"]] (any letter case)
   duplicates      keep_last | keep_first  (which of conflicting rows survives)  [keep_last]
@@ -35,7 +36,7 @@ from pipeline.ingest.cadence import DEFAULT_CADENCE, DEFAULT_COMPLETENESS, caden
 from pipeline.units import conversion_to_canonical
 from pipeline.variables import BY_NAME
 
-LAYOUTS = ("wide_csv", "long_csv", "jsonl")
+LAYOUTS = ("wide_csv", "long_csv", "jsonl", "station_columns_csv")
 _COMMON = {"layout", "files", "station_column", "station_map", "time", "sentinels", "missing_values",
            "duplicates", "encoding", "units", "cadence", "completeness"}
 _CSV = {"separator", "decimal", "header_line"}
@@ -43,11 +44,13 @@ _ALLOWED = {
     "wide_csv": _COMMON | _CSV | {"columns"},
     "long_csv": _COMMON | _CSV | {"variable_column", "value_column", "unit_column", "variables"},
     "jsonl": _COMMON | {"columns", "decimal"},
+    "station_columns_csv": _COMMON - {"station_column"} | _CSV | {"station_columns", "variable"},
 }
 _REQUIRED = {
     "wide_csv": ("files", "station_column", "time", "columns", "units"),
     "long_csv": ("files", "station_column", "time", "variable_column", "value_column", "variables"),
     "jsonl": ("files", "station_column", "time", "columns", "units"),
+    "station_columns_csv": ("files", "station_columns", "variable", "time", "units"),
 }
 _TIME_KEYS = {"column", "parts", "format", "timezone", "label", "ambiguous", "nonexistent", "earliest", "latest"}
 DEFAULTS = {"separator": ",", "decimal": ".", "header_line": 1, "encoding": "utf-8", "sentinels": [],
@@ -126,6 +129,10 @@ def validate_format(city: str, fmt: dict, reference_temperature_c: float = 25.0,
         _fail(f"must be a share in (0, 1], got {completeness!r}", config_file, f"{prefix}.completeness")
     if spec["duplicates"] not in ("keep_last", "keep_first"):
         _fail("must be keep_last or keep_first", config_file, f"{prefix}.duplicates")
+    if layout == "station_columns_csv":
+        if not isinstance(spec["station_columns"], list) or not spec["station_columns"]:
+            _fail("must be a non-empty list of column names", config_file, f"{prefix}.station_columns")
+        spec["columns"] = {spec["variable"]: spec["variable"]}  # every cell holds this one variable
     if layout == "long_csv":
         _check_variables(spec["variables"], f"{prefix}.variables", config_file)
         if "unit_column" not in spec and not spec["units"]:
