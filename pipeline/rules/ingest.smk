@@ -1,4 +1,4 @@
-# Stage 1: one job per city turns its raw dump into the canonical hourly table and a QC report.
+# Stage 1: one job per city turns its raw dump into the canonical table (on the study's cadence) and a QC report.
 
 
 def raw_files_of(wildcards):
@@ -11,6 +11,14 @@ def city_format_json(wildcards):
     from pipeline.canonical import canonical_json
 
     return canonical_json(PLAN.city_format(wildcards.city))
+
+
+def variables_digest(wildcards):
+    """config/variables.yaml is read by the ingestion code, not imported: its content re-runs ingestion."""
+    from pipeline.provenance import file_digest
+    from pipeline.variables import REGISTRY_FILE
+
+    return file_digest(REGISTRY_FILE)[:16]
 
 
 rule ingest_city:
@@ -26,6 +34,7 @@ rule ingest_city:
         city_format=city_format_json,
         raw_dir=PLAN.cfg.data.raw_dir,
         reference_temperature_c=PLAN.cfg.data.reference_temperature_c,
+        variables=variables_digest,
         code=PLAN.code_digest("ingest_city"),
         versions=PLAN.versions("ingest_city"),
     script:
