@@ -16,6 +16,7 @@ wildcard_constraints:
     split_id=r"[a-z0-9+\-]+",
     model=r"[a-z][a-z0-9_]*",
     seed=r"\d+",
+    variable=r"[a-z][a-z0-9_]*",  # forecast variable, in paths only when the sweep has several
 
 
 include: "pipeline/rules/ingest.smk"

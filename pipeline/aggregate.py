@@ -14,6 +14,9 @@ Reads the run records results/runs/<split_id>/<model>/<penalty>/<seed>.json, the
 - grid_trials.csv: every hyperparameter-search trial behind a run of the grid (pipeline.trial_table; no rows
   without a search): its values, the rules that selected it, its selection scores and target metric;
 - grid_meta.json: metric, rules, Friedman/Iman-Davenport/Nemenyi per rule, skipped runs and why.
+With several forecast variables (`target=pm25,no2`, pipeline.target_sections) every statistic is computed
+within each variable's runs, the tables carry the variable in a `target_variable` column, and
+grid_meta.json holds each variable's metric label and Friedman results under `targets`.
 Config keys obeyed (handed over by the rule): report.metric, report.bootstrap_samples.
 
 A record whose run is missing, unfinished, in another experiment or whose headline metrics differ from
@@ -32,7 +35,7 @@ from urllib.parse import unquote, urlparse
 import numpy as np
 import pandas as pd
 
-from pipeline import environments, grid_stats, names, stats, tracking, trial_table, window_stats
+from pipeline import environments, grid_stats, names, stats, target_sections, tracking, trial_table, window_stats
 from pipeline.atomic import write_csv_atomic, write_parquet_atomic, write_text_atomic
 from pipeline.errors import InputError
 
@@ -222,22 +225,34 @@ def aggregate(record_paths: list[Path | str], out_dir: Path | str, metric: str =
     out_dir.mkdir(parents=True, exist_ok=True)
     runs, skipped = collect_runs(record_paths)
     rules = grid_stats.available_rules(runs)
-    tables = window_tables(runs, rules, load)
-    dm = dm_tests(runs, rules, tables)
-    intervals = cell_intervals(runs, rules, tables, n_boot)
-    summary, friedman = build_grid(runs, dm, intervals, metric)
-    trials = trial_table.collect(runs, metric, rules, read_record)
+    parts, by_target = {"dm": [], "intervals": [], "summary": [], "trials": []}, {}
+    for variable, section in target_sections.run_sections(runs):  # one grid per forecast variable
+        tables = window_tables(section, rules, load)
+        dm = dm_tests(section, rules, tables)
+        intervals = cell_intervals(section, rules, tables, n_boot)
+        summary, friedman = build_grid(section, dm, intervals, metric)
+        trials = trial_table.collect(section, metric, rules, read_record)
+        for name, table in (("dm", dm), ("intervals", intervals), ("summary", summary), ("trials", trials)):
+            parts[name].append(target_sections.labelled(table, variable))
+        by_target[variable] = {"metric_label": summary["metric_label"].iloc[0], "friedman": friedman}
+    dm, intervals, summary, trials = (pd.concat(parts[name], ignore_index=True)
+                                      for name in ("dm", "intervals", "summary", "trials"))
     write_parquet_atomic(runs, out_dir / "grid.parquet")
     write_csv_atomic(trials, out_dir / "grid_trials.csv")
     write_csv_atomic(summary, out_dir / "grid.csv")
     write_csv_atomic(dm, out_dir / "grid_dm.csv")
     write_csv_atomic(intervals, out_dir / "grid_intervals.csv")
-    meta = {"metric": metric, "metric_label": summary["metric_label"].iloc[0], "rules": rules,
+    several = None not in by_target
+    meta = {"metric": metric, "rules": rules,
+            # one forecast variable: its label and Friedman test; several: each under "targets", by variable
+            "metric_label": "; ".join(entry["metric_label"] for entry in by_target.values()),
+            "friedman": {} if several else by_target[None]["friedman"],
+            **({"targets": by_target} if several else {}),
             "n_records": len(record_paths), "n_runs": int(len(runs)),
             "experiment": sorted(runs["experiment"].dropna().unique().tolist()),
             "tracking_uris": sorted(runs["tracking_uri"].unique().tolist()),
             "skipped": {reason: {"count": len(paths), "records": paths} for reason, paths in skipped.items()},
-            "n_trials": int(len(trials)), "friedman": friedman, "bootstrap_samples": n_boot, "alpha": grid_stats.ALPHA,
+            "n_trials": int(len(trials)), "bootstrap_samples": n_boot, "alpha": grid_stats.ALPHA,
             "tie_tolerance": stats.TIE_TOLERANCE}
     write_text_atomic(json.dumps(meta, indent=1, sort_keys=True, default=_json_default), out_dir / "grid_meta.json")
     return meta

@@ -31,6 +31,7 @@ from pipeline.fit_config import FitConfig
 from pipeline.names import ERM, NOT_APPLICABLE, check_name
 from pipeline.search import SearchConfig
 from pipeline.splits import SplitConfig
+from pipeline.variables import BY_NAME
 from pipeline.windows import ForecastConfig
 
 DEPENDENCY_CHANGES = ("report", "rerun")  # values of tracking.dependency_changes
@@ -74,6 +75,9 @@ class SweepConfig:
     models: List[str] = field(default_factory=lambda: ["persistence", "ridge", "lstm"])
     penalties: List[str] = field(default_factory=lambda: ["erm", "irm"])
     seeds: List[int] = field(default_factory=lambda: [0, 1])
+    # Forecast targets (`target=pm25,no2`): each is its own grid. Empty: forecast.target alone, with the file
+    # paths of a single-target sweep (see forecast_targets).
+    targets: List[str] = field(default_factory=list)
 
 
 @dataclass
@@ -126,15 +130,20 @@ def register_schema() -> None:
     ConfigStore.instance().store(name="schema", node=RootConfig)
 
 
-# Command-line group choices that mean "sweep over these" rather than "use this one".
-_SWEEP_KEYS = {"model": "sweep.models", "penalty": "sweep.penalties", "seed": "sweep.seeds"}
+# Command-line choices that mean "sweep over these" rather than "use this one".
+_SWEEP_KEYS = {"model": "sweep.models", "penalty": "sweep.penalties", "seed": "sweep.seeds",
+               "target": "sweep.targets"}
+# Where the first choice goes, so the composed base config is a valid single run.
+_FIRST_CHOICE = {"model": "model", "penalty": "penalty", "target": "forecast.target"}
 
 
 def expand_sweep_overrides(overrides: list[str]) -> list[str]:
-    """Turn `model=lstm,gru` / `penalty=irm` / `seed=0,1` into sweep lists; keep everything else.
+    """Turn `model=lstm,gru` / `penalty=irm` / `seed=0,1` / `target=pm25,no2` into sweep lists; keep
+    everything else.
 
-    The first choice of model and penalty is also kept as the group choice, so the composed base config
-    is a valid single run (used by `validate` and by `shiftgrid verify`).
+    The first choice of model and penalty is also kept as the group choice (of target: as
+    forecast.target), so the composed base config is a valid single run (used by `validate` and by
+    `shiftgrid verify`).
     """
     expanded = []
     for item in overrides:
@@ -142,11 +151,16 @@ def expand_sweep_overrides(overrides: list[str]) -> list[str]:
         if sep and key in _SWEEP_KEYS and not value.startswith("["):
             choices = [v.strip() for v in value.split(",") if v.strip()]
             expanded.append(f"{_SWEEP_KEYS[key]}=[{','.join(choices)}]")
-            if key != "seed":
-                expanded.append(f"{key}={choices[0]}")
+            if key in _FIRST_CHOICE:
+                expanded.append(f"{_FIRST_CHOICE[key]}={choices[0]}")
         else:
             expanded.append(item)
     return expanded
+
+
+def forecast_targets(cfg) -> list[str]:
+    """The forecast variables of the sweep: sweep.targets, or forecast.target when it is empty."""
+    return list(cfg.sweep.targets) or [str(cfg.forecast.target)]
 
 
 def config_dir(root: Path | str = ".") -> Path:
@@ -226,5 +240,13 @@ def validate(cfg: DictConfig) -> None:
     if cfg.tracking.dependency_changes not in DEPENDENCY_CHANGES:
         raise InputError(f"must be one of {', '.join(DEPENDENCY_CHANGES)}, got {cfg.tracking.dependency_changes!r}",
                          file="config", field="tracking.dependency_changes")
+    targets = forecast_targets(cfg)
+    for target in targets:  # each becomes part of file names, wildcards and tags
+        check_name(target, file="config", field="sweep.targets")
+        if target not in BY_NAME:
+            raise InputError(f"unknown forecast target {target!r}; known: {', '.join(BY_NAME)}", file="config",
+                             field="sweep.targets")
+    if len(set(targets)) != len(targets):
+        raise InputError(f"a target is listed twice: {targets}", file="config", field="sweep.targets")
     if not cfg.sweep.seeds:
         raise InputError("at least one seed is needed", file="config", field="sweep.seeds")

@@ -24,6 +24,9 @@ from pipeline.errors import InputError
 
 RUN_IDENTITY_TAGS = ("split_id", "model", "penalty", "seed")
 SUPERSEDED_TAG = "superseded_by"
+# The forecast variable completes a run's identity when a sweep has several (`target=pm25,no2`): runs of
+# another variable never supersede each other. Runs logged before the tag existed carry none.
+FORECAST_TARGET_TAG = "forecast_target"
 # Hyperparameter search (pipeline.search): a trial's searched values (canonical JSON) complete its identity,
 # so trials of other values never supersede each other; ROLE_TAG is "trial" or "parent" (the run the grid
 # reads, holding the selected trial's results); trials point at their parent with MLflow's own tag.
@@ -229,13 +232,17 @@ def find_current_run(client, experiment_id_: str, unit_digest: str):
 def supersede_previous(client, experiment_id_: str, identity: dict[str, str], new_run_id: str) -> list[str]:
     """Tag earlier current runs of the same split/model/penalty/seed as superseded (never deleted). A search
     trial (TRIAL_TAG, read from the new run itself) supersedes only earlier trials of the same values; any
-    other run supersedes only runs that are not trials."""
+    other run supersedes only runs that are not trials; no run supersedes one of another forecast variable
+    (a run without the tag, logged before it existed, counts as the same variable)."""
     clauses = [f"tags.{key} = '{identity[key]}'" for key in RUN_IDENTITY_TAGS]
     older = search_all_runs(client, [experiment_id_], " and ".join(clauses))
-    trial = client.get_run(new_run_id).data.tags.get(TRIAL_TAG)
+    new_tags = client.get_run(new_run_id).data.tags
+    trial, variable = new_tags.get(TRIAL_TAG), new_tags.get(FORECAST_TARGET_TAG)
     superseded = []
     for run in older:
         if run.data.tags.get(TRIAL_TAG) != trial:
+            continue
+        if run.data.tags.get(FORECAST_TARGET_TAG, variable) != variable:  # another forecast variable
             continue
         if run.info.run_id != new_run_id and SUPERSEDED_TAG not in run.data.tags:
             client.set_tag(run.info.run_id, SUPERSEDED_TAG, new_run_id)

@@ -39,6 +39,7 @@ def tags_for(split: dict, job: dict, seed: int, code_digest: str) -> dict[str, s
             "target": split["target"], "environment": split["environment"], "model": job["model_name"],
             "family": job["model"]["family"], "penalty": job["penalty_name"], "seed": str(seed),
             "selection_rule": job["selection"]["rule"], "code_digest": code_digest,
+            tracking.FORECAST_TARGET_TAG: job["forecast"]["target"],
             "family_code_digest": provenance.training_code_digest([job["model"]["family"]]),
             "package_digest": provenance.source_digest(["."])}
     # The protocol a run shares with its ERM twin (pipeline.twins): how its batches were drawn ("na" for

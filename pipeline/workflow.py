@@ -38,6 +38,12 @@ class TrainJob:
     units: list[dict]  # {"split_id", "model", "penalty", "seed", "job": config slice[, "search": trials]}
     code_digest: str
     versions: str = ""  # library versions its code imports, when tracking.dependency_changes=rerun
+    target: str = ""  # its forecast variable when the sweep has several ("": one target, or the baselines)
+
+    @property
+    def key(self) -> tuple:
+        """Its key in WorkflowPlan.jobs: (split_id, model), plus the forecast variable when there are several."""
+        return (self.split_id, self.model, self.target) if self.target else (self.split_id, self.model)
 
     @property
     def params_json(self) -> str:
@@ -57,6 +63,12 @@ class WorkflowPlan:
     trainable_models: list[str] = field(default_factory=list)
     baseline_models: list[str] = field(default_factory=list)
     rule_code: dict[str, dict] = field(default_factory=dict)  # rule -> {"code", "versions"} (no families)
+    targets: list[str] = field(default_factory=list)  # forecast variables (config.forecast_targets)
+
+    @property
+    def several_targets(self) -> bool:
+        """Several forecast variables: each run's paths carry its variable (one target keeps today's paths)."""
+        return len(self.targets) > 1
 
     @property
     def results_dir(self) -> str:
@@ -74,7 +86,12 @@ class WorkflowPlan:
         return sorted(set(split["sources"]) | {split["target"]})
 
     def run_record(self, split_id: str, unit: dict) -> str:
-        return f"{self.results_dir}/runs/{split_id}/{unit['model']}/{unit['penalty']}/{unit['seed']}.json"
+        variable = f"{unit_target(unit)}/" if self.several_targets else ""
+        return f"{self.results_dir}/runs/{variable}{split_id}/{unit['model']}/{unit['penalty']}/{unit['seed']}.json"
+
+    def job(self, split_id: str, model: str, target: str | None = None) -> "TrainJob":
+        """The training job of a split and model (and forecast variable, when there are several)."""
+        return self.jobs[(split_id, model, target) if self.several_targets and target else (split_id, model)]
 
     def records_of(self, job: TrainJob) -> list[str]:
         return [self.run_record(unit["split_id"], unit) for unit in job.units]
@@ -102,18 +119,28 @@ class WorkflowPlan:
         return {"cfg": to_container(self.cfg), "overrides": self.overrides, "cities": self.cities,
                 "splits": self.splits, "jobs": [asdict(job) for job in self.jobs.values()],
                 "trainable_models": self.trainable_models, "baseline_models": self.baseline_models,
-                "rule_code": self.rule_code}
+                "rule_code": self.rule_code, "targets": self.targets}
 
     @classmethod
     def from_data(cls, data: dict, root: Path) -> "WorkflowPlan":
         jobs = [TrainJob(**job) for job in data["jobs"]]
         return cls(cfg=ConfigNode(data["cfg"]), overrides=data["overrides"], root=root,
-                   cities=data["cities"], splits=data["splits"], jobs={(j.split_id, j.model): j for j in jobs},
+                   cities=data["cities"], splits=data["splits"], jobs={j.key: j for j in jobs},
                    trainable_models=data["trainable_models"], baseline_models=data["baseline_models"],
-                   rule_code=data["rule_code"])
+                   rule_code=data["rule_code"], targets=data["targets"])
 
     def city_format(self, city: str) -> dict:
         return to_container(self.cfg.data.cities[city])
+
+
+def unit_target(unit: dict) -> str:
+    """The forecast variable of a planned unit (its job slice holds it)."""
+    return unit["job"]["forecast"]["target"]
+
+
+def _for_target(job: dict, target: str) -> dict:
+    """A job slice with its forecast variable set: the variable is part of the slice, so of the digest."""
+    return {**job, "forecast": {**job["forecast"], "target": target}}
 
 
 def parse_overrides(text: str | list | None) -> list[str]:
@@ -164,7 +191,7 @@ def plan_config(overrides: str | list | None = None, root: Path | str = ".") -> 
 def compose_plan(overrides: list[str], root: Path) -> WorkflowPlan:
     """Compose the configuration with Hydra (once per model x penalty pair) and plan cities, splits, jobs."""
     from pipeline import search
-    from pipeline.config import compose_config, expand_sweep_overrides, job_slice, validate
+    from pipeline.config import compose_config, expand_sweep_overrides, forecast_targets, job_slice, validate
     from pipeline.names import NOT_APPLICABLE
     from pipeline.splits import plan_splits
     from pipeline.stations import load_stations
@@ -189,7 +216,7 @@ def compose_plan(overrides: list[str], root: Path) -> WorkflowPlan:
               plan_splits(split_cfg, stations[stations["city"].isin(cities)],
                           cfg.forecast.lookback_hours, cfg.forecast.horizon_hours)}
     plan = WorkflowPlan(cfg=ConfigNode(to_container(cfg)), overrides=overrides, root=root, cities=cities,
-                        splits=splits)
+                        splits=splits, targets=forecast_targets(cfg))
     search_cfg = to_container(cfg.search)
     search.check_config(search_cfg, root / "config")
     baseline_units, baseline_families = [], []
@@ -203,7 +230,8 @@ def compose_plan(overrides: list[str], root: Path) -> WorkflowPlan:
             plan.baseline_models.append(model_name)
             baseline_families.append(family)
             baseline_units += search.attach([{"model": model_name, "penalty": NOT_APPLICABLE, "seed": 0,
-                                              "job": job_slice(model_cfg, model_name, NOT_APPLICABLE)}],
+                                              "job": _for_target(job_slice(model_cfg, model_name, NOT_APPLICABLE),
+                                                                 target)} for target in plan.targets],
                                             search_cfg, trainable=False)
             continue
         plan.trainable_models.append(model_name)
@@ -212,7 +240,8 @@ def compose_plan(overrides: list[str], root: Path) -> WorkflowPlan:
             pair_cfg = compose_config([*overrides, f"model={model_name}", f"penalty={penalty_name}"], root)
             validate(pair_cfg)
             units += [{"model": model_name, "penalty": penalty_name, "seed": seed,
-                       "job": job_slice(pair_cfg, model_name, penalty_name)} for seed in cfg.sweep.seeds]
+                       "job": _for_target(job_slice(pair_cfg, model_name, penalty_name), target)}
+                      for target in plan.targets for seed in cfg.sweep.seeds]
         units = search.attach(units, search_cfg, trainable=True)  # the trials of each run, if searched
         # Plan time, not job time: a penalised run with one training environment is ERM in disguise, and
         # an ERM twin trained under another protocol is no twin (pipeline.environments, pipeline.twins);
@@ -221,10 +250,12 @@ def compose_plan(overrides: list[str], root: Path) -> WorkflowPlan:
                                  dict(zip(stations["station_id"].astype(str), stations["city"].astype(str))))
         twins.check_units(search.trial_units(units))
         digest, versions = plan.code_digest("train_model", [family]), plan.versions("train_model", [family])
-        for split_id in splits:
-            plan.jobs[(split_id, model_name)] = TrainJob(split_id, model_name,
-                                                         [{"split_id": split_id, **u} for u in units], digest,
-                                                         versions)
+        for split_id in splits:  # one job per split x model (x forecast variable: its windows differ)
+            for target in plan.targets:
+                job = TrainJob(split_id, model_name, [{"split_id": split_id, **u} for u in units
+                                                      if unit_target(u) == target], digest, versions,
+                               target if plan.several_targets else "")
+                plan.jobs[job.key] = job
     if baseline_units and splits:
         units = [{"split_id": split_id, **unit} for split_id in splits for unit in baseline_units]
         families = sorted(set(baseline_families))

@@ -73,7 +73,7 @@ WEIGHTS = (100.0, 10.0)
 SEARCH_GAP = 0.3
 
 
-def search_trials(client, experiment_id: str, tags: dict, mae: float) -> list[dict]:
+def search_trials(client, experiment_id: str, tags: dict, mae: float, params: dict = PARAMS) -> list[dict]:
     """Log the two trials of one searched run; returns their entries of the run record's "search"."""
     from pipeline import tracking
 
@@ -82,15 +82,20 @@ def search_trials(client, experiment_id: str, tags: dict, mae: float) -> list[di
         metrics = metrics_for(mae + SEARCH_GAP * index)
         metrics.update({f"{rule}.selection_score": 1.0 + index for rule in RULES})
         values = {"penalty.weight": weight}
-        run_id = tracking.log_run(client, experiment_id, run_name="trial", params=PARAMS, metrics=metrics, curves={},
+        run_id = tracking.log_run(client, experiment_id, run_name="trial", params=params, metrics=metrics, curves={},
                                   tags={**tags, tracking.ROLE_TAG: "trial", tracking.TRIAL_TAG: json.dumps(values)},
                                   artifacts={})
         trials.append({"trial": index, "run_id": run_id, "values": values, "reused": False})
     return trials
 
 
-def build_grid_store(root: Path) -> tuple[list[Path], str]:
-    """Log every run to a fresh SQLite store under `root` and write the run records; returns (records, uri)."""
+# Several forecast targets (`targets=` of build_grid_store): the k-th variable's errors are (k + 1) times
+# the first's, so its ranks match and its means have known answers.
+def build_grid_store(root: Path, targets: tuple[str, ...] = ("pm25",)) -> tuple[list[Path], str]:
+    """Log every run to a fresh SQLite store under `root` and write the run records; returns (records, uri).
+
+    With several `targets`, every run is logged once per forecast variable, its record under runs/<variable>/.
+    """
     from pipeline import tracking
 
     results = root / "results"
@@ -99,22 +104,29 @@ def build_grid_store(root: Path) -> tuple[list[Path], str]:
     experiment_id = tracking.setup_store(uri, "gridtest", tracking.artifact_location(results))
     client = tracking.client_for(uri)
     records = []
-    for split_id, cells in TARGET_MAE.items():
+    cells_of = [(variable, scale, split_id, cells) for scale, variable in enumerate(targets, start=1)
+                for split_id, cells in TARGET_MAE.items()]
+    for variable, scale, split_id, cells in cells_of:
         sources, target = SPLITS[split_id]
+        params = {**PARAMS, "forecast.target": variable}
+        folder = Path(variable) if len(targets) > 1 else Path()
         for (model, penalty), values in cells.items():
             for seed, mae in enumerate(values):
-                work = root / "work" / split_id / model / penalty / str(seed)
+                mae = mae * scale
+                work = root / "work" / folder / split_id / model / penalty / str(seed)
                 work.mkdir(parents=True)
                 predictions(mae, seed).to_parquet(work / "target_predictions.parquet", index=False)
                 metrics = metrics_for(mae)
                 tags = {"split_id": split_id, "model": model, "penalty": penalty, "seed": str(seed),
                         "sources": "+".join(sources), "target": target, "code_digest": "c0ffee",
                         "git.commit": "0123456789abcdef", "selection_label": "source-holdout"}
-                trials = search_trials(client, experiment_id, tags, mae) if (model, penalty) == SEARCHED else []
+                if len(targets) > 1:
+                    tags["forecast_target"] = variable
+                trials = search_trials(client, experiment_id, tags, mae, params) if (model, penalty) == SEARCHED else []
                 if trials:
                     tags = {**tags, tracking.ROLE_TAG: "parent", "search.budget": str(len(trials))}
                 run_id = tracking.log_run(client, experiment_id, run_name=f"{split_id}/{model}/{penalty}/{seed}",
-                                          params=PARAMS, metrics=metrics,
+                                          params=params, metrics=metrics,
                                           curves={}, tags=tags,
                                           artifacts={"predictions": work / "target_predictions.parquet"})
                 record = {"run_id": run_id, "experiment": "gridtest", "experiment_id": experiment_id,
@@ -127,7 +139,7 @@ def build_grid_store(root: Path) -> tuple[list[Path], str]:
                     for trial in trials:
                         client.set_tag(trial["run_id"], tracking.PARENT_TAG, run_id)
                     record["search"] = {"budget": len(trials), "trials": trials, "selected": {rule: 0 for rule in RULES}}
-                path = results / "runs" / split_id / model / penalty / f"{seed}.json"
+                path = results / "runs" / folder / split_id / model / penalty / f"{seed}.json"
                 path.parent.mkdir(parents=True, exist_ok=True)
                 path.write_text(json.dumps(record))
                 records.append(path)

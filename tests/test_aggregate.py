@@ -218,3 +218,39 @@ def test_splits_that_share_a_target_are_one_friedman_block():
     reference = sps.friedmanchisquare([2.0, 1.0], [2.0, 2.0], [2.0, 3.0])
     assert result["chi2"] == pytest.approx(reference.statistic)
     assert result["mean_ranks"] == pytest.approx({"x": 1.5, "y": 2.0, "z": 2.5})
+
+
+@pytest.fixture(scope="module")
+def grid_two_targets(tmp_path_factory):
+    """The same fixture swept over two forecast variables: no2's errors are twice pm25's."""
+    root = tmp_path_factory.mktemp("grid_two")
+    records, _ = build_grid_store(root, targets=("pm25", "no2"))
+    meta = aggregate(records, root / "results", metric="mae", n_boot=500)
+    return {"root": root, "meta": meta, "summary": pd.read_csv(root / "results" / "grid.csv"),
+            "dm": pd.read_csv(root / "results" / "grid_dm.csv")}
+
+
+def test_each_forecast_target_is_its_own_grid(grid, grid_two_targets):
+    summary, meta = grid_two_targets["summary"], grid_two_targets["meta"]
+    assert sorted(summary["target_variable"].unique()) == ["no2", "pm25"]
+    keys = ["selection_rule", "split_id", "model", "penalty"]
+    # pm25's section is exactly the single-target grid: nothing of no2 enters its ranks, tests or intervals
+    pm25 = summary[summary["target_variable"] == "pm25"].drop(columns=["target_variable", "run_ids"])
+    single = grid["summary"].drop(columns="run_ids")  # run ids differ: every run was logged anew
+    pd.testing.assert_frame_equal(pm25.sort_values(keys, ignore_index=True)[single.columns],
+                                  single.sort_values(keys, ignore_index=True), check_dtype=False)
+    # source-holdout: no2's means are twice pm25's, with its own label (unit of no2), and the same ranks
+    holdout = summary[summary["selection_rule"] == "source-holdout"]
+    no2 = holdout[holdout["target_variable"] == "no2"].set_index(keys).sort_index()
+    both = holdout[holdout["target_variable"] == "pm25"].set_index(keys).sort_index()
+    np.testing.assert_allclose(no2["mean"], 2 * both["mean"])
+    assert (no2["rank"] == both["rank"]).all()
+    assert no2["metric_label"].unique().tolist() == ["MAE of no2, ug/m3"]
+    assert set(meta["targets"]) == {"pm25", "no2"} and meta["friedman"] == {}
+    assert meta["targets"]["pm25"]["friedman"] == grid["meta"]["friedman"]
+    # one Holm family per rule and variable: pm25's adjusted p-values are the single-target ones
+    dm = grid_two_targets["dm"]
+    assert set(dm["target_variable"]) == {"pm25", "no2"}
+    single_dm = pd.read_csv(grid["root"] / "results" / "grid_dm.csv")
+    np.testing.assert_allclose(dm[dm["target_variable"] == "pm25"]["dm_p_holm"].to_numpy(),
+                               single_dm["dm_p_holm"].to_numpy())

@@ -5,10 +5,12 @@
 
 PENALTIES = list(PLAN.cfg.sweep.penalties)
 SEEDS = list(PLAN.cfg.sweep.seeds)
+# Several forecast variables: each job's records and log sit under its variable; one keeps today's paths.
+VARIABLE = "{variable}/" if PLAN.several_targets else ""
 
 
 def job_of(wildcards):
-    return PLAN.jobs[(wildcards.split_id, wildcards.model)]
+    return PLAN.job(wildcards.split_id, wildcards.model, wildcards.get("variable"))
 
 
 def job_units(wildcards):
@@ -29,11 +31,12 @@ rule train_model:
         split=f"{RESULTS}/splits/{{split_id}}.json",
         tracking=f"{RESULTS}/tracking.json",
     output:
-        [f"{RESULTS}/runs/{{split_id}}/{{model}}/{penalty}/{seed}.json" for penalty in PENALTIES for seed in SEEDS],
+        [f"{RESULTS}/runs/{VARIABLE}{{split_id}}/{{model}}/{penalty}/{seed}.json" for penalty in PENALTIES
+         for seed in SEEDS],
     log:
-        f"{RESULTS}/logs/train_model/{{split_id}}/{{model}}.log",
+        f"{RESULTS}/logs/train_model/{VARIABLE}{{split_id}}/{{model}}.log",
     benchmark:
-        f"{RESULTS}/benchmarks/train_model/{{split_id}}/{{model}}.tsv"
+        f"{RESULTS}/benchmarks/train_model/{VARIABLE}{{split_id}}/{{model}}.tsv"
     threads: 1
     params:
         units=job_units,

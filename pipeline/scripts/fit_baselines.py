@@ -1,6 +1,6 @@
 """Rule fit_baselines: the closed-form families on every split -> MLflow runs + run records.
 
-Units are grouped by split; each split's units go through the same training job code as train_model,
+Units are grouped by split and forecast variable; each group's units go through the same training job code as train_model,
 with unchanged runs reused (so new data for one city retrains only the baselines of its splits).
 """
 
@@ -16,10 +16,10 @@ def work(snakemake):
     tracking = json.loads(open(snakemake.input.tracking).read())
     units = json.loads(snakemake.params.units)
     outputs = list(snakemake.output)
-    by_split: dict[str, list[int]] = {}
+    by_split: dict[tuple, list[int]] = {}  # one window set per split and forecast variable
     for index, unit in enumerate(units):
-        by_split.setdefault(unit["split_id"], []).append(index)
-    for split_id, indices in by_split.items():
+        by_split.setdefault((unit["split_id"], unit["job"]["forecast"]["target"]), []).append(index)
+    for (split_id, _), indices in by_split.items():
         split_path = Path(snakemake.params.results) / "splits" / f"{split_id}.json"
         with store_errors(tracking["tracking_uri"]):  # a failing store ends the job in one line
             run_train_job(split_path, [units[i] for i in indices], [outputs[i] for i in indices],
