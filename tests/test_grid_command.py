@@ -97,3 +97,31 @@ def test_csv_carries_holm_p_and_origin_intervals_read_from_the_aggregation(resul
     assert irm["dm_p_holm"].to_dict() == pytest.approx(expected["dm_p_holm"].to_dict())
     assert table["ci_low"].notna().all() and (table["ci_low"] <= table["ci_high"]).all()
     assert set(table["seed_interval"]) == {"seed range"}  # 1 or 2 seeds per cell
+
+
+@pytest.fixture(scope="module")
+def two_targets(tmp_path_factory):
+    root = tmp_path_factory.mktemp("cmd_two")
+    records, _ = build_grid_store(root, targets=("pm25", "no2"))
+    aggregate(records, root / "results", metric="mae", n_boot=100)
+    return root / "results"
+
+
+def test_each_forecast_target_has_its_own_section_and_unit(results, two_targets):
+    status, text = grid(two_targets)
+    assert status == 0 and max(len(line) for line in text.splitlines()) <= 100
+    sections = text.split("== forecast target ")
+    assert [s.split(" ==")[0] for s in sections[1:]] == ["no2", "pm25"]
+    assert "MAE of no2, ug/m3" in sections[1] and "MAE of pm25, ug/m3" in sections[2]
+    assert "pm25" not in sections[1].replace("forecast target", "")  # no2's grid holds no pm25 cell
+    # pm25's section is the single-target grid, line for line
+    _, single = grid(results)
+    assert sections[2].split("\n", 1)[1].rstrip() == single.rstrip()
+    _, csv_text = grid(two_targets, "--format", "csv")
+    table = pd.read_csv(io.StringIO(csv_text))
+    assert table.columns[0] == "target_variable" and len(table) == 2 * len(pd.read_csv(io.StringIO(grid(results, "--format", "csv")[1])))
+    _, markdown = grid(two_targets, "--format", "markdown")
+    assert markdown.count("### Forecast target ") == 2
+    cfg = SimpleNamespace(report=SimpleNamespace(metric="mae", selection="source-holdout", top_rows=2))
+    top = top_of_grid(two_targets, cfg)
+    assert top.count("top of the grid") == 2 and top.count("Friedman over 3 target cities") == 2

@@ -5,7 +5,8 @@ Reads results/grid.parquet (one row per run; no MLflow needed), results/grid_dm.
 tests with Holm-adjusted p) and results/grid_intervals.csv (block-bootstrap intervals over test origins),
 when present; prints the ranked grid as a table readable at 100 columns (best cell per split
 marked with `*`, not colour), CSV, Markdown or JSON. Config keys obeyed: results_dir, report.metric,
-report.selection, report.top_rows (for `top_of_grid`).
+report.selection, report.top_rows (for `top_of_grid`). A sweep over several forecast variables shows one
+grid per variable (pipeline.target_sections), each with its own ranks and units.
 """
 
 from __future__ import annotations
@@ -17,7 +18,7 @@ from pathlib import Path
 import numpy as np
 import pandas as pd
 
-from pipeline import grid_stats, names, selection
+from pipeline import grid_stats, names, selection, target_sections
 from pipeline.commands import add_run_filters
 from pipeline.errors import InputError
 from pipeline.resampling import SEED_RANGE
@@ -63,15 +64,21 @@ def grid_table(results_dir: Path, metric: str, rule: str, targets=None, models=N
                 raise InputError(f"no run has {column} {unknown}; known: {', '.join(sorted(runs[column].unique()))}",
                                  field=f"--{column}")
             runs = runs[runs[column].isin(wanted)]
-    summary = grid_stats.summarise(runs, metric, rule)
     # Tests and intervals were computed by the aggregation over the WHOLE grid (the Holm family is every
     # comparison of the grid, whatever this view filters), so they are read, never recomputed here.
     paths = {name: Path(results_dir) / f"grid_{name}.csv" for name in ("dm", "intervals")}
     tables = {name: pd.read_csv(path) if path.exists() else None for name, path in paths.items()}
-    summary = grid_stats.attach_tests(summary, tables["dm"], tables["intervals"])
+    sections = []
+    for variable, section in target_sections.run_sections(runs):  # one grid per forecast variable
+        summary = grid_stats.summarise(section, metric, rule)
+        summary = grid_stats.attach_tests(summary, target_sections.part_of(tables["dm"], variable),
+                                          target_sections.part_of(tables["intervals"], variable))
+        sections.append(target_sections.labelled(summary, variable))
+    summary = pd.concat(sections, ignore_index=True)
     summary["best"] = np.where(summary["best_in_split"], BEST, "")
     summary["penalty"] = summary["penalty"].map(names.penalty_shown)
-    return summary.sort_values(["split", "rank", "model"]).reset_index(drop=True)
+    order = [c for c in (target_sections.TARGET_COLUMN, "split", "rank", "model") if c in summary.columns]
+    return summary.sort_values(order).reset_index(drop=True)
 
 
 def _num(value, spec: str = ".3g") -> str:
@@ -90,7 +97,16 @@ def _seed_text(row) -> str:
 
 
 def format_table(summary: pd.DataFrame) -> str:
-    """Fixed-width text, one block per split, lines of at most 100 characters."""
+    """Fixed-width text, one block per split (under a heading per forecast variable when there are
+    several), lines of at most 100 characters."""
+    parts = target_sections.table_sections(summary)
+    if len(parts) == 1:
+        return _format_section(summary)
+    return "\n\n".join(f"== forecast target {variable} ==\n" + _format_section(part) for variable, part in parts)
+
+
+def _format_section(summary: pd.DataFrame) -> str:
+    """One forecast variable's grid: its metric (and unit) in the heading, then a block per split."""
     metric, rule = summary["metric"].iloc[0], summary["selection_rule"].iloc[0]
     lines = _fit(f"selection: {selection.label(rule)}; metric: {summary['metric_label'].iloc[0]} "
                  f"({grid_stats.direction_text(metric)})")
@@ -115,6 +131,10 @@ def format_table(summary: pd.DataFrame) -> str:
 
 
 def format_markdown(summary: pd.DataFrame) -> str:
+    parts = target_sections.table_sections(summary)
+    if len(parts) > 1:
+        return "\n\n".join(f"### Forecast target {variable}\n\n" + format_markdown(part.drop(
+            columns=target_sections.TARGET_COLUMN)) for variable, part in parts)
     table = summary[COLUMNS[:-1]]
     head = "| " + " | ".join(table.columns) + " |"
     rule = "|" + "|".join("---" for _ in table.columns) + "|"
@@ -131,7 +151,8 @@ def render(summary: pd.DataFrame, fmt: str) -> str:
         return format_table(summary)
     if fmt == "markdown":
         return format_markdown(summary)
-    out = summary[["selection_rule", "selection_label", "metric", "split_id", *COLUMNS]]
+    shown = [c for c in (target_sections.TARGET_COLUMN,) if c in summary.columns]
+    out = summary[[*shown, "selection_rule", "selection_label", "metric", "split_id", *COLUMNS]]
     if fmt == "csv":
         return out.to_csv(index=False).rstrip("\n")
     return json.dumps(json.loads(out.to_json(orient="records")), indent=1)
@@ -158,9 +179,17 @@ def run(args) -> int:
 
 
 def top_of_grid(results_dir: Path, cfg) -> str:
-    """A few lines for the end of `make demo`: combinations by mean rank, best cell per split, Friedman."""
+    """A few lines for the end of `make demo`: combinations by mean rank, best cell per split, Friedman
+    (for each forecast variable when there are several)."""
     metric, rule = cfg.report.metric, cfg.report.selection
     summary = grid_table(Path(results_dir), metric, rule)
+    meta_path = Path(results_dir) / "grid_meta.json"
+    meta = json.loads(meta_path.read_text()) if meta_path.exists() else {}
+    return "\n".join(_top_section(part, meta.get("targets", {}).get(variable, meta), metric, rule, cfg)
+                     for variable, part in target_sections.table_sections(summary))
+
+
+def _top_section(summary: pd.DataFrame, meta: dict, metric: str, rule: str, cfg) -> str:
     board = summary.groupby("combo").agg(mean_rank=("mean_rank", "first"), average=("mean", "mean"))
     board = board.sort_values("mean_rank").head(int(cfg.report.top_rows))
     lines = [f"top of the grid — {summary['metric_label'].iloc[0]} ({grid_stats.direction_text(metric)}), "
@@ -169,12 +198,10 @@ def top_of_grid(results_dir: Path, cfg) -> str:
     lines.append("best per split:")
     for split, group in summary[summary["best_in_split"]].groupby("split", sort=True):
         lines.append(f"  {BEST} {split}: {', '.join(group['combo'])} ({_num(group['mean'].iloc[0], '.4g')})")
-    meta_path = Path(results_dir) / "grid_meta.json"
-    if meta_path.exists():
-        result = json.loads(meta_path.read_text()).get("friedman", {}).get(rule, {})
-        if result.get("available"):
-            outcome = (f"Nemenyi CD = {result['cd']:.2f}" if result["rejects"]
-                       else f"ranks not distinguishable at alpha {result['alpha']:g}")
-            lines.append(f"Friedman over {result['n_blocks']} target cities: Iman-Davenport p = "
-                         f"{result['f_p_value']:.3g}, {outcome} (see the report for the caveats)")
+    result = meta.get("friedman", {}).get(rule, {})
+    if result.get("available"):
+        outcome = (f"Nemenyi CD = {result['cd']:.2f}" if result["rejects"]
+                   else f"ranks not distinguishable at alpha {result['alpha']:g}")
+        lines.append(f"Friedman over {result['n_blocks']} target cities: Iman-Davenport p = "
+                     f"{result['f_p_value']:.3g}, {outcome} (see the report for the caveats)")
     return "\n".join(lines)
