@@ -1,10 +1,8 @@
 """Windows per second of the project's training loop against a bare PyTorch loop, side by side (never pass/fail).
 
-    .venv/bin/python bench/trainer_vs_bare_torch.py [--steps 300] [--rounds 2] [--families linear lstm transformer]
+    .venv/bin/python bench/trainer_vs_bare_torch.py [--steps 150] [--rounds 2] [--families linear lstm transformer]
 
-Invented windows shaped like one leave-one-city-out split of the demo (48 h lookback, 14 features, 24 h
-horizon, three source cities; 26,000 training windows, 8,800 source and 2,900 target validation windows:
-about 15 source stations x 365 days at a 3-hour stride, blocks 0.6 / 0.2 / 0.2). For each family:
+Invented windows shaped like one leave-one-city-out split of the demo (bench/demo_shapes.py). Per family:
 
 - trainer: pipeline.train_loop.train_network with the project's fit defaults (batch 128, Adam, gradient
   clipping, evaluation of both validation sets every 25 steps, snapshots) and an ERM penalty with the
@@ -15,59 +13,28 @@ about 15 source stations x 365 days at a 3-hour stride, blocks 0.6 / 0.2 / 0.2).
 
 Figures: trainer windows/s over bare windows/s (goal >= 0.8), the share of the trainer's time spent on
 evaluations (goal < 20 %), and the time of one step of each penalty over an ERM step (goal <= 1.15; no
-validation sets, penalties active from step 0). Rounds alternate the two sides so both see the same machine
-load; each figure takes the fastest round. Single-threaded torch on both sides, as the training jobs run.
+validation sets, penalties active from step 0, steps / 3 per fit). Rounds alternate the sides so both
+see the same machine load; each figure takes the fastest round. Single-threaded torch on both sides, as
+the training jobs run.
 """
 
 from __future__ import annotations
 
 import argparse
 import os
-import sys
 import time
-from dataclasses import dataclass
-from pathlib import Path
 
 import numpy as np
 import torch
 
-REPO = Path(__file__).resolve().parents[1]
-sys.path.insert(0, str(REPO))
+from demo_shapes import demo_split, network_builder  # noqa: E402 (bench/ is on the path of its scripts)
 
 from pipeline.fit_config import FitConfig  # noqa: E402
-from pipeline.models import build_model  # noqa: E402
 from pipeline.penalties import build_penalty  # noqa: E402
 from pipeline.train_loop import make_optimizer, train_network  # noqa: E402
 
-LOOKBACK, FEATURES, HORIZON = 48, 14, 24
-TRAIN_PER_ENV, VAL_SOURCE_PER_ENV, VAL_TARGET = 26_000 // 3, 8_800 // 3, 2_900
 WARMUP = 100  # the shipped penalties' warm-up (config/penalty/*.yaml)
 PENALTIES = {"irm": 100.0, "vrex": 10.0, "groupdro": 1.0}  # shipped weights
-
-
-@dataclass
-class Windows:
-    X: np.ndarray
-    y: np.ndarray
-    env: np.ndarray
-    env_names: list
-    target_index: int = 0
-
-
-def invented_windows(per_env: list[int], seed: int) -> Windows:
-    rng = np.random.default_rng(seed)
-    n = sum(per_env)
-    X = rng.normal(size=(n, LOOKBACK, FEATURES)).astype(np.float32)
-    y = (X[:, -HORIZON:, 0] * 0.8 + 0.2 * rng.normal(size=(n, HORIZON))).astype(np.float32)
-    env = np.repeat(np.arange(len(per_env)), per_env).astype(np.int64)
-    return Windows(X, y, env, [f"city{e}" for e in range(len(per_env))])
-
-
-def network_builder(family: str):
-    model = build_model(family, seed=0)
-    model.lookback_, model.n_features_, model.horizon_ = LOOKBACK, FEATURES, HORIZON
-    model.hparams_ = model.Params()
-    return lambda: model.build_network(LOOKBACK, FEATURES, HORIZON)
 
 
 def trainer_fit(build, train, val, cfg: FitConfig, penalty) -> tuple[float, float, int]:
@@ -108,7 +75,7 @@ def measure_family(family: str, steps: int, rounds: int, train, val) -> dict[str
         seconds, windows = bare_fit(build, train, cfg)
         bare = max(bare, windows / seconds)
     step_seconds = {}
-    penalty_cfg = FitConfig(max_steps=steps // 2, patience=10**6, threads=1, eval_every=steps)
+    penalty_cfg = FitConfig(max_steps=steps // 3, patience=10**6, threads=1, eval_every=steps)
     for _ in range(rounds):
         for name, weight in {"erm": 0.0, **PENALTIES}.items():
             seconds, _, _ = trainer_fit(build, train, {}, penalty_cfg, build_penalty(name, weight, 0))
@@ -120,14 +87,12 @@ def measure_family(family: str, steps: int, rounds: int, train, val) -> dict[str
 
 def main() -> None:
     parser = argparse.ArgumentParser(description=__doc__.splitlines()[0])
-    parser.add_argument("--steps", type=int, default=300, help="optimizer steps per fit (fit.max_steps)")
+    parser.add_argument("--steps", type=int, default=150, help="optimizer steps per fit (fit.max_steps)")
     parser.add_argument("--rounds", type=int, default=2)
     parser.add_argument("--families", nargs="*", default=["linear", "lstm", "transformer"])
     args = parser.parse_args()
     torch.set_num_threads(1)
-    train = invented_windows([TRAIN_PER_ENV] * 3, seed=1)
-    val = {"source": invented_windows([VAL_SOURCE_PER_ENV] * 3, seed=2),
-           "target": invented_windows([VAL_TARGET], seed=3)}
+    train, val = demo_split()
     print(f"cores: {os.cpu_count()}, load average: {' '.join(f'{x:.1f}' for x in os.getloadavg())}, "
           f"torch threads 1, {args.steps} steps, best of {args.rounds} alternating rounds; "
           f"windows {len(train.y)} train, {len(val['source'].y)} + {len(val['target'].y)} validation")
