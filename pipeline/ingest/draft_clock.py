@@ -28,7 +28,7 @@ import pandas as pd
 
 _DATES = ("%Y-%m-%d", "%Y/%m/%d", "%d.%m.%Y", "%d/%m/%Y", "%m/%d/%Y", "%d-%m-%Y", "%Y%m%d")
 _TIMES = (" %H:%M", " %H:%M:%S", "T%H:%M", "T%H:%M:%S", " %H")
-STRFTIME_CANDIDATES = tuple(d + t for d in _DATES for t in _TIMES)
+STRFTIME_CANDIDATES = tuple(d + t for d in _DATES for t in _TIMES) + _DATES  # date alone: daily data
 _OFFSET_SUFFIX = re.compile(r"(?:Z|[+-]\d{2}:?\d{2})$")
 # Timestamp parts by the names agencies give them (lower case, separators removed).
 PART_NAMES = {"year": ("year", "yr", "yyyy", "yy"), "month": ("month", "mo", "mon", "mm"),
@@ -53,6 +53,14 @@ class ClockDraft:
     questions: list[str] = field(default_factory=list)
     columns: list[str] = field(default_factory=list)  # the columns the stamp is read from
     spare: list[str] = field(default_factory=list)  # other columns holding the time (not values)
+    step: pd.Timedelta | None = None  # the most common step between consecutive stamps (the cadence)
+
+
+def modal_step(stamps: pd.Series) -> pd.Timedelta | None:
+    """The most common step between consecutive distinct stamps: the delivery's cadence."""
+    steps = pd.Series(stamps.dropna().unique()).sort_values().diff().dropna()
+    steps = steps[steps > pd.Timedelta(0)]
+    return steps.mode().iloc[0] if len(steps) else None
 
 
 def _key(name: str) -> str:
@@ -254,7 +262,10 @@ def draft_clock(table: pd.DataFrame, station_column: str | None, value_columns: 
         others = [c for c, _ in single if c != column] + (list(parts.values()) if parts else [])
         evidence.append(f"every stamp carries its UTC offset ({formats[0][0]}): no time-zone question"
                         + (f"; also found: {', '.join(others)}" if others else ""))
-        return ClockDraft(time, "high", evidence, questions, [column], others)
+        stamps = (pd.to_datetime(table[column].str.strip(), format="ISO8601", utc=True, errors="coerce")
+                  if time["format"] == "iso8601" else
+                  pd.to_datetime(pd.to_numeric(table[column], errors="coerce"), unit="s", utc=True))
+        return ClockDraft(time, "high", evidence, questions, [column], others, modal_step(stamps))
     if single:
         column, formats = single[0]
         time = {"column": column, "format": formats[0][0]}
@@ -281,4 +292,4 @@ def draft_clock(table: pd.DataFrame, station_column: str | None, value_columns: 
     questions += zone_questions + ["does a stamp name the hour's start or its end (label: end)? start assumed"]
     order = {"high": 2, "medium": 1, "low": 0}
     confidence = min(confidence, zone_confidence, key=order.get)
-    return ClockDraft(time, confidence, evidence + zone_evidence, questions, columns)
+    return ClockDraft(time, confidence, evidence + zone_evidence, questions, columns, step=modal_step(naive))
