@@ -7,35 +7,39 @@ anything from target-peek reads "upper bound" (tests/test_report.py checks the p
 
 from __future__ import annotations
 
-import html
-
 import numpy as np
 import pandas as pd
+from markupsafe import Markup
 
 from pipeline import selection
 from pipeline.report import figures
+from pipeline.report.templating import render
 
-E = html.escape
+# `rule` marks a block with the selection rule it shows (data-selection); None: not one rule's numbers.
+FIGURE = ('<figure{% if rule %} data-selection="{{ rule }}"{% endif %}>'
+          '<img alt="{{ caption }}" src="data:image/png;base64,{{ data }}"><figcaption>{{ caption }}</figcaption>'
+          '</figure>')
+# `marks` holds, per column, the rule that whole column comes from (header and cells), or None.
+TABLE = ('<table class="{{ classes }}"{% if rule %} data-selection="{{ rule }}"{% endif %}>'
+         '<caption>{{ caption }}</caption><thead><tr>'
+         '{% for column, mark in header %}<th{% if mark %} data-selection="{{ mark }}"{% endif %}>{{ column }}</th>'
+         '{% endfor %}</tr></thead><tbody>'
+         '{% for row in rows %}<tr>{% for value, mark in row %}'
+         '<td{% if mark %} data-selection="{{ mark }}"{% endif %}>{{ value }}</td>{% endfor %}</tr>{% endfor %}'
+         '</tbody></table>')
 
 
-def figure(fig, dpi: int, caption: str, rule: str | None) -> str:
-    data = figures.png_base64(fig, dpi)
-    attr = f' data-selection="{E(rule)}"' if rule else ""
-    return (f'<figure{attr}><img alt="{E(caption)}" src="data:image/png;base64,{data}">'
-            f"<figcaption>{E(caption)}</figcaption></figure>")
+def figure(fig, dpi: int, caption: str, rule: str | None) -> Markup:
+    return render(FIGURE, rule=rule, caption=caption, data=figures.png_base64(fig, dpi))
 
 
 def table(frame: pd.DataFrame, caption: str, rule: str | None = None, classes: str = "",
-          column_rules: dict[str, str] | None = None) -> str:
+          column_rules: dict[str, str] | None = None) -> Markup:
     """An HTML table; `column_rules` marks whole columns (header and cells) with the rule they come from."""
-    attr = f' data-selection="{E(rule)}"' if rule else ""
-    column_rules = column_rules or {}
-    marks = [f' data-selection="{E(column_rules[col])}"' if col in column_rules else "" for col in frame.columns]
-    head = "".join(f"<th{mark}>{E(str(col))}</th>" for col, mark in zip(frame.columns, marks))
-    body = "".join("<tr>" + "".join(f"<td{mark}>{E(fmt(value))}</td>" for value, mark in zip(row, marks)) + "</tr>"
-                   for row in frame.itertuples(index=False))
-    return (f'<table class="{classes}"{attr}><caption>{E(caption)}</caption><thead><tr>{head}</tr></thead>'
-            f"<tbody>{body}</tbody></table>")
+    marks = [(column_rules or {}).get(col) for col in frame.columns]
+    rows = [list(zip(map(fmt, row), marks)) for row in frame.itertuples(index=False)]
+    return render(TABLE, classes=classes, rule=rule, caption=caption, header=list(zip(map(str, frame.columns), marks)),
+                  rows=rows)
 
 
 def fmt(value) -> str:

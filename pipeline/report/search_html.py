@@ -13,16 +13,15 @@ off it would be chosen with target data, so its figure, table and text are marke
 
 from __future__ import annotations
 
-import html
-
 import numpy as np
 import pandas as pd
+from markupsafe import Markup
 
 from pipeline import grid_stats, names, selection, trial_table
 from pipeline.report import figures
 from pipeline.report.blocks import figure, rule_caption, table
+from pipeline.report.templating import render
 
-E = html.escape
 WEIGHT = "penalty.weight"
 WEIGHT_COLUMN = f"{trial_table.VALUE_PREFIX}{WEIGHT}"
 
@@ -54,44 +53,43 @@ def sensitivity(trials: pd.DataFrame, column: str, rule: str) -> pd.DataFrame:
         columns={WEIGHT_COLUMN: "weight"})
 
 
-def search_section(trials: pd.DataFrame, runs: pd.DataFrame, meta: dict, rule: str, dpi: int) -> str:
+SECTION = ('<section id="search"><h2>Hyperparameter search</h2>'
+           "<p>Budget: {{ '%.0f'|format(budget) }} trials per run (split x model x penalty x seed), the same for every "
+           "method, ERM included; {{ n_runs }} runs searched ({{ n_trials }} trials, MLflow child runs of each run); "
+           "runs with nothing to search ran once. Each selection rule picks the trial with its own validation score "
+           "({{ rules }}), and every number of the grid under a rule comes from the trial that rule picked. The "
+           "searched values are part of each trial's identity: a larger budget trains only the new trials.</p>"
+           "{{ chosen }}{% if sensitivity %}<h3>Penalty-weight sensitivity</h3>"
+           '<p data-selection="{{ peek }}">The target test error of every trial against its penalty weight (mean over '
+           "splits and seeds; checkpoints chosen by {{ rule|rule }}). This view uses target data: a weight read off "
+           "it is chosen with target data, i.e. {{ peek|rule }}. The grid's runs chose their weights with their own "
+           "rule; the table counts how often each was chosen.</p>{{ sensitivity }}{% endif %}</section>")
+
+
+def search_section(trials: pd.DataFrame, runs: pd.DataFrame, meta: dict, rule: str, dpi: int) -> Markup:
     if trials is None or trials.empty:
-        return ""
+        return Markup()
     column = grid_stats.metric_column(runs.columns, meta["metric"], rule)
     label = meta.get("metric_label", meta["metric"])
     budget = pd.to_numeric(runs.get("tag.search.budget", pd.Series(dtype=float)), errors="coerce").max()
-    per_run = trials.groupby("parent_run_id").size()
     rules = "; ".join(f"{selection.label(r)}: {text}" for r, text in (
         (selection.HOLDOUT, "the source validation risk"), (selection.ROTATION, "the rotation curve averaged over "
                                                              "the left-out source groups"),
         (selection.PEEK, "the target validation risk")) if r in meta["rules"])
-    parts = ['<section id="search"><h2>Hyperparameter search</h2>',
-             f"<p>Budget: {budget:.0f} trials per run (split x model x penalty x seed), the same for every method, "
-             f"ERM included; {len(per_run)} runs searched ({len(trials)} trials, MLflow child runs of each run); runs "
-             "with nothing to search ran once. Each selection rule picks the trial with its own validation score "
-             f"({E(rules)}), and every number of the grid under a rule comes from the trial that rule picked. "
-             "The searched values are part of each trial's identity: a larger budget trains only the new trials.</p>",
-             table(chosen_values(trials, rule), rule_caption("Searched values and the runs that selected each",
-                                                             rule), rule)]
+    chosen = table(chosen_values(trials, rule), rule_caption("Searched values and the runs that selected each", rule),
+                   rule)
+    shown = Markup()
     if WEIGHT_COLUMN in trials.columns and trials[WEIGHT_COLUMN].notna().any():
         points = sensitivity(trials, column, rule)
         erm = runs[runs["penalty"] == names.ERM].groupby("model")[column].mean()
         reference = {model: float(erm.get(model, np.nan)) for model in points["model"].unique()}
-        shown = pd.DataFrame({"model": points["model"], "penalty": points["penalty"].map(names.penalty_shown),
-                              "penalty weight": points["weight"],
-                              f"mean {label}, target test block": points["mean"], "trials": points["trials"],
-                              f"runs that selected it ({selection.label(rule)})": points["chosen"],
-                              "ERM of the model (its selected trials)": points["model"].map(reference)})
-        peek = selection.PEEK
-        parts += ["<h3>Penalty-weight sensitivity</h3>",
-                  f'<p data-selection="{peek}">The target test error of every trial against its penalty weight (mean '
-                  f"over splits and seeds; checkpoints chosen by {E(selection.label(rule))}). This view uses target "
-                  f"data: a weight read off it is chosen with target data, i.e. {E(selection.UPPER_BOUND_LABEL)}. The "
-                  "grid's runs chose their weights with their own rule; the table counts how often each was chosen."
-                  "</p>",
-                  figure(figures.weight_sensitivity(points, reference, label, rule), dpi,
-                         f"Penalty-weight sensitivity of {label} — uses target data: {selection.UPPER_BOUND_LABEL}",
-                         peek),
-                  table(shown, f"Penalty-weight sensitivity of {label} — uses target data: "
-                               f"{selection.UPPER_BOUND_LABEL}", peek)]
-    return "".join(parts) + "</section>"
+        rows = pd.DataFrame({"model": points["model"], "penalty": points["penalty"].map(names.penalty_shown),
+                             "penalty weight": points["weight"],
+                             f"mean {label}, target test block": points["mean"], "trials": points["trials"],
+                             f"runs that selected it ({selection.label(rule)})": points["chosen"],
+                             "ERM of the model (its selected trials)": points["model"].map(reference)})
+        caption = f"Penalty-weight sensitivity of {label} — uses target data: {selection.UPPER_BOUND_LABEL}"
+        shown = (figure(figures.weight_sensitivity(points, reference, label, rule), dpi, caption, selection.PEEK)
+                 + table(rows, caption, selection.PEEK))
+    return render(SECTION, budget=budget, n_runs=trials["parent_run_id"].nunique(), n_trials=len(trials), rules=rules,
+                  chosen=chosen, sensitivity=shown, rule=rule, peek=selection.PEEK)
