@@ -148,8 +148,8 @@ def conversion_to_canonical(variable: str, unit: str, reference_temperature_c: f
     `where` names the config field or file position for the error message.
     """
     if variable not in variables.BY_NAME:
-        raise InputError(f"unknown variable '{variable}' (known: {', '.join(variables.BY_NAME)}; a new one goes "
-                         f"into config/variables.yaml)", field=where or "variable")
+        raise InputError(f"unknown variable '{variable}' (known: {', '.join(variables.BY_NAME)}; a new one "
+                         f"goes into config/variables.yaml)", field=where or "variable")
     spelled = normalise_unit(unit)
     if spelled is None:
         raise InputError(f"unknown unit '{unit}' for {variable}", field=where or "unit")

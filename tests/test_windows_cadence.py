@@ -41,7 +41,8 @@ def test_lengths_in_hours_become_steps_of_the_cadence(step):
     windows = build_windows(record, tables_at(step), {"lookback_hours": lookback, "horizon_hours": horizon,
                                                       "stride_hours": stride, "fill_limit_hours": 0})
     assert windows.step_hours == pytest.approx(1 / per_hour)
-    assert windows.train.X.shape[1] == round(lookback * per_hour) and windows.train.y.shape[1] == round(horizon * per_hour)
+    assert windows.train.X.shape[1] == round(lookback * per_hour)
+    assert windows.train.y.shape[1] == round(horizon * per_hour)
     # consecutive rows of a window are consecutive steps: pm25 (the step's index) grows by one per row
     pm25 = windows.unscale_target(windows.train.X[:, :, windows.target_index])
     assert np.allclose(np.diff(pm25, axis=1), 1.0, atol=1e-2)
