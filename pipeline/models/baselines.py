@@ -3,7 +3,8 @@
 Reads window sets (only the target column of X is used: `target_index`); writes nothing. Obeys
 `model.season_hours` (seasonal_naive; cut in steps of the windows' cadence, `step_hours`). Both ignore
 penalties and fit settings (see ClosedFormModel). Both accept `model.level` (pipeline.models.level) so
-that one override covers a whole sweep; it does not change their forecasts, which already follow the window's own level (up to float rounding).
+that one override covers a whole sweep; it does not change their forecasts, which already follow the
+window's own level (up to float rounding).
 """
 
 from __future__ import annotations
