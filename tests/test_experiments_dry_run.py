@@ -40,3 +40,18 @@ def test_experiment_dry_run_schedules_every_planned_run(project, experiment):
     for rule in ("ingest_city", "build_split", "aggregate_grid", "render_report"):
         assert rule in text
     assert len(plan.all_run_records()) > 0
+
+
+@pytest.mark.e2e
+def test_two_forecast_targets_schedule_a_job_per_variable(project):
+    """`target=pm25,no2` on the tiny experiment: the train rule's {variable} wildcard resolves every
+    planned record of both variables (a dry run: no DAG is executed)."""
+    overrides = ["experiment=tiny", "target=pm25,no2"]
+    plan = plan_workflow(overrides, project)
+    result = dry_run(overrides, root=project)
+    assert result.returncode == 0, (result.stdout[-2000:], result.stderr[-2000:])
+    text = result.stdout + result.stderr
+    for variable in ("pm25", "no2"):
+        assert f"runs/{variable}/" in text and f"logs/train_model/{variable}/" in text
+    trained = [job for key, job in plan.jobs.items() if key[1] != "baselines"]
+    assert len(trained) == 2 * len(plan.splits) * len(plan.trainable_models)
