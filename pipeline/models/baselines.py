@@ -65,10 +65,15 @@ class SeasonalNaive(ClosedFormModel):
             raise InputError(f"seasonal_naive needs a lookback of at least {self.hparams_.season_hours} hours, "
                              f"got {self.lookback_} steps of {step_hours:g} h", field="forecast.lookback_hours")
 
+    def _weights(self):
+        # The season in steps depends on the windows' cadence, so a saved state carries it.
+        return {"season_steps": np.array(self.season_steps_, dtype=np.int64)}
+
+    def _set_weights(self, weights) -> None:
+        self.season_steps_ = int(weights["season_steps"])
+
     def _source_positions(self) -> np.ndarray:
-        # A model rebuilt from a saved state was not fitted here: its windows were hourly (the only
-        # cadence before cadences existed), so one step is one hour.
-        season = getattr(self, "season_steps_", self.hparams_.season_hours)
+        season = self.season_steps_
         steps = np.arange(1, self.horizon_ + 1)
         seasons_back = -(-steps // season)  # ceil(h / m)
         return self.lookback_ - 1 + steps - seasons_back * season
