@@ -82,3 +82,14 @@ def test_leave_one_region_out_windows_count_days(ingested):
         predicted = windows.unscale_target(model.predict(windows.test_target.X))
         scores[family] = float(np.mean(np.abs(predicted - windows.unscale_target(windows.test_target.y))))
     assert all(0.0 < score < 200.0 for score in scores.values())  # ug/m3, daily NOx means run 5-370
+
+
+@pytest.mark.parametrize("change, field", [({"station_columns": []}, "cities.aargau.station_columns"),
+                                           ({"variable": "nox2"}, "cities.aargau.variable"),
+                                           ({"station_column": "site"}, "cities.aargau.station_column")])
+def test_a_bad_station_columns_block_names_its_field(tmp_path, change, field):
+    from pipeline.errors import InputError
+    from pipeline.ingest import validate_format
+
+    with pytest.raises(InputError, match=f"data.yaml: {field}:"):
+        validate_format("aargau", {**CONFIG["cities"]["aargau"], **change}, config_file="data.yaml")

@@ -132,6 +132,9 @@ def validate_format(city: str, fmt: dict, reference_temperature_c: float = 25.0,
     if layout == "station_columns_csv":
         if not isinstance(spec["station_columns"], list) or not spec["station_columns"]:
             _fail("must be a non-empty list of column names", config_file, f"{prefix}.station_columns")
+        if spec["variable"] not in BY_NAME:
+            _fail(f"unknown variable '{spec['variable']}' (known: {', '.join(BY_NAME)}; a new one goes into "
+                  f"config/variables.yaml)", config_file, f"{prefix}.variable")
         spec["columns"] = {spec["variable"]: spec["variable"]}  # every cell holds this one variable
     if layout == "long_csv":
         _check_variables(spec["variables"], f"{prefix}.variables", config_file)
