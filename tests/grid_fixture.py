@@ -173,12 +173,13 @@ def shift_table() -> pd.DataFrame:
                          "variables": ["pm25,temp_c"] * 3})
 
 
-def build_report(root: Path, report_cfg: dict, n_boot: int, ground_truth: dict | None = None) -> tuple[str, Path]:
+def build_report(root: Path, report_cfg: dict, n_boot: int, ground_truth: dict | None = None,
+                 targets: tuple[str, ...] = ("pm25",)) -> tuple[str, Path]:
     """The whole fixture (store, grid, QC, splits, shift) rendered to root/results/report.html."""
     from pipeline.aggregate import aggregate
     from pipeline.report.html import render_report
 
-    records, _ = build_grid_store(root)
+    records, _ = build_grid_store(root, targets)
     aggregate(records, root / "results", metric="mae", n_boot=n_boot)
     qc_paths, split_paths = write_side_inputs(root)
     shift_table().to_csv(root / "results" / "shift.csv", index=False)

@@ -201,3 +201,19 @@ def test_without_a_search_the_report_has_no_search_section(report, tmp_path):
     (results / "grid_trials.csv").write_text(",".join(["split_id", "model", "penalty", "run_id"]) + "\n")
     page = render_report(results, results / "plain.html", {"figure_dpi": 40})
     assert 'id="search"' not in page and 'href="#search"' not in page
+
+
+def test_several_forecast_targets_give_a_part_each_with_unique_anchors(report, tmp_path):
+    page, _ = build_report(tmp_path, {"selection": "source-holdout", "figure_dpi": 40, "top_rows": 5},
+                           n_boot=100, ground_truth=GROUND_TRUTH, targets=("pm25", "no2"))
+    parts = re.findall(r'<section id="target-(\w+)" class="target"><h2>Forecast target (\w+) \(([^)]+)\)</h2>', page)
+    assert parts == [("no2", "no2", "ug/m3"), ("pm25", "pm25", "ug/m3")]
+    ids = re.findall(r'\bid="([^"]+)"', page)
+    assert len(ids) == len(set(ids))  # every anchor once, the navigation reaches every part
+    assert all(f'id="{href[1:]}"' in page for href in re.findall(r'href="(#[^"]*)"', page))
+    no2 = page.split('<section id="target-no2"', 1)[1].split('<section id="target-pm25"', 1)[0]
+    assert "MAE of no2, ug/m3" in no2 and "MAE of pm25" not in no2
+    for anchor in ("verdict", "grid", "ranks", "horizon", "shift"):
+        assert f'id="{anchor}-no2"' in no2
+    # the single-target page keeps its anchors and has no part
+    assert 'class="target"' not in report["page"] and 'id="verdict"' in report["page"]

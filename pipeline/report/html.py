@@ -20,11 +20,11 @@ import numpy as np
 import pandas as pd
 from markupsafe import Markup
 
-from pipeline import grid_stats, names, selection
+from pipeline import grid_stats, names, selection, target_sections
 from pipeline.atomic import write_text_atomic
 from pipeline.caution import CAUTION  # one wording of the caution for the CLI and the report
 from pipeline.ingest.qc import summary_row
-from pipeline.report import figures, shift_data
+from pipeline.report import figures, shift_data, targets_html
 from pipeline.report.blocks import figure as _figure, rule_caption as _rule_caption, table as _table
 from pipeline.report.search_html import search_section
 from pipeline.report.style import CSS
@@ -207,10 +207,14 @@ PROVENANCE = ('<section id="provenance"><h2>Provenance</h2><p>Every number above
 
 def provenance_section(runs: pd.DataFrame, meta: dict, rule: str) -> Markup:
     column = grid_stats.metric_column(runs.columns, meta["metric"], rule)
+    several = "targets" in meta  # several forecast variables: each run's in its own unit
+    label = (f"{meta['metric']} of the run's forecast target, in its unit" if several
+             else grid_stats.grid_metric_label(runs, column))
     table = pd.DataFrame({"split": [grid_stats.split_label(s, t) for s, t in zip(runs["sources"], runs["target"])],
+                          **({"forecast target": runs[target_sections.TARGET_PARAM]} if several else {}),
                           "model": runs["model"], "penalty": runs["penalty"].map(names.penalty_shown),
                           "seed": runs["seed"],
-                          f"{grid_stats.grid_metric_label(runs, column)} ({column})": runs[column],
+                          f"{label} ({column})": runs[column],
                           "run_id": runs["run_id"],
                           "code": runs.get("tag.code_digest", ""), "commit": runs.get("tag.git.commit", "")})
     table["commit"] = table["commit"].astype(str).str[:10]
@@ -234,10 +238,23 @@ PAGE = ('<!DOCTYPE html><html lang="en"><head><meta charset="utf-8"><title>{{ ti
         "<body><main><header><h1>{{ title }}</h1><p class='meta'>metric: {{ label }} · headline selection: "
         "{{ rule|rule }} · generated {{ generated }} UTC</p>"
         '<p class="caution" role="note">{{ caution }}</p></header>'
-        '<nav><a href="#verdict">Verdict</a><a href="#setup">Setup</a><a href="#grid">Grid</a>'
+        '<nav>{% if targets %}<a href="#setup">Setup</a>{% for each in targets %}<a href="#target-{{ each }}">'
+        "{{ each }}</a>{% endfor %}{% else %}"
+        '<a href="#verdict">Verdict</a><a href="#setup">Setup</a><a href="#grid">Grid</a>'
         '{% if search %}<a href="#search">Search</a>{% endif %}<a href="#ranks">Ranks</a><a href="#horizon">Horizons'
-        '</a><a href="#shift">Shift</a><a href="#provenance">Provenance</a></nav>{{ sections|join }}'
+        '</a><a href="#shift">Shift</a>{% endif %}<a href="#provenance">Provenance</a></nav>{{ sections|join }}'
         '<footer><p class="caution">{{ caution }}</p></footer></main></body></html>')
+
+
+def result_sections(view: targets_html.TargetView, shift, rule: str, dpi: int, top_rows: int,
+                    ground_truth: dict | None) -> list[Markup]:
+    """The sections of one forecast variable's results: verdict, grid, search, ranks, horizons, shift."""
+    summary = view.summary_all[view.summary_all["selection_rule"] == rule]
+    return [verdict_section(summary, view.meta, rule, ground_truth),
+            grid_section(view.summary_all, view.meta, rule, dpi, top_rows),
+            search_section(view.trials, view.runs, view.meta, rule, dpi),  # empty without a search
+            ranks_section(view.summary_all, view.meta, rule, dpi), curves_section(view.runs, rule, dpi),
+            shift_section(shift, summary, rule, dpi)]
 
 
 def render_report(grid_dir: Path | str, out_path: Path | str, report_cfg: dict, qc_paths=(), split_paths=(),
@@ -248,15 +265,17 @@ def render_report(grid_dir: Path | str, out_path: Path | str, report_cfg: dict, 
     rule = report_cfg.get("selection", selection.HOLDOUT)
     rule = rule if rule in meta["rules"] else meta["rules"][0]
     dpi, top_rows = int(report_cfg.get("figure_dpi", 100)), int(report_cfg.get("top_rows", 12))
-    summary = summary_all[summary_all["selection_rule"] == rule]
     title = report_cfg.get("title", "shiftgrid comparison")
     label = meta.get("metric_label", meta["metric"])
-    search = search_section(trials, runs, meta, rule, dpi)  # empty without a hyperparameter search
-    sections = [verdict_section(summary, meta, rule, ground_truth), setup_section(meta, runs, qc, splits),
-                grid_section(summary_all, meta, rule, dpi, top_rows), search,
-                ranks_section(summary_all, meta, rule, dpi), curves_section(runs, rule, dpi),
-                shift_section(shift, summary, rule, dpi), provenance_section(runs, meta, rule)]
+    views = targets_html.views(runs, summary_all, meta, trials)  # one per forecast variable
+    results = [result_sections(view, shift, rule, dpi, top_rows, ground_truth) for view in views]
+    setup, provenance = setup_section(meta, runs, qc, splits), provenance_section(runs, meta, rule)
+    if len(views) == 1:  # the verdict opens the page
+        sections = [results[0][0], setup, *results[0][1:], provenance]
+    else:  # a part per forecast variable, each opened by its verdict
+        sections = [setup, *(targets_html.part(view.variable, part) for view, part in zip(views, results)), provenance]
     page = str(render(PAGE, title=title, label=label, rule=rule, caution=CAUTION, css=Markup(CSS), sections=sections,
-                      search=bool(search), generated=f"{dt.datetime.now(dt.timezone.utc):%Y-%m-%d %H:%M}"))
+                      search=bool(results[0][2]), targets=[view.variable for view in views if view.variable],
+                      generated=f"{dt.datetime.now(dt.timezone.utc):%Y-%m-%d %H:%M}"))
     write_text_atomic(page, out_path)
     return page
