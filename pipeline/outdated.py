@@ -211,7 +211,8 @@ def explain(jobs: list[PlannedJob], plan, root: Path | str) -> list[str]:
         if job.rule in TRAINING_RULES:
             split_id = job.wildcards.get("split_id", ALL_SPLITS)
             model = job.wildcards.get("model", BASELINES)
-            planned = plan.jobs.get((split_id, model))
+            variable = job.wildcards.get("variable")  # with several forecast targets
+            planned = plan.jobs.get((split_id, model, variable) if variable else (split_id, model))
             families = sorted({u["job"]["model"]["family"] for u in planned.units}) if planned else ["?"]
             # the baselines job covers every split: it is concerned by every city
             cities = plan.split_cities(split_id) if split_id in plan.splits else list(plan.cities)
