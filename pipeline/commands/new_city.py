@@ -36,7 +36,7 @@ def add_arguments(parser) -> None:
 def _files(root: Path, patterns: list[str]) -> list[Path]:
     found = []
     for pattern in patterns:
-        matches = sorted(glob.glob(str(root / pattern))) or ([str(root / pattern)] if (root / pattern).is_file() else [])
+        matches = sorted(glob.glob(str(root / pattern)))
         if not matches:
             raise InputError("no file matches", file=pattern, field="files")
         found += [Path(m) for m in matches if Path(m).is_file()]

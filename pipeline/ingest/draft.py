@@ -4,13 +4,9 @@ Reads the given dump files as text (every record of each, up to `max_rows` per f
 Proposes the keys of a format dict (pipeline.ingest.formats): layout, files, encoding, separator,
 decimal, header_line, station_column, time (pipeline.ingest.draft_clock), columns / variables,
 units, sentinels, each with a confidence (high: read from the data; medium: likely; low: a guess to
-check) and the questions the data cannot answer. `render` writes the draft as a data-config YAML
-block whose comments carry the confidences, evidence and questions.
-
-Names of columns are matched against the canonical variables (pipeline.variables) and the spellings
-agencies use for them (SYNONYMS); units against the spellings pipeline.units knows. Where a unit cannot
-be read from the header, the values decide when they can (a pressure near 1000 is in hPa, near 30 in
-inHg); gases, wind speed and rain stay guesses: the same numbers fit several units.
+check) and the questions the data cannot answer; columns and units come from
+pipeline.ingest.draft_columns. `render` writes the draft as a data-config YAML block whose comments carry
+the confidences, evidence and questions.
 """
 
 from __future__ import annotations
@@ -25,38 +21,14 @@ import yaml
 
 from pipeline.errors import InputError
 from pipeline.ingest.draft_clock import ClockDraft, draft_clock
+from pipeline.ingest.draft_columns import (Entry, by_values, find_sentinels, guess_unit, is_numeric, long_columns,
+                                           match_variable, numbers_of, station_column, unit_in_name)
 from pipeline.ingest.raw import read_csv_text
 from pipeline.textfile import read_text
-from pipeline.units import conversion_to_canonical, normalise_unit
+from pipeline.units import conversion_to_canonical
 from pipeline.variables import BY_NAME
 
-# Spellings seen in deliveries (lower case, separators removed) -> canonical variable. A column whose
-# name is a canonical variable's own name matches too, so a variable declared in config needs no entry.
-SYNONYMS = {
-    "pm25": ("pm25", "pm2", "pmfine", "finepm"), "pm10": ("pm10",), "no2": ("no2", "nitrogendioxide"),
-    "o3": ("o3", "ozone"), "so2": ("so2", "sulphurdioxide", "sulfurdioxide"), "co": ("co", "carbonmonoxide"),
-    "temp_c": ("temp", "temperature", "t", "t2m", "tair", "ta", "airtemp", "airtemperature"),
-    "rh_pct": ("rh", "humidity", "humid", "hum", "relativehumidity"),
-    "wind_speed_ms": ("ws", "wspd", "windspeed", "wsp", "wind"),
-    "wind_dir_deg": ("wd", "wdir", "winddir", "winddirection"),
-    "pressure_hpa": ("p", "pres", "press", "pressure", "psfc", "slp", "airpressure"),
-    "precip_mm": ("rain", "precip", "prcp", "rainfall", "precipitation"),
-    "aux": ("aux", "traffic", "trafficidx", "trafficindex"),
-}
-STATION_NAMES = ("station", "stationid", "stationcode", "site", "siteid", "sitecode", "sid", "code", "origin",
-                 "location", "stn", "monitor", "id")
-VALUE_NAMES = ("value", "val", "concentration", "measurement", "reading", "obs")
-SENTINEL_CANDIDATES = (-9999.0, -999.9, -999.0, -888.0, -99.9, -99.0, 9999.0, 99999.0)
 SEPARATORS = (",", ";", "\t", "|")
-CONFIDENCE_ORDER = {"high": 2, "medium": 1, "low": 0}
-
-
-@dataclass
-class Entry:
-    """One proposed key with its value, confidence and a word on why."""
-    value: object
-    confidence: str
-    why: str = ""
 
 
 @dataclass
@@ -82,22 +54,6 @@ class Draft:
         if self.units:
             block["units"] = {variable: entry.value for variable, entry in self.units.items()}
         return block
-
-
-def _key(name: str) -> str:
-    return re.sub(r"[^a-z0-9]", "", str(name).lower())
-
-
-def _numbers(text: pd.Series, decimal: str) -> pd.Series:
-    cleaned = text.astype(str).str.strip()
-    if decimal != ".":
-        cleaned = cleaned.str.replace(decimal, ".", regex=False)
-    return pd.to_numeric(cleaned, errors="coerce")
-
-
-def _is_numeric(text: pd.Series, decimal: str) -> bool:
-    filled = text.astype(str).str.strip() != ""
-    return bool(filled.any()) and _numbers(text[filled], decimal).notna().mean() >= 0.9
 
 
 # -- reading the sample ------------------------------------------------------------------------------
@@ -191,123 +147,19 @@ def read_sample(paths: list[Path], max_rows: int) -> tuple[pd.DataFrame, dict[st
 
 # -- columns --------------------------------------------------------------------------------------------
 
-def _unit_in_name(name: str) -> tuple[str, str | None]:
-    """(name without a unit, the unit written in it): 'PM2.5 (ug/m3)' -> ('PM2.5', 'ug/m3'), 'temp_F' -> ('temp', 'degF')."""
-    bracket = re.search(r"\s*[\(\[]([^\)\]]+)[\)\]]\s*$", name)
-    if bracket and normalise_unit(bracket.group(1)):
-        return name[:bracket.start()], normalise_unit(bracket.group(1))
-    head, sep, tail = name.rpartition("_")
-    if sep and head and normalise_unit(tail) and tail.lower() not in ("1",):
-        return head, normalise_unit(tail)
-    return name, None
-
-
-def match_variable(name: str) -> tuple[str | None, str]:
-    """(canonical variable, confidence) for a column name or a code of a long dump."""
-    bare, _ = _unit_in_name(name)
-    whole, last = _key(bare), _key(bare.rsplit(".", 1)[-1])
-    for candidate, confidence in ((whole, "high"), (last, "medium")):
-        for variable in BY_NAME:
-            spellings = (_key(variable), *SYNONYMS.get(variable, ()))
-            if candidate in spellings:
-                short = len(candidate) == 1  # "t" or "p" alone is likely but not certain
-                return variable, "medium" if short else confidence
-    return None, ""
-
-
-def _by_values(numbers: pd.Series) -> tuple[str | None, str]:
-    """Variables whose values give them away: pressure (narrow, near 1000 hPa) and wind direction."""
-    numbers = numbers.dropna()
-    if numbers.empty:
-        return None, ""
-    low, high, median = numbers.quantile(0.01), numbers.quantile(0.99), numbers.median()
-    if 850 <= low and high <= 1100 and high - low < 120:
-        return "pressure_hpa", "values between 850 and 1100 with a narrow spread look like air pressure"
-    if 0 <= numbers.min() and numbers.max() <= 360 and high - low > 250 and (numbers % 1 == 0).mean() > 0.9:
-        return "wind_dir_deg", "whole numbers spread over 0..360 look like wind direction"
-    return None, f"values {low:.4g} .. {high:.4g}, median {median:.4g}"
-
-
-def guess_unit(variable: str, numbers: pd.Series) -> Entry:
-    """The delivered unit of a variable from its values, when they can tell."""
-    canonical = BY_NAME[variable].unit
-    numbers = numbers.dropna()
-    numbers = numbers[~numbers.isin(SENTINEL_CANDIDATES)]
-    if numbers.empty:
-        return Entry(canonical, "low", "no numbers to judge by")
-    median, high, low = float(numbers.median()), float(numbers.quantile(0.99)), float(numbers.quantile(0.01))
-    if variable == "temp_c":
-        if low > 180:
-            return Entry("K", "high", f"median {median:.1f}: kelvin")
-        if high > 50 or median > 35:
-            return Entry("degF", "medium", f"median {median:.1f}, 99th percentile {high:.1f}: too warm for degC")
-        return Entry("degC", "medium", f"median {median:.1f}")
-    if variable == "rh_pct":
-        return Entry("fraction", "high", "values within 0..1") if high <= 1.0 else Entry("%", "high")
-    if variable == "pressure_hpa":
-        for unit, (lo, hi) in {"hPa": (800, 1100), "kPa": (80, 110), "inHg": (23, 33), "mmHg": (600, 800),
-                               "Pa": (80000, 110000)}.items():
-            if lo <= median <= hi:
-                return Entry(unit, "high", f"median {median:.1f}")
-    if variable in ("wind_dir_deg", "aux") or canonical == "ug/m3" and variable.startswith("pm"):
-        return Entry(canonical, "high" if variable != "aux" else "medium")
-    options = {"wind_speed_ms": "km/h, mph or knots", "precip_mm": "inch"}
-    gas = getattr(BY_NAME[variable], "molar_mass_g_per_mol", None) is not None  # a mixing ratio fits too
-    alternative = options.get(variable, ("ppm" if canonical == "mg/m3" else "ppb") if gas else "another unit")
-    return Entry(canonical, "low", f"median {median:.4g}: {canonical} assumed, {alternative} fit the values too")
-
-
-def find_sentinels(table: pd.DataFrame, columns: list[str], decimal: str) -> list:
-    if not columns:
-        return []
-    values = pd.concat([_numbers(table[c], decimal) for c in columns], ignore_index=True)
-    return [int(v) if v % 1 == 0 else v for v in SENTINEL_CANDIDATES if (values == v).any()]
-
-
-def _station_column(table: pd.DataFrame, exclude: set, decimal: str) -> tuple[str | None, str]:
-    text_columns = [c for c in table.columns if c not in exclude and not _is_numeric(table[c], decimal)]
-    for column in text_columns:
-        if _key(column) in STATION_NAMES:
-            return column, "high"
-    by_size = sorted(text_columns, key=lambda c: table[c].nunique())
-    return (by_size[0], "medium") if by_size else (None, "")
-
-
-def _long_columns(table: pd.DataFrame, exclude: set, decimal: str) -> dict | None:
-    """{variable_column, value_column[, unit_column]} when one column names a variable on each row."""
-    text = [c for c in table.columns if c not in exclude and not _is_numeric(table[c], decimal)]
-    variable_column = None
-    for column in text:
-        codes = table[column].str.strip().unique()
-        if len(codes) >= 2 and sum(match_variable(code)[0] is not None for code in codes) >= len(codes) / 2:
-            variable_column = column
-            break
-    if variable_column is None:
-        return None
-    numeric = [c for c in table.columns if c not in exclude and _is_numeric(table[c], decimal)]
-    if not numeric:
-        return None
-    value_column = next((c for c in numeric if _key(c) in VALUE_NAMES), numeric[0])
-    found = {"variable_column": variable_column, "value_column": value_column}
-    for column in text:
-        if column != variable_column and table[column].map(lambda u: normalise_unit(u) is not None).mean() > 0.9:
-            found["unit_column"] = column
-    return found
-
-
 def _map_wide(draft: Draft, table: pd.DataFrame, columns: list[str], decimal: str) -> None:
     for column in columns:
-        numbers = _numbers(table[column], decimal)
+        numbers = numbers_of(table[column], decimal)
         variable, confidence = match_variable(column)
         why = "named so"
         if variable is None:
-            variable, why = _by_values(numbers)
+            variable, why = by_values(numbers)
             confidence = "low"
         if variable is None or variable in {e.value for e in draft.mapping.values()}:
             draft.unmapped[column] = why if variable is None else f"also looks like {variable}"
             continue
         draft.mapping[column] = Entry(variable, confidence, why)
-        _, written = _unit_in_name(column)
+        _, written = unit_in_name(column)
         unit = Entry(written, "high", "written in the column name") if written else guess_unit(variable, numbers)
         try:
             conversion_to_canonical(variable, unit.value)
@@ -325,7 +177,7 @@ def _map_long(draft: Draft, table: pd.DataFrame, long: dict, decimal: str) -> No
             continue
         draft.mapping[code] = Entry(variable, confidence, "named so")
         if "unit_column" not in long:
-            draft.units[variable] = guess_unit(variable, _numbers(table.loc[codes == code, long["value_column"]],
+            draft.units[variable] = guess_unit(variable, numbers_of(table.loc[codes == code, long["value_column"]],
                                                                    decimal))
 
 
@@ -357,7 +209,7 @@ def draft_format(paths: list[Path], city: str, raw_dir: Path | str = "data/raw",
     for key in ("encoding", "separator", "decimal", "header_line"):
         if key in reading:
             draft.entries[key] = reading[key]
-    station, station_confidence = _station_column(table, set(), decimal)
+    station, station_confidence = station_column(table, set(), decimal)
     # The clock is drafted after the station (its DST test compares stations), the columns after both.
     clock = draft_clock(table, station, [c for c in table.columns if c != station])
     if clock is None:
@@ -365,7 +217,7 @@ def draft_format(paths: list[Path], city: str, raw_dir: Path | str = "data/raw",
                          file=str(paths[0]), field="time")
     draft.clock = clock
     used = set(clock.columns) | set(clock.spare)
-    station, station_confidence = _station_column(table, used, decimal)
+    station, station_confidence = station_column(table, used, decimal)
     if station is None and draft.entries["layout"].value != "jsonl":
         _station_columns(draft, table, [c for c in table.columns if c not in used], decimal, paths)
         return _finish(draft, table, draft.entries["station_columns"].value, decimal)
@@ -374,7 +226,7 @@ def draft_format(paths: list[Path], city: str, raw_dir: Path | str = "data/raw",
     draft.entries["station_column"] = Entry(station, station_confidence)
     draft.station_codes = {str(k): int(v) for k, v in table[station].str.strip().value_counts().head(30).items()}
     used.add(station)
-    long = _long_columns(table, used, decimal) if draft.entries["layout"].value != "jsonl" else None
+    long = long_columns(table, used, decimal) if draft.entries["layout"].value != "jsonl" else None
     if long:
         draft.entries["layout"] = Entry("long_csv", "high", f"{long['variable_column']} names a variable on each row")
         for key, column in long.items():
@@ -383,7 +235,7 @@ def draft_format(paths: list[Path], city: str, raw_dir: Path | str = "data/raw",
         value_columns = [long["value_column"]]
     else:
         value_columns = [c for c in table.columns if c not in used]
-        _map_wide(draft, table, [c for c in value_columns if _is_numeric(table[c], decimal)], decimal)
+        _map_wide(draft, table, [c for c in value_columns if is_numeric(table[c], decimal)], decimal)
         for column in value_columns:
             if column not in draft.mapping and column not in draft.unmapped:
                 draft.unmapped[column] = "not numbers"
@@ -393,7 +245,7 @@ def draft_format(paths: list[Path], city: str, raw_dir: Path | str = "data/raw",
 def _station_columns(draft: Draft, table: pd.DataFrame, columns: list[str], decimal: str, paths: list[Path]) -> None:
     """No column holds a station code: one column per station (layout station_columns_csv), one variable,
     named by the file name when it can be (nox_2004.csv) and asked otherwise."""
-    numeric = [c for c in columns if _is_numeric(table[c], decimal)]
+    numeric = [c for c in columns if is_numeric(table[c], decimal)]
     if len(numeric) < 2 or any(match_variable(c)[0] for c in numeric):
         raise InputError("no text column could hold the station code", file=str(paths[0]), field="station_column")
     draft.entries["layout"] = Entry("station_columns_csv", "medium", "no station column; number columns "
@@ -407,7 +259,7 @@ def _station_columns(draft: Draft, table: pd.DataFrame, columns: list[str], deci
         draft.questions.append("which variable do the station columns hold? (variable: ...)")
         return
     draft.entries["variable"] = Entry(variable, "medium", "named in the file name")
-    values = pd.concat([_numbers(table[c], decimal) for c in numeric], ignore_index=True)
+    values = pd.concat([numbers_of(table[c], decimal) for c in numeric], ignore_index=True)
     draft.units[variable] = guess_unit(variable, values)
 
 
