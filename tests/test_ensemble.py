@@ -73,3 +73,21 @@ def test_only_affine_chains_without_dropout_are_stacked():
     with pytest.raises(ValueError, match="stacked"):
         train_ensemble(lambda: RecurrentNet("lstm", 2, 3, 8, 1, 0.0), make_windows((20, 20), seed=0), seeds=[0, 1],
                        fit_config=FitConfig(max_steps=2))
+
+
+@pytest.mark.parametrize("family, params", [("linear", {}), ("mlp", {"hidden": 8}), ("lstm", {"hidden": 4})])
+def test_models_fitted_together_equal_models_fitted_alone(family, params):
+    from pipeline.models import build_model
+    from pipeline.models.neural import TorchForecaster
+
+    train = make_windows((40, 30), seed=0)
+    val = {"source": make_windows((10, 10), seed=1)}
+    cfg = {"max_steps": 30, "batch_size": 16, "eval_every": 5, "patience": 2, "lr": 2e-2}
+    together = TorchForecaster.fit_together([build_model(family, params, seed=s) for s in SEEDS], train, val,
+                                            build_penalty("vrex", 2.0, 5), cfg)
+    probe = make_windows((20,), seed=9).X
+    for seed, model in zip(SEEDS, together):
+        alone = build_model(family, params, seed=seed).fit(train, val, build_penalty("vrex", 2.0, 5), cfg)
+        assert (model.best_step_, model.snapshot_steps_) == (alone.best_step_, alone.snapshot_steps_)
+        assert all(torch.equal(a, b) for a, b in zip(model.state_dict().values(), alone.state_dict().values()))
+        assert np.array_equal(model.predict(probe), alone.predict(probe))
