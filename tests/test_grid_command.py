@@ -116,7 +116,7 @@ def test_each_forecast_target_has_its_own_section_and_unit(results, two_targets)
     assert "pm25" not in sections[1].replace("forecast target", "")  # no2's grid holds no pm25 cell
     # pm25's section is the single-target grid, line for line
     _, single = grid(results)
-    assert sections[2].split("\n", 1)[1].rstrip() == single.rstrip()
+    assert sections[2].split("\n", 2)[2].rstrip() == single.rstrip()
     _, csv_text = grid(two_targets, "--format", "csv")
     table = pd.read_csv(io.StringIO(csv_text))
     assert table.columns[0] == "target_variable" and len(table) == 2 * len(pd.read_csv(io.StringIO(grid(results, "--format", "csv")[1])))

@@ -102,7 +102,9 @@ def format_table(summary: pd.DataFrame) -> str:
     parts = target_sections.table_sections(summary)
     if len(parts) == 1:
         return _format_section(summary)
-    return "\n\n".join(f"== forecast target {variable} ==\n" + _format_section(part) for variable, part in parts)
+    note = "each forecast target is its own grid: its ranks, tests and Holm family stay within it"
+    return "\n\n".join(f"== forecast target {variable} ==\n{note}\n" + _format_section(part)
+                       for variable, part in parts)
 
 
 def _format_section(summary: pd.DataFrame) -> str:
