@@ -23,6 +23,7 @@ import pandas as pd
 from pipeline import resampling, selection, stats
 from pipeline.window_stats import loss_for
 from pipeline.errors import InputError
+from pipeline.metrics import EXCEEDANCE_SCORES
 from pipeline.names import ERM, NOT_APPLICABLE, penalty_shown
 from pipeline.variables import BY_NAME
 
@@ -108,7 +109,7 @@ def available_rules(runs: pd.DataFrame) -> list[str]:
             if any(col.startswith(f"{rule}.") and runs[col].notna().any() for col in runs.columns)]
 
 
-THRESHOLD_SCORES = frozenset({"pod", "far", "csi", "ets", "bias"})
+THRESHOLD_SCORES = frozenset(EXCEEDANCE_SCORES)
 _PLACES = (("source_", " on the source test block"), ("gap_", ", target minus source"),
            ("worst_source_env_", " in the worst source environment"), ("target_", ""))
 

@@ -17,9 +17,9 @@ import numpy as np
 
 from pipeline.errors import InputError
 
-EXCEEDANCE_KEYS = ("hits", "false_alarms", "misses", "correct_negatives",
-                   "pod", "far", "csi", "ets", "bias")
-HEADLINE_KEYS = ("mse", "rmse", "mae", "mase", "pod", "far", "csi", "ets", "bias")
+EXCEEDANCE_SCORES = ("pod", "far", "csi", "ets", "bias")  # scores of the exceedance contingency table
+EXCEEDANCE_KEYS = ("hits", "false_alarms", "misses", "correct_negatives", *EXCEEDANCE_SCORES)
+HEADLINE_KEYS = ("mse", "rmse", "mae", "mase", *EXCEEDANCE_SCORES)  # forecast_scores' keys, in its order
 SEASON_HOURS = 24  # seasonal period m of the MASE scale: the daily cycle of hourly series
 
 
@@ -179,7 +179,7 @@ def forecast_scores(y, yhat, stations, scales: dict, threshold: float) -> dict[s
     scores = {"mse": mse(y_arr, yhat_arr), "rmse": rmse(y_arr, yhat_arr),
               "mae": mae(y_arr, yhat_arr), "mase": mase_over_stations(y_arr, yhat_arr, stations, scales)}
     table = exceedance(y_arr, yhat_arr, threshold)
-    scores.update({key: float(table[key]) for key in ("pod", "far", "csi", "ets", "bias")})
+    scores.update({key: float(table[key]) for key in EXCEEDANCE_SCORES})
     for step, value in enumerate(per_horizon(y_arr, yhat_arr, mae), start=1):
         scores[f"mae_h{step:02d}"] = float(value)
     return scores

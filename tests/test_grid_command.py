@@ -125,3 +125,12 @@ def test_each_forecast_target_has_its_own_section_and_unit(results, two_targets)
     cfg = SimpleNamespace(report=SimpleNamespace(metric="mae", selection="source-holdout", top_rows=2))
     top = top_of_grid(two_targets, cfg)
     assert top.count("top of the grid") == 2 and top.count("Friedman over 3 target cities") == 2
+
+
+def test_the_baselines_penalty_reads_n_a_and_is_stored_na_both_ways():
+    from pipeline import names
+
+    assert names.penalty_shown(names.NOT_APPLICABLE) == "n/a" and names.penalty_label("n/a") == names.NOT_APPLICABLE
+    for penalty in ("erm", "irm", "vrex", "groupdro", names.NOT_APPLICABLE):  # a penalty's own name passes unchanged
+        assert names.penalty_label(names.penalty_shown(penalty)) == penalty
+    assert names.penalty_shown("irm") == "irm"

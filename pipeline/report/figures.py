@@ -19,6 +19,7 @@ import numpy as np  # noqa: E402
 import pandas as pd  # noqa: E402
 
 from pipeline import grid_stats, names, selection  # noqa: E402
+from pipeline.metrics import EXCEEDANCE_SCORES  # noqa: E402
 
 BEST_MARK = "★"  # marks the best cell of a split in addition to its outline (never colour alone)
 plt.rcParams.update({"font.size": 9, "axes.titlesize": 10, "figure.titlesize": 11, "axes.spines.top": False,
@@ -142,13 +143,14 @@ def horizon_curves(runs: pd.DataFrame, rule: str, variable: str):
     return fig
 
 
-EXCEEDANCE_SCORES = ("pod", "far", "csi", "ets")
+# The scores on a 0-1 scale; bias (best at 1, unbounded) would flatten their bars.
+BARRED_SCORES = tuple(s for s in EXCEEDANCE_SCORES if s not in grid_stats.BEST_AT_ONE)
 
 
 def exceedance_bars(runs: pd.DataFrame, rule: str, event: str | None = None):
     """POD, FAR, CSI, ETS of each model+penalty, averaged over seeds and splits (NaN-aware); `event` names
     the scored event (grid_stats.threshold_note)."""
-    columns = [f"{rule}.target_{score}" for score in EXCEEDANCE_SCORES if f"{rule}.target_{score}" in runs.columns]
+    columns = [f"{rule}.target_{score}" for score in BARRED_SCORES if f"{rule}.target_{score}" in runs.columns]
     table = runs.assign(combo=[grid_stats.combo_label(m, p) for m, p in zip(runs["model"], runs["penalty"])])
     means = table.groupby(["combo", "split_id"])[columns].mean().groupby(level="combo").mean()
     fig, ax = plt.subplots(figsize=(max(6.5, 0.9 * len(means) + 2.5), 3.6))
