@@ -42,10 +42,35 @@ def _make_penalty(job: dict):
                          **spec.get("extra", {}))
 
 
-def _fit(job: dict, seed: int, train, val: dict):
+def _model(job: dict, seed: int):
     params = {k: v for k, v in job["model"].items() if k != "family"}
-    model = build_model(job["model"]["family"], params, seed=seed)
-    return model.fit(train, val=val, penalty=_make_penalty(job), fit_config=FitConfig(**job["fit"]))
+    return build_model(job["model"]["family"], params, seed=seed)
+
+
+def _fit(job: dict, seed: int, train, val: dict):
+    return _model(job, seed).fit(train, val=val, penalty=_make_penalty(job), fit_config=FitConfig(**job["fit"]))
+
+
+class SeedGroup:
+    """The seeds of one job slice whose main fits train together (pipeline.ensemble), on the first seed's
+    turn; each later seed takes its model, bit-identical to the one its own fit would give."""
+
+    def __init__(self, job: dict, seeds: list[int]):
+        self.job, self.seeds, self.models = job, list(seeds), None
+
+    @staticmethod
+    def worthwhile(job: dict, seeds: list[int], train) -> bool:
+        """True when the family trains seeds together (linear, mlp; see TorchForecaster.fit_together)."""
+        model = _model(job, seeds[0])
+        return len(seeds) > 1 and getattr(model, "trains_together", lambda _: False)(train)
+
+    def fit(self, seed: int, train, val: dict):
+        if self.models is None:
+            models = [_model(self.job, s) for s in self.seeds]
+            fitted = type(models[0]).fit_together(models, train, val, _make_penalty(self.job),
+                                                  FitConfig(**self.job["fit"]))
+            self.models = dict(zip(self.seeds, fitted))
+        return self.models.pop(seed)
 
 
 def validation_history(model, val: dict) -> list[dict]:
@@ -132,11 +157,12 @@ def state_for_saving(model) -> dict:
             for k, v in state.items()}
 
 
-def run_seed(job: dict, seed: int, windows, split: dict, station_city: dict) -> dict:
-    """Fit one seed and evaluate it under every configured selection rule."""
+def run_seed(job: dict, seed: int, windows, split: dict, station_city: dict, group: SeedGroup | None = None) -> dict:
+    """Fit one seed (through its `group` when it trains with its siblings) and evaluate it under every
+    configured selection rule."""
     started = time.perf_counter()
     val = {"source": windows.val_source, "target": windows.val_target}
-    model = _fit(job, seed, windows.train, val)
+    model = group.fit(seed, windows.train, val) if group is not None else _fit(job, seed, windows.train, val)
     fit_seconds = time.perf_counter() - started
     primary = job["selection"]["rule"]
     rules = list(dict.fromkeys([primary, *job["selection"]["also"]]))

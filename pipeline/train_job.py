@@ -22,7 +22,8 @@ from pipeline import names, provenance, run_state, selection, tracking, twins
 from pipeline import search, search_job
 from pipeline.config import canonical_json
 from pipeline.atomic import write_json_atomic
-from pipeline.train import history_curves, predictions_frame, run_seed, state_for_saving, station_city_map
+from pipeline.train import (SeedGroup, history_curves, predictions_frame, run_seed, state_for_saving,
+                            station_city_map)
 from pipeline.windows import ForecastConfig, build_windows
 
 
@@ -88,7 +89,7 @@ def make_record(run_id: str, experiment: str, experiment_id: str, tracking_uri: 
 
 
 def _train_and_log(client, experiment_id: str, unit: dict, split: dict, windows, station_city: dict,
-                   code_digest: str, digest: str, prepare_seconds: float):
+                   code_digest: str, digest: str, prepare_seconds: float, group: SeedGroup | None = None):
     job, seed = unit["job"], unit["seed"]
     tags = tags_for(split, job, seed, code_digest)
     tags["unit_digest"] = digest
@@ -96,7 +97,7 @@ def _train_and_log(client, experiment_id: str, unit: dict, split: dict, windows,
     # RUNNING while it trains: a job killed now leaves a run the next job can close (pipeline.run_state)
     run_id = run_state.start_run(client, experiment_id, run_name, tags)
     with run_state.closed_on_failure(client, run_id):
-        outcome = run_seed(job, seed, windows, split, station_city)
+        outcome = run_seed(job, seed, windows, split, station_city, group)
         outcome["metrics"]["prepare_seconds"] = prepare_seconds
         tags["selection_label"] = selection.label(outcome["primary"])
         params = tracking.flatten({k: v for k, v in job.items() if k != "model_name"})
@@ -125,8 +126,13 @@ def run_train_job(split_path: Path | str, units: list[dict], record_paths: list[
     client = tracking.client_for(tracking_uri)
     experiment_id = tracking.experiment_id(client, experiment)
     windows = station_city = prepare_seconds = None
-    done, trials = {}, {}
-    for index, unit, record_path in search_job.expand(units, record_paths):  # a searched unit: its trials
+    done, trials, groups = {}, {}, {}
+
+    def current_run(job: dict, seed: int):
+        return tracking.find_current_run(client, experiment_id, unit_digest(job, seed, split)) if reuse else None
+
+    expanded = list(search_job.expand(units, record_paths))  # a searched unit: its trials
+    for position, (index, unit, record_path) in enumerate(expanded):
         job, seed = unit["job"], unit["seed"]
         digest = unit_digest(job, seed, split)
         found = tracking.find_current_run(client, experiment_id, digest) if reuse else None
@@ -140,8 +146,15 @@ def run_train_job(split_path: Path | str, units: list[dict], record_paths: list[
                 windows = build_windows(split, tables, ForecastConfig(**job["forecast"]))
                 station_city = station_city_map(tables)
                 prepare_seconds = time.perf_counter() - started  # reading and windowing: real work
+            slice_key = canonical_json(job)
+            if slice_key not in groups:  # this seed and the later ones of the same slice that need training
+                seeds = [seed] + [later["seed"] for _, later, _ in expanded[position + 1:]
+                                  if canonical_json(later["job"]) == slice_key
+                                  and current_run(later["job"], later["seed"]) is None]
+                groups[slice_key] = SeedGroup(job, seeds) if SeedGroup.worthwhile(job, seeds, windows.train) else None
             run_id, primary, metrics, identity = _train_and_log(
-                client, experiment_id, unit, split, windows, station_city, code_digest, digest, prepare_seconds)
+                client, experiment_id, unit, split, windows, station_city, code_digest, digest, prepare_seconds,
+                groups[slice_key])
             superseded = tracking.supersede_previous(client, experiment_id, identity, run_id) if supersede else []
             record = make_record(run_id, experiment, experiment_id, tracking_uri, split, job, seed, primary,
                                  metrics, superseded, reused=False)

@@ -2,6 +2,7 @@
 
 import json
 
+import numpy as np
 import pytest
 
 from synthetic_clean import clean_table, station_table
@@ -65,3 +66,26 @@ def test_without_reuse_every_unit_retrains_deterministically(setting):
                           reuse=False)
     assert again[0]["run_id"] != first[0]["run_id"]
     assert again[0]["metrics"] == first[0]["metrics"]  # same seed, same machine: identical results
+
+
+def test_seeds_trained_together_log_what_each_seed_logs_alone(setting, monkeypatch):
+    from pipeline import ensemble
+
+    folder, uri = setting
+    fits_together = []
+    real = ensemble.train_ensemble
+    monkeypatch.setattr(ensemble, "train_ensemble", lambda *args: fits_together.append(args[-1]) or real(*args))
+    units = [{"job": job("linear", {}, penalty="vrex"), "seed": seed} for seed in (0, 1, 2)]
+    together = run_train_job(folder / "split.json", units, [folder / f"t{s}.json" for s in (0, 1, 2)], uri, "unit",
+                             "c1", supersede=False, reuse=False)  # one job: the three seeds as one ensemble
+    assert fits_together == [[0, 1, 2]]
+    client = client_for(uri)
+    timings = {"fit_seconds", "compute_seconds", "prepare_seconds"}
+    for unit, record in zip(units, together):
+        alone = run_train_job(folder / "split.json", [unit], [folder / "alone.json"], uri, "unit", "c1",
+                              supersede=False, reuse=False)[0]
+        logged, logged_alone = (client.get_run(r["run_id"]).data.metrics for r in (record, alone))
+        # exact equality, NaN equal to NaN (undefined exceedance scores)
+        np.testing.assert_equal({k: v for k, v in logged.items() if k not in timings},
+                                {k: v for k, v in logged_alone.items() if k not in timings})
+    assert len({record["metrics"]["target_mae"] for record in together}) == 3  # the seeds differ

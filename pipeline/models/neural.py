@@ -63,23 +63,29 @@ class TorchForecaster(ForecastModel):
         """Fit models that differ only in their seed, each exactly as its own `fit` would. Where the network
         allows (pipeline.ensemble.stackable: linear, mlp without dropout, level none) all seeds train as one
         ensemble, otherwise one after the other."""
-        import torch
-
-        from pipeline.ensemble import stackable, train_ensemble
+        from pipeline.ensemble import train_ensemble
 
         first = models[0]
         if any(type(model) is not type(first) or model.params != first.params for model in models):
             raise ValueError("fit_together needs models of one family and hyperparameters (seeds may differ)")
         if isinstance(fit_config, dict):
             fit_config = FitConfig.from_dict(fit_config)
+        if len(models) == 1 or not first.trains_together(train):
+            return [model.fit(train, val=val, penalty=penalty, fit_config=fit_config) for model in models]
         for model in models:
             model._start_fit(train)
-        with torch.random.fork_rng(devices=[]):  # building a probe network draws init values: keep RNG
-            together = len(models) > 1 and stackable(first._network())
-        if not together:
-            return [model.fit(train, val=val, penalty=penalty, fit_config=fit_config) for model in models]
         fits = train_ensemble(first._network, train, val, penalty, fit_config, [model.seed for model in models])
         return [model._adopt(network, result) for model, (network, result) in zip(models, fits)]
+
+    def trains_together(self, train) -> bool:
+        """True when seeds of this model on windows like `train` train as one ensemble (fit_together)."""
+        import torch
+
+        from pipeline.ensemble import stackable
+
+        self._start_fit(train)
+        with torch.random.fork_rng(devices=[]):  # building a probe network draws init values: keep RNG
+            return stackable(self._network())
 
     def _adopt(self, network, result) -> "TorchForecaster":
         """Take a finished fit's network and results (pipeline.train_loop.TrainResult)."""
