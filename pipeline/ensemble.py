@@ -35,10 +35,10 @@ import torch
 from torch import nn
 
 from pipeline.fit_config import FitConfig
-from pipeline.penalties import Penalty, build_penalty
+from pipeline.penalties import Penalty
 from pipeline.sampling import make_sampler
-from pipeline.train_loop import (EVAL_CHUNK, FitProgress, TrainResult, _check_batches, check_fit_inputs,
-                                 copy_state, make_optimizer, training_tensors, validation_scores)
+from pipeline.train_loop import (EVAL_CHUNK, FitProgress, TrainResult, _check_batches, copy_state,
+                                 make_optimizer, prepare_fit, training_tensors, validation_scores)
 
 
 def affine_layers(network: nn.Module) -> list[tuple[str, nn.Linear]] | None:
@@ -107,11 +107,7 @@ def train_ensemble(build_network, train, val: dict | None = None, penalty: Penal
     Each result's fit_seconds is its share of the ensemble's wall time (the total over the number of seeds).
     """
     started = time.perf_counter()
-    cfg = fit_config if fit_config is not None else FitConfig()
-    penalty = penalty if penalty is not None else build_penalty("erm")
-    val = dict(val or {})
-    check_fit_inputs(train, val, penalty, cfg)
-    torch.set_num_threads(cfg.threads)
+    cfg, penalty, val = prepare_fit(train, val, penalty, fit_config)
     networks, samplers, penalties = [], [], []
     for seed in seeds:
         with torch.random.fork_rng(devices=[]):

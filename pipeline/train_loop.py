@@ -180,9 +180,13 @@ def timed_evaluation(network: torch.nn.Module, val: dict[str, Any]) -> tuple[dic
     return scores, time.perf_counter() - started
 
 
-def check_fit_inputs(train: WindowSetLike, val: dict[str, WindowSetLike], penalty: Penalty,
-                     cfg: FitConfig) -> None:
-    """One-line InputErrors for window sets and a schedule that no fit can use."""
+def prepare_fit(train: WindowSetLike, val: dict | None, penalty: Penalty | None,
+                fit_config: FitConfig | None) -> tuple[FitConfig, Penalty, dict]:
+    """(fit config, penalty, validation sets) with their defaults, checked: one-line InputErrors for window
+    sets and a schedule that no fit can use. Sets torch's threads."""
+    cfg = fit_config if fit_config is not None else FitConfig()
+    penalty = penalty if penalty is not None else build_penalty("erm")
+    val = dict(val or {})
     check_window_set(train, "train")
     if len(train.y) == 0:
         raise InputError("no training windows", field="train")
@@ -191,6 +195,8 @@ def check_fit_inputs(train: WindowSetLike, val: dict[str, WindowSetLike], penalt
     if penalty.warmup_steps >= cfg.max_steps:
         raise InputError(f"{penalty.warmup_steps} leaves no step after the warm-up to select from "
                          f"(fit.max_steps {cfg.max_steps})", field="penalty.warmup_steps")
+    torch.set_num_threads(cfg.threads)
+    return cfg, penalty, val
 
 
 def training_tensors(train: WindowSetLike) -> tuple[torch.Tensor, torch.Tensor]:
@@ -206,11 +212,7 @@ def train_network(build_network, train: WindowSetLike, val: dict[str, WindowSetL
     The returned network holds the weights of the LAST step; pick another with result.snapshots.
     """
     started = time.perf_counter()
-    cfg = fit_config if fit_config is not None else FitConfig()
-    penalty = penalty if penalty is not None else build_penalty("erm")
-    val = dict(val or {})
-    check_fit_inputs(train, val, penalty, cfg)
-    torch.set_num_threads(cfg.threads)
+    cfg, penalty, val = prepare_fit(train, val, penalty, fit_config)
     penalty.reset()
 
     with torch.random.fork_rng(devices=[]):
