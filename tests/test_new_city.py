@@ -213,3 +213,14 @@ def test_check_of_a_bad_block_is_one_line(tmp_path, capsys):
     assert main(["--root", str(tmp_path), "new-city", "check", "block.yaml"]) == 2
     error = capsys.readouterr().err.strip()
     assert error.count("\n") == 0 and "cities.newtown.colour" in error
+
+
+@pytest.mark.parametrize("name, body, field", [("empty.csv", b"", "empty"), ("one.csv", b"a\n1\n2\n", "separator"),
+                                               ("header.csv", b"station,time,pm25\n", "no record"),
+                                               ("notime.csv", b"station,val\nA,1\nB,2\n", "time")])
+def test_a_dump_the_draft_cannot_read_is_one_line_naming_the_file(tmp_path, capsys, name, body, field):
+    (tmp_path / "data" / "raw" / "x").mkdir(parents=True)
+    (tmp_path / "data" / "raw" / "x" / name).write_bytes(body)
+    assert main(["--root", str(tmp_path), "new-city", "draft", f"data/raw/x/{name}"]) == 2
+    error = capsys.readouterr().err.strip()
+    assert error.count("\n") == 0 and name in error and field in error

@@ -66,7 +66,7 @@ def _encoding(path: Path) -> str:
         return "latin-1"  # every byte decodes; the reviewer checks accents in codes and units
 
 
-def sniff_csv(lines: list[str]) -> tuple[str, int]:
+def sniff_csv(lines: list[str], path: Path) -> tuple[str, int]:
     """(separator, header line number): the separator that splits most lines into one equal number of
     fields; the header is the first line with that number of fields (lines before it are a preamble)."""
     body = [line for line in lines if line.strip()][:200]
@@ -78,7 +78,8 @@ def sniff_csv(lines: list[str]) -> tuple[str, int]:
         if modal > 1 and (best is None or (share, modal) > (best[2], best[1])):
             best = (separator, modal, share)
     if best is None:
-        raise InputError("no delimiter splits the lines into columns (tried , ; tab |)", field="separator")
+        raise InputError("no delimiter splits the lines into columns (tried , ; tab |)", file=str(path),
+                         field="separator")
     separator, modal = best[0], best[1]
     header = next(i for i, line in enumerate(lines, start=1) if len(line.split(separator)) == modal)
     return separator, header
@@ -134,7 +135,7 @@ def read_sample(paths: list[Path], max_rows: int) -> tuple[pd.DataFrame, dict[st
     if first.startswith("{"):
         entries["layout"] = Entry("jsonl", "high", "one JSON object per line")
         return _read_jsonl(paths, encoding, max_rows), entries
-    separator, header = sniff_csv(text.split("\n"))
+    separator, header = sniff_csv(text.split("\n"), paths[0])
     spec = {"separator": separator, "header_line": header, "encoding": encoding}
     tables = [read_csv_text(path, spec).table.head(max_rows) for path in paths]
     table = pd.concat(tables, ignore_index=True).drop(columns="line")
