@@ -224,3 +224,14 @@ def test_a_dump_the_draft_cannot_read_is_one_line_naming_the_file(tmp_path, caps
     assert main(["--root", str(tmp_path), "new-city", "draft", f"data/raw/x/{name}"]) == 2
     error = capsys.readouterr().err.strip()
     assert error.count("\n") == 0 and name in error and field in error
+
+
+def test_hostile_codes_and_names_cannot_add_keys_to_the_drafted_block(tmp_path):
+    """A station code with a line end and a column named like a YAML key stay inside comments and quotes."""
+    folder = tmp_path / "evil"
+    folder.mkdir()
+    rows = ["site,time,PM2.5,\"x\nlayout: jsonl\"", *(f"\"A\nlayout: jsonl\",2025-01-01 {h:02d}:00,{h},1" for h in range(6))]
+    (folder / "dump.csv").write_text("\n".join(rows) + "\n")
+    block = yaml.safe_load(render(draft_format([folder / "dump.csv"], "evil", tmp_path)))["cities"]["evil"]
+    assert block["layout"] == "wide_csv" and block["station_column"] == "site"
+    assert validate_format("evil", block)["columns"]["PM2.5"] == "pm25"

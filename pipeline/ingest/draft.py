@@ -11,6 +11,8 @@ the confidences, evidence and questions.
 
 from __future__ import annotations
 
+import csv
+import io
 import json
 import re
 from dataclasses import dataclass, field
@@ -19,7 +21,7 @@ from pathlib import Path
 import pandas as pd
 import yaml
 
-from pipeline.errors import InputError
+from pipeline.errors import InputError, one_line
 from pipeline.ingest.draft_clock import ClockDraft, draft_clock
 from pipeline.ingest.draft_columns import (Entry, by_values, find_sentinels, guess_unit, is_numeric, long_columns,
                                            match_variable, numbers_of, station_column, unit_in_name)
@@ -66,23 +68,34 @@ def _encoding(path: Path) -> str:
         return "latin-1"  # every byte decodes; the reviewer checks accents in codes and units
 
 
-def sniff_csv(lines: list[str], path: Path) -> tuple[str, int]:
-    """(separator, header line number): the separator that splits most lines into one equal number of
-    fields; the header is the first line with that number of fields (lines before it are a preamble)."""
-    body = [line for line in lines if line.strip()][:200]
+def sniff_csv(text: str, path: Path) -> tuple[str, int]:
+    """(separator, header line number): the separator that splits most records into one equal number of
+    fields (read as CSV, so a quoted field may hold separators and line ends); the header is the first
+    record with that number of fields (lines before it are a preamble)."""
     best = None
     for separator in SEPARATORS:
-        counts = pd.Series([len(line.split(separator)) for line in body])
-        modal = int(counts.mode().iloc[0]) if len(counts) else 1
-        share = float((counts == modal).mean()) if len(counts) else 0.0
-        if modal > 1 and (best is None or (share, modal) > (best[2], best[1])):
-            best = (separator, modal, share)
+        reader = csv.reader(io.StringIO(text[:200_000], newline=""), delimiter=separator)
+        starts, counts, previous = [], [], 0
+        try:
+            for record in reader:
+                if any(field.strip() for field in record):
+                    starts.append(previous + 1)
+                    counts.append(len(record))
+                previous = reader.line_num
+                if len(counts) >= 200:
+                    break
+        except csv.Error:
+            continue
+        if not counts:
+            continue
+        modal = int(pd.Series(counts).mode().iloc[0])
+        share = counts.count(modal) / len(counts)
+        if modal > 1 and (best is None or (share, modal) > best[2:]):
+            best = (separator, starts[counts.index(modal)], share, modal)
     if best is None:
         raise InputError("no delimiter splits the lines into columns (tried , ; tab |)", file=str(path),
                          field="separator")
-    separator, modal = best[0], best[1]
-    header = next(i for i, line in enumerate(lines, start=1) if len(line.split(separator)) == modal)
-    return separator, header
+    return best[0], best[1]
 
 
 def _decimal(table: pd.DataFrame, separator: str) -> str:
@@ -135,7 +148,7 @@ def read_sample(paths: list[Path], max_rows: int) -> tuple[pd.DataFrame, dict[st
     if first.startswith("{"):
         entries["layout"] = Entry("jsonl", "high", "one JSON object per line")
         return _read_jsonl(paths, encoding, max_rows), entries
-    separator, header = sniff_csv(text.split("\n"), paths[0])
+    separator, header = sniff_csv(text, paths[0])
     spec = {"separator": separator, "header_line": header, "encoding": encoding}
     tables = [read_csv_text(path, spec).table.head(max_rows) for path in paths]
     table = pd.concat(tables, ignore_index=True).drop(columns="line")
@@ -287,10 +300,16 @@ def _flow(value) -> str:
     return yaml.safe_dump(value, default_flow_style=True, width=10_000, sort_keys=False).strip()
 
 
+def _comment(text: str) -> str:
+    """Delivered text (codes, column names, stamps) in a comment: one line, whatever the dump holds, so it
+    can never add a key to the block."""
+    return "# " + one_line(text, 400)
+
+
 def _line(indent: int, key: str, value, entry: Entry | None = None) -> str:
     text = " " * indent + _flow({key: value})[1:-1]
     if entry is not None:
-        text += f"   # {entry.confidence}" + (f": {entry.why}" if entry.why else "")
+        text += "   " + _comment(entry.confidence + (f": {entry.why}" if entry.why else ""))
     return text
 
 
@@ -304,15 +323,16 @@ def render(draft: Draft) -> str:
         out.append(_line(4, key, entry.value, entry))
         if key in ("station_column", "station_columns"):
             codes = ", ".join(f"{code} ({n})" for code, n in draft.station_codes.items())
-            out.append(f"    # station codes (rows): {codes}; add station_map if the station table uses other ids")
+            out.append("    " + _comment(f"station codes (rows): {codes}; add station_map if the station table "
+                                         f"uses other ids"))
     out.append(_line(4, "time", block["time"], Entry(None, draft.clock.confidence)))
-    out += [f"    #   {line}" for line in draft.clock.evidence]
+    out += ["    " + _comment(f"  {line}") for line in draft.clock.evidence]
     if block["layout"] != "station_columns_csv":
         out.append(f"    {'variables' if block['layout'] == 'long_csv' else 'columns'}:")
         out += [_line(6, raw, entry.value, entry) for raw, entry in draft.mapping.items()]
-        out += [f"      # not mapped: {raw} ({why})" for raw, why in draft.unmapped.items()]
+        out += ["      " + _comment(f"not mapped: {raw} ({why})") for raw, why in draft.unmapped.items()]
     if draft.units:
         out.append("    units:")
         out += [_line(6, variable, entry.value, entry) for variable, entry in draft.units.items()]
-    out += ["# Questions:"] + [f"#   - {q}" for q in draft.questions]
+    out += ["# Questions:"] + ["#   - " + _comment(q)[2:] for q in draft.questions]
     return "\n".join(out) + "\n"
