@@ -3,7 +3,8 @@
     .venv/bin/python bench/command_latency.py [PROJECT] [--overrides experiment=tiny] [--repeat 5]
 
 PROJECT is a finished project folder (config/, Snakefile, results/ with a grid and an MLflow store); without
-one, a tiny project (experiment=tiny) is made and run in a temporary folder first (minutes). Every command
+one, a tiny project (experiment=tiny) holding a copy of the package is made and run in a temporary folder
+first (minutes); the commands then run that copy, so edits to the checkout during the rounds change nothing. Every command
 runs as a fresh process, as a user types it; the figure is the median of --repeat rounds after one warm-up
 round (which also fills the plan cache of pipeline.plan_cache, as any earlier Snakemake call would have).
 A round runs every command once, in turn, so figures compared side by side saw the same machine load.
@@ -54,7 +55,9 @@ def tiny_project(folder: Path, overrides: list[str]) -> Path:
     sys.path.insert(0, str(REPO / "tests"))
     from project_copy import make_project, shiftgrid
 
-    project = make_project(folder / "project")
+    # Its own copy of the package: the plan cache is keyed by the package's source, so edits to the checkout
+    # while the rounds run (other work on this machine) would make one command re-plan and spare the next.
+    project = make_project(folder / "project", whole_package=True)
     for args in (["demo", *overrides], ["run", *overrides]):
         done = shiftgrid(project, *args, cwd=project)
         if done.returncode != 0:
@@ -112,9 +115,10 @@ def main() -> None:
     args = parser.parse_args()
     with tempfile.TemporaryDirectory() as folder:
         project = Path(args.project).resolve() if args.project else tiny_project(Path(folder), args.overrides)
+        load_before = os.getloadavg()[0]  # the machine's state while measuring: other work shifts every figure
         rows = measure(project, args.overrides, args.repeat)
-    print(f"cores: {os.cpu_count()}, load average: {' '.join(f'{x:.1f}' for x in os.getloadavg())}, "
-          f"median of {args.repeat} runs, overrides: {' '.join(args.overrides)}")
+    print(f"cores: {os.cpu_count()}, 1-minute load average {load_before:.1f} before the rounds, "
+          f"{os.getloadavg()[0]:.1f} after; median of {args.repeat} rounds, overrides: {' '.join(args.overrides)}")
     print(f"{'command':<18} {'seconds':>8}  goal")
     for name, seconds, goal in rows:
         print(f"{name:<18} {seconds:>8.2f}  {goal}")
