@@ -1,6 +1,7 @@
 """Aggregation: run records + MLflow -> the grid tables (I/O shell around pipeline.grid_stats).
 
-Reads the run records results/runs/<split_id>/<model>/<penalty>/<seed>.json, the MLflow runs they name
+Reads the run records results/runs/[<forecast variable>/]<split_id>/<model>/<penalty>/<seed>.json (the
+variable folder only when several are swept), the MLflow runs they name
 (via each record's tracking_uri; for a searched run the parent, and its trials for grid_trials.csv) and each run's predictions artifact
 (predictions/target_predictions.parquet). Writes, in the results folder:
 - grid.parquet: one row per current run: identity, every logged metric (`<rule>.<name>` and the
