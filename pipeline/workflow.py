@@ -7,6 +7,9 @@ otherwise the plan comes from pipeline.plan_cache (read/written under `.snakemak
 Each job's params are sorted-key JSON of exactly its config slice plus the digest of the code it runs (the
 rule script's import closure, pipeline.provenance), which is what makes re-runs minimal. Nothing that
 depends on where the project folder sits enters them, so a copied or moved project stays up to date.
+Several forecast targets (sweep.targets, `target=pm25,no2`) need no further composition: each unit's job
+slice gets its variable, each trained model gets a job per split and variable, and run records sit under
+runs/<variable>/; one target plans exactly as before (same params, same paths).
 Config keys obeyed: data.*, split.*, forecast.*, sweep.*, search.* (each run's trials, pipeline.search),
 model/penalty/fit/selection/metrics (job slices), report.* (aggregation params), tracking.* and results_dir.
 Imports neither torch nor MLflow, and Hydra and pandas only when it composes.
