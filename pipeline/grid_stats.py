@@ -17,6 +17,8 @@ path serves every metric; reported means and relative changes stay in the metric
 
 from __future__ import annotations
 
+import re
+
 import numpy as np
 import pandas as pd
 
@@ -25,6 +27,7 @@ from pipeline.window_stats import loss_for
 from pipeline.errors import InputError
 from pipeline.metrics import EXCEEDANCE_SCORES
 from pipeline.names import ERM, NOT_APPLICABLE, penalty_shown
+from pipeline.step_words import step_words
 from pipeline.variables import BY_NAME
 
 HIGHER_IS_BETTER = frozenset({"pod", "csi", "ets"})
@@ -120,26 +123,32 @@ def unit_of(variable: str) -> str:
     return BY_NAME[variable].unit
 
 
-def threshold_note(variable: str, threshold: float) -> str:
-    """How the exceedance event is named everywhere: a research scoring threshold on hourly values."""
-    return (f"research scoring threshold: hourly {variable} above {float(threshold):g} {unit_of(variable)}, "
-            f"applied to each hourly value (no 24-h mean is formed; not an alert level)")
+def threshold_note(variable: str, threshold: float, step_hours: float = 1.0) -> str:
+    """How the exceedance event is named everywhere: a research scoring threshold on the values of the
+    study's cadence (hourly, daily, ...)."""
+    step = step_words(step_hours)
+    # A daily value spans the day a 24-h reference level is about; a finer one is never averaged here.
+    averaging = "each covers one UTC day" if step.is_day else "no 24-h mean is formed"
+    return (f"research scoring threshold: {step.adjective} {variable} above {float(threshold):g} "
+            f"{unit_of(variable)}, applied to each {step.adjective} value ({averaging}; not an alert level)")
 
 
-def metric_label(metric_name: str, variable: str, threshold: float | None = None) -> str:
+def metric_label(metric_name: str, variable: str, threshold: float | None = None, step_hours: float = 1.0) -> str:
     """'target_mae' -> 'MAE of pm25, ug/m3': the score, the forecast variable and its unit.
 
     mse carries the squared unit, mase none (each station's error is divided by its own naive error in
-    the same unit), exceedance scores name their hourly event.
+    the same unit), exceedance scores name their event on the study's cadence, a horizon metric
+    (target_mae_h03) its step in the cadence's unit ("at hour 3 ahead", "at day 3 ahead").
     """
     name = metric_name.split(".", 1)[-1]
     place = next((text for prefix, text in _PLACES if name.startswith(prefix)), "")
     base = metric_base(name)
-    if "_h" in name.split(base, 1)[-1]:
-        place += f" at hour {int(name.rsplit('_h', 1)[1])} ahead"
+    step = step_words(step_hours)
+    if "_h" in name.split(base, 1)[-1]:  # the logged key keeps its "_h": h stands for horizon step
+        place += f" at {step.noun} {int(name.rsplit('_h', 1)[1])} ahead"
     unit = unit_of(variable)
     if base in THRESHOLD_SCORES:
-        event = f"hourly {variable} > {float(threshold):g} {unit}" if threshold is not None else f"hourly {variable}"
+        event = f"{step.adjective} {variable}" + (f" > {float(threshold):g} {unit}" if threshold is not None else "")
         return f"{base.upper()} of {event}{place} (no unit; research scoring threshold)"
     if base == "mase":
         return f"MASE of {variable}{place} (no unit: per-station seasonal-naive scale)"
@@ -159,14 +168,28 @@ def run_setting(runs: pd.DataFrame, param: str, field: str):
     return values[0]
 
 
+HORIZON_METRIC = re.compile(r"target_mae_h(\d+)")  # one per horizon step, un-prefixed (pipeline.metrics)
+HORIZON_PARAM = "forecast.horizon_hours"
+
+
+def run_step_hours(runs: pd.DataFrame) -> float:
+    """The runs' time step in hours, for labels: the shared `forecast.horizon_hours` is cut into whole steps
+    of the cadence (pipeline.windows) and each step logs its target_mae_hNN, so step = horizon / last NN.
+    Hourly when the table lacks either (run tables from before the cadence existed were hourly)."""
+    steps = [int(found.group(1)) for column in runs.columns if (found := HORIZON_METRIC.fullmatch(column))]
+    if not steps or f"param.{HORIZON_PARAM}" not in runs.columns:
+        return 1.0
+    return float(run_setting(runs, HORIZON_PARAM, HORIZON_PARAM)) / max(steps)
+
+
 def grid_metric_label(runs: pd.DataFrame, metric_name: str) -> str:
-    """metric_label with the forecast variable and the threshold read from the runs' logged config."""
+    """metric_label with the forecast variable, the threshold and the cadence read from the runs."""
     variable = str(run_setting(runs, "forecast.target", "forecast.target"))
     threshold = None
     if metric_base(metric_name) in THRESHOLD_SCORES:
         threshold = float(run_setting(runs, "metrics.hourly_exceedance_threshold",
                                       "metrics.hourly_exceedance_threshold"))
-    return metric_label(metric_name, variable, threshold)
+    return metric_label(metric_name, variable, threshold, run_step_hours(runs))
 
 
 def change_note(metric_name: str) -> str:

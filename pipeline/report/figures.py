@@ -20,6 +20,7 @@ import pandas as pd  # noqa: E402
 
 from pipeline import grid_stats, names, selection  # noqa: E402
 from pipeline.metrics import EXCEEDANCE_SCORES  # noqa: E402
+from pipeline.step_words import step_words  # noqa: E402
 
 BEST_MARK = "★"  # marks the best cell of a split in addition to its outline (never colour alone)
 plt.rcParams.update({"font.size": 9, "axes.titlesize": 10, "figure.titlesize": 11, "axes.spines.top": False,
@@ -114,9 +115,9 @@ def horizon_columns(runs: pd.DataFrame, rule: str) -> list[str]:
     return sorted((col for col in runs.columns if col.startswith(prefix)), key=lambda c: int(c[len(prefix):]))
 
 
-def horizon_curves(runs: pd.DataFrame, rule: str, variable: str):
+def horizon_curves(runs: pd.DataFrame, rule: str, variable: str, step_hours: float = 1.0):
     """Target MAE per horizon step, averaged over seeds then splits, one line per model+penalty;
-    one panel per target city."""
+    one panel per target city; the axis counts steps in the cadence's unit (pipeline.step_words)."""
     columns = horizon_columns(runs, rule)
     steps = [int(col.rsplit("_h", 1)[1]) for col in columns]
     table = runs.assign(combo=[grid_stats.combo_label(m, p) for m, p in zip(runs["model"], runs["penalty"])])
@@ -130,7 +131,7 @@ def horizon_curves(runs: pd.DataFrame, rule: str, variable: str):
             style = "--" if combo.endswith("+erm") else "-"
             ax.plot(steps, curve.mean().to_numpy(), style, lw=1.4, label=combo)
         ax.set_title(f"target {target}")
-        ax.set_xlabel("horizon (hours ahead)")
+        ax.set_xlabel(f"horizon ({step_words(step_hours).plural} ahead)")
         ax.grid(alpha=0.3)
     for ax in axes.ravel()[len(targets):]:
         ax.set_visible(False)

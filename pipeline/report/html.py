@@ -30,6 +30,7 @@ from pipeline.report.search_html import search_section
 from pipeline.report.style import CSS
 from pipeline.report.templating import render
 from pipeline.report.verdict_html import verdict_section
+from pipeline.step_words import step_words
 
 SETUP = ('<section id="setup"><h2>Setup</h2><dl class="facts">'
          "{% for name, value in facts %}<dt>{{ name }}</dt><dd>{{ value }}</dd>{% endfor %}</dl>{{ tables }}</section>")
@@ -164,16 +165,17 @@ CURVES = ('<section id="horizon"><h2>Error by horizon and exceedance scores</h2>
 
 def curves_section(runs: pd.DataFrame, rule: str, dpi: int) -> Markup:
     variable = str(grid_stats.run_setting(runs, "forecast.target", "forecast.target"))
+    step_hours = grid_stats.run_step_hours(runs)  # the cadence names the horizon's unit and the scored event
     horizon = exceedance = Markup()
     note = ""
     if figures.horizon_columns(runs, rule):
-        horizon = _figure(figures.horizon_curves(runs, rule, variable), dpi,
-                          _rule_caption(f"{grid_stats.metric_label('target_mae', variable)} per forecast hour", rule),
-                          rule)
+        caption = f"{grid_stats.metric_label('target_mae', variable)} per forecast {step_words(step_hours).noun}"
+        horizon = _figure(figures.horizon_curves(runs, rule, variable, step_hours), dpi,
+                          _rule_caption(caption, rule), rule)
     if any(col.startswith(f"{rule}.target_csi") for col in runs.columns):
         threshold = float(grid_stats.run_setting(runs, "metrics.hourly_exceedance_threshold",
                                                  "metrics.hourly_exceedance_threshold"))
-        note = grid_stats.threshold_note(variable, threshold)
+        note = grid_stats.threshold_note(variable, threshold, step_hours)
         exceedance = _figure(figures.exceedance_bars(runs, rule, note), dpi,
                              _rule_caption(f"Exceedance scores (POD, FAR, CSI, ETS); {note}", rule), rule)
     return render(CURVES, horizon=horizon, note=note, exceedance=exceedance)
