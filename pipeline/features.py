@@ -76,7 +76,7 @@ class FeatureScaler:
     StandardScaler ignores NaN when fitting, uses the population std and gives a constant feature (e.g. a
     station that reports the same pressure all period) the scale 1, so nothing divides by zero. This
     wrapper adds what the windows need: feature names, and scaling one named feature (the target).
-    `fit` learns `mean_`, `std_` (float64), `feature_names_`, `n_observed_` and returns self.
+    `fit` learns `mean_`, `std_` (float64) and `feature_names_`, and returns self.
     """
 
     def fit(self, rows: np.ndarray, names: list[str]) -> "FeatureScaler":
@@ -92,7 +92,6 @@ class FeatureScaler:
         fitted = StandardScaler().fit(rows)
         self.mean_, self.std_ = fitted.mean_, fitted.scale_
         self.feature_names_ = list(names)
-        self.n_observed_ = observed
         return self
 
     def transform(self, rows: np.ndarray) -> np.ndarray:
