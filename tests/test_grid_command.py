@@ -3,6 +3,7 @@
 import io
 import json
 from contextlib import redirect_stdout
+from pathlib import Path
 from types import SimpleNamespace
 
 import pandas as pd
@@ -126,6 +127,43 @@ def test_each_forecast_target_has_its_own_section_and_unit(results, two_targets)
     top = top_of_grid(two_targets, cfg)
     assert top.count("top of the grid") == 2 and top.count("Friedman over 3 target cities") == 2
 
+
+def test_variable_picks_one_forecast_target_of_the_grid_with_its_own_tests(results, two_targets, capsys):
+    status, text = grid(two_targets, "--variable", "no2", "--format", "csv")
+    table = pd.read_csv(io.StringIO(text))
+    _, single = grid(results, "--format", "csv")
+    pm25 = pd.read_csv(io.StringIO(single))
+    # one variable reads as a single grid: no2's errors are twice pm25's (grid_fixture), ranks alike
+    assert status == 0 and "target_variable" not in table.columns and len(table) == len(pm25)
+    assert table["mean"].tolist() == pytest.approx((2 * pm25["mean"]).tolist())
+    assert set(table["metric_label"]) == {"MAE of no2, ug/m3"} and table["rank"].tolist() == pm25["rank"].tolist()
+    dm = pd.read_csv(two_targets / "grid_dm.csv")  # the Holm p of no2's own comparisons, not pm25's
+    no2 = dm[(dm.target_variable == "no2") & (dm.dm_loss == "absolute") & (dm.selection_rule == "source-holdout")]
+    irm = table[table["penalty"] == "irm"].set_index("split_id")
+    assert irm["dm_p_holm"].to_dict() == pytest.approx(no2.set_index("split_id")["dm_p_holm"].to_dict())
+    _, both = grid(two_targets, "--variable", "pm25,no2", "--target", "vell")
+    assert both.count("== forecast target ") == 2
+    status, _ = grid(two_targets, "--variable", "o3")
+    assert status == 2 and "no run has variable ['o3']; known: no2, pm25" in capsys.readouterr().err
+
+
+def test_runs_lists_the_forecast_variable_and_filters_by_it(two_targets, capsys):
+    from pipeline import tracking
+
+    uri = tracking.resolve_tracking_uri(None, two_targets)
+    repo = Path(__file__).resolve().parents[1]  # its config only names the default store, overridden here
+    command = ["--root", str(repo), "runs", "--tracking-uri", uri, "--experiment", "gridtest"]
+    capsys.readouterr()
+    assert main([*command, "--format", "json"]) == 0
+    every = json.loads(capsys.readouterr().out)
+    assert main([*command, "--variable", "no2", "--target", "vell", "--format", "json"]) == 0
+    picked = json.loads(capsys.readouterr().out)
+    assert {row["variable"] for row in every} == {"pm25", "no2"}
+    expected = [row["run_id"] for row in every if row["variable"] == "no2" and row["target"] == "vell"]
+    assert [row["run_id"] for row in picked] == expected and len(expected) > 0
+    assert main([*command, "--variable", "no2", "--format", "csv"]) == 0
+    table = pd.read_csv(io.StringIO(capsys.readouterr().out))
+    assert list(table.columns[4:6]) == ["target", "variable"] and set(table["variable"]) == {"no2"}
 
 def test_the_baselines_penalty_reads_n_a_and_is_stored_na_both_ways():
     from pipeline import names

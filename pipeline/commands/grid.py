@@ -1,5 +1,5 @@
-"""`shiftgrid grid [OVERRIDES...] [--target T] [--model M] [--penalty P] [--metric NAME] [--selection RULE]
-[--format F]`.
+"""`shiftgrid grid [OVERRIDES...] [--target T] [--variable V] [--model M] [--penalty P] [--metric NAME]
+[--selection RULE] [--format F]`.
 
 Reads results/grid.parquet (one row per run; no MLflow needed), results/grid_dm.csv (Diebold-Mariano
 tests with Holm-adjusted p) and results/grid_intervals.csv (block-bootstrap intervals over test origins),
@@ -53,16 +53,19 @@ def load_runs(results_dir: Path) -> pd.DataFrame:
 
 
 def grid_table(results_dir: Path, metric: str, rule: str, targets=None, models=None,
-               penalties=None) -> pd.DataFrame:
+               penalties=None, variables=None) -> pd.DataFrame:
     """The summary (pipeline.grid_stats.summarise) of the filtered runs, DM columns joined in."""
     runs = load_runs(results_dir)
     penalties = [names.penalty_label(p) for p in penalties] if penalties else None
-    for column, wanted in (("target", targets), ("model", models), ("penalty", penalties)):
+    filters = (("target", "target", targets), ("variable", target_sections.TARGET_PARAM, variables),
+               ("model", "model", models), ("penalty", "penalty", penalties))
+    for option, column, wanted in filters:
         if wanted:
-            unknown = sorted(set(wanted) - set(runs[column]))
+            known = set(runs[column].dropna().astype(str)) if column in runs.columns else set()
+            unknown = sorted(set(wanted) - known)
             if unknown:
-                raise InputError(f"no run has {column} {unknown}; known: {', '.join(sorted(runs[column].unique()))}",
-                                 field=f"--{column}")
+                raise InputError(f"no run has {option} {unknown}; known: {', '.join(sorted(known)) or 'none'}",
+                                 field=f"--{option}")
             runs = runs[runs[column].isin(wanted)]
     # Tests and intervals were computed by the aggregation over the WHOLE grid (the Holm family is every
     # comparison of the grid, whatever this view filters), so they are read, never recomputed here.
@@ -70,9 +73,11 @@ def grid_table(results_dir: Path, metric: str, rule: str, targets=None, models=N
     tables = {name: pd.read_csv(path) if path.exists() else None for name, path in paths.items()}
     sections = []
     for variable, section in target_sections.run_sections(runs):  # one grid per forecast variable
+        # one variable picked by --variable reads as a single grid, but only its own rows of the tests
+        tested = variable or (variables[0] if variables else None)
         summary = grid_stats.summarise(section, metric, rule)
-        summary = grid_stats.attach_tests(summary, target_sections.part_of(tables["dm"], variable),
-                                          target_sections.part_of(tables["intervals"], variable))
+        summary = grid_stats.attach_tests(summary, target_sections.part_of(tables["dm"], tested),
+                                          target_sections.part_of(tables["intervals"], tested))
         sections.append(target_sections.labelled(summary, variable))
     summary = pd.concat(sections, ignore_index=True)
     summary["best"] = np.where(summary["best_in_split"], BEST, "")
@@ -175,7 +180,7 @@ def run(args) -> int:
     metric = args.metric or (cfg.report.metric if cfg else "mae")
     rule = args.selection or (cfg.report.selection if cfg else selection.HOLDOUT)
     summary = grid_table(results, metric, rule, _csv_list(args.target), _csv_list(args.model),
-                         _csv_list(args.penalty))
+                         _csv_list(args.penalty), _csv_list(args.variable))
     print(render(summary, args.format))
     return 0
 

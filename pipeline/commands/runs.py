@@ -1,5 +1,5 @@
-"""`shiftgrid runs [--target T] [--source S] [--model M] [--penalty P] [--seed N] [--since DATE]
-[--current | --superseded] [--format table|csv|json] [--tracking-uri URI] [OVERRIDES...]`.
+"""`shiftgrid runs [--target T] [--variable V] [--source S] [--model M] [--penalty P] [--seed N]
+[--since DATE] [--current | --superseded] [--format table|csv|json] [--tracking-uri URI] [OVERRIDES...]`.
 
 Reads the MLflow store of the composed config (results_dir, tracking.uri, tracking.experiment) and lists
 its runs, newest first: table readable at 100 columns (run ID prefix; `show` accepts it), CSV or JSON
@@ -14,8 +14,9 @@ from pipeline.commands import add_run_filters
 from pipeline.errors import InputError
 
 FORMATS = ("table", "csv", "json")
-COLUMNS = ("run_id", "started", "split_id", "sources", "target", "model", "penalty", "seed", "state",
+COLUMNS = ("run_id", "started", "split_id", "sources", "target", "variable", "model", "penalty", "seed", "state",
            "superseded_by", "target_mae")
+VARIABLE_PARAM = "forecast.target"  # the forecast variable (--variable); --target is the target city
 
 
 def add_arguments(parser) -> None:
@@ -51,6 +52,8 @@ def search(client, experiment_id: str, args) -> list[dict]:
                (("target", args.target), ("model", args.model),
                 ("penalty", args.penalty and names.penalty_label(args.penalty)),
                 ("seed", None if args.seed is None else str(args.seed))) if value]
+    if args.variable:  # every run logs its forecast variable as the param forecast.target (its job slice)
+        clauses.append(f"params.`{VARIABLE_PARAM}` = {_quoted(args.variable)}")
     if args.since:
         clauses.append(f"attributes.start_time >= {_since_millis(args.since)}")
     runs = tracking.search_all_runs(client, [experiment_id], " and ".join(clauses))
@@ -66,7 +69,8 @@ def search(client, experiment_id: str, args) -> list[dict]:
             continue
         rows.append({"run_id": found.info.run_id, "started": audit.when(found.info.start_time)[:16],
                      "split_id": tags.get("split_id"), "sources": tags.get("sources"), "target": tags.get("target"),
-                     "model": tags.get("model"), "penalty": tags.get("penalty") and names.penalty_shown(tags["penalty"]),
+                     "variable": found.data.params.get(VARIABLE_PARAM), "model": tags.get("model"),
+                     "penalty": tags.get("penalty") and names.penalty_shown(tags["penalty"]),
                      "seed": tags.get("seed"), "state": state,
                      "superseded_by": successor or "", "target_mae": found.data.metrics.get("target_mae"),
                      "_start": found.info.start_time or 0})
