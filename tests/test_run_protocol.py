@@ -16,13 +16,14 @@ def job(penalty: str, sampling: str | None = "pooled") -> dict:
     fit = {"max_steps": 10} if sampling is None else {"max_steps": 10, "sampling": sampling}
     return {"model_name": "linear", "model": {"family": "linear"}, "penalty_name": penalty,
             "penalty": None if penalty == "na" else {"name": penalty, "weight": 1.0, "warmup_steps": 0, "extra": {}},
-            "fit": fit, "selection": {"rule": "source-holdout", "also": []}}
+            "fit": fit, "selection": {"rule": "source-holdout", "also": []}, "forecast": {"target": "pm25"}}
 
 
 def test_tags_name_the_sampling_and_the_environment_fallback():
     tags = tags_for(SPLIT, job("irm"), 0, "c0de")
     assert tags["sampling"] == "pooled" and tags["environment"] == "station"
     assert tags["environment_fallback_from"] == "city"
+    assert tags["forecast_target"] == "pm25"
     assert tags_for(SPLIT, job("erm", sampling=None), 0, "c0de")["sampling"] == "balanced"  # the default
     assert tags_for(SPLIT, job("na"), 0, "c0de")["sampling"] == "na"  # closed-form families draw no batches
     plain = {k: v for k, v in SPLIT.items() if k != "environment_fallback_from"}
