@@ -165,6 +165,18 @@ def test_runs_lists_the_forecast_variable_and_filters_by_it(two_targets, capsys)
     table = pd.read_csv(io.StringIO(capsys.readouterr().out))
     assert list(table.columns[4:6]) == ["target", "variable"] and set(table["variable"]) == {"no2"}
 
+def test_a_daily_grid_names_its_horizon_steps_in_days(results, tmp_path):
+    import shutil
+
+    daily = tmp_path / "results"
+    shutil.copytree(results, daily, ignore=shutil.ignore_patterns("mlflow*", "artifacts", "runs"))
+    runs = pd.read_parquet(daily / "grid.parquet")  # the fixture's 3 horizon steps, logged as 72 h: daily steps
+    runs.assign(**{"param.forecast.horizon_hours": "72"}).to_parquet(daily / "grid.parquet")
+    _, text = grid(daily, "--metric", "target_mae_h02")
+    assert "MAE of pm25 at day 2 ahead, ug/m3" in " ".join(text.splitlines()[:2])
+    _, text = grid(results, "--metric", "target_mae_h02")  # the hourly grid reads as before
+    assert "MAE of pm25 at hour 2 ahead, ug/m3" in " ".join(text.splitlines()[:2])
+
 def test_the_baselines_penalty_reads_n_a_and_is_stored_na_both_ways():
     from pipeline import names
 
