@@ -1,5 +1,5 @@
-"""Bookkeeping at scale: planning, `shiftgrid status`, aggregation and the report on a generated study of
->= 10,000 training jobs, each figure next to its goal (never pass/fail).
+"""Bookkeeping at scale: planning, `shiftgrid status`, aggregation and the report on a generated study (up
+to 10,044 training jobs and 10,000 run records), each figure next to its goal (never pass/fail).
 
     .venv/bin/python bench/bookkeeping_scale.py [--records 1000] [--models 6] [--skip-dag] [--skip-grid]
 
@@ -31,7 +31,6 @@ from __future__ import annotations
 import argparse
 import json
 import os
-import shutil
 import sqlite3
 import subprocess
 import sys
