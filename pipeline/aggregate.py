@@ -156,17 +156,30 @@ def predictions_of(run_id: str, artifact_uri: str, tracking_uri: str, record_pat
 
 
 def window_tables(runs: pd.DataFrame, rules: list[str], load=predictions_of) -> dict[str, dict]:
-    """Per run: {"errors": {rule: per-window errors}, "horizon": hours, "stride": hours}, each artifact read once."""
-    stride_column = "param.forecast.stride_hours"
+    """Per run: {"errors": {rule: per-window errors}, "horizon": hours, "stride": hours}, each artifact read once.
+
+    Horizon and stride must be in the same unit (the HAC lags and the bootstrap blocks use their ratio): the
+    artifact counts the horizon in steps of the study's cadence, so it is taken from the logged
+    `forecast.horizon_hours`; runs logged without it are hourly, where steps and hours agree.
+    """
     tables = {}
     for row in runs.itertuples():
         frame = load(row.run_id, row.artifact_uri, row.tracking_uri, row.record)
         errors = {rule: window_stats.window_errors(frame, rule) for rule in rules}
         origins = pd.DatetimeIndex(pd.to_datetime(frame["origin"], utc=True).unique())
-        stride_param = runs.at[row.Index, stride_column] if stride_column in runs.columns else None
-        tables[row.run_id] = {"errors": errors, "horizon": window_stats.horizon_of(frame),
-                              "stride": window_stats.stride_hours(origins, stride_param)}
+        horizon = _logged(runs, row.Index, "param.forecast.horizon_hours")
+        tables[row.run_id] = {"errors": errors,
+                              "horizon": int(float(horizon)) if horizon is not None else window_stats.horizon_of(frame),
+                              "stride": window_stats.stride_hours(origins, _logged(runs, row.Index,
+                                                                                   "param.forecast.stride_hours"))}
     return tables
+
+
+def _logged(runs: pd.DataFrame, index, column: str):
+    """A run's logged value of `column`, or None when the column or the value is missing."""
+    if column not in runs.columns or pd.isna(runs.at[index, column]):
+        return None
+    return runs.at[index, column]
 
 
 def dm_tests(runs: pd.DataFrame, rules: list[str], tables: dict[str, dict]) -> pd.DataFrame:

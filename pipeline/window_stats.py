@@ -3,8 +3,8 @@
 Pure pandas/numpy functions on each run's predictions artifact (predictions/target_predictions.parquet:
 one row per target test window and selection rule with y_hXX / p_hXX and the station's MASE scale),
 handed over by pipeline.aggregate; nothing is read or written here. Config keys obeyed (passed in):
-report.bootstrap_samples; the horizon comes from the artifact's columns (hours), the stride from the run's
-`forecast.stride_hours` param.
+report.bootstrap_samples; horizon and stride in hours, from the run's `forecast.horizon_hours` and
+`forecast.stride_hours` params (the artifact's columns count steps of the cadence).
 
 Which loss a test uses follows the grid metric: squared error for mse and rmse, absolute error scaled by
 the station's MASE scale for mase, absolute error for every other metric (mae and the exceedance scores,
@@ -30,7 +30,7 @@ def loss_for(metric_base: str) -> str:
 
 
 def horizon_of(predictions: pd.DataFrame) -> int:
-    """Forecast horizon in hours: the number of y_hXX columns (one per hour ahead)."""
+    """Forecast horizon in steps of the study's cadence: the number of y_hXX columns (one per step ahead)."""
     return sum(col.startswith("y_h") for col in predictions.columns)
 
 

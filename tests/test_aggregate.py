@@ -9,8 +9,8 @@ from scipy import stats as sps
 from statsmodels.stats.multitest import multipletests
 
 from grid_fixture import SPLIT_IDS, build_grid_store
-from pipeline import grid_stats, tracking
-from pipeline.aggregate import aggregate, collect_runs
+from pipeline import grid_stats, stats, tracking
+from pipeline.aggregate import aggregate, collect_runs, window_tables
 from pipeline.errors import InputError
 from pipeline.stats import diebold_mariano
 
@@ -254,3 +254,16 @@ def test_each_forecast_target_is_its_own_grid(grid, grid_two_targets):
     single_dm = pd.read_csv(grid["root"] / "results" / "grid_dm.csv")
     np.testing.assert_allclose(dm[dm["target_variable"] == "pm25"]["dm_p_holm"].to_numpy(),
                                single_dm["dm_p_holm"].to_numpy())
+
+
+def test_window_tables_give_horizon_and_stride_in_hours_for_a_daily_study():
+    """A daily study's artifact has 3 y_hXX columns (3 steps) but a 72-hour horizon: the HAC lags
+    ceil(H / s) - 1 need both in hours, or a 24-hour stride would see no overlap at all."""
+    origins = pd.date_range("2025-01-01", periods=6, freq="D", tz="UTC")
+    frame = pd.DataFrame({"station_id": "s1", "origin": origins, "selection": "source-holdout",
+                          **{f"y_h{k:02d}": 1.0 for k in (1, 2, 3)}, **{f"p_h{k:02d}": 0.5 for k in (1, 2, 3)}})
+    runs = pd.DataFrame({"run_id": ["r1"], "artifact_uri": [""], "tracking_uri": [""], "record": [""],
+                         "param.forecast.horizon_hours": ["72"], "param.forecast.stride_hours": ["24"]})
+    tables = window_tables(runs, ["source-holdout"], load=lambda *args: frame)
+    assert (tables["r1"]["horizon"], tables["r1"]["stride"]) == (72, 24)
+    assert stats.dm_lag_order(tables["r1"]["horizon"], tables["r1"]["stride"]) == 2
