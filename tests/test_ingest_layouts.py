@@ -9,6 +9,7 @@ import pytest
 
 from pipeline.errors import InputError
 from pipeline.ingest import ingest_city
+from pipeline.ingest.formats import validate_format
 from pipeline.stations import load_stations
 from pipeline.variables import QC_MISSING, QC_OK, QC_SENTINEL, QC_UNPARSEABLE
 
@@ -122,3 +123,13 @@ def test_unknown_unit_in_a_long_row_names_file_line_and_column(tmp_path):
     with pytest.raises(InputError) as caught:
         ingest_city("longtown", LONG, folder, STATIONS)
     assert str(caught.value).startswith(f"{path}:4: unit: ")
+
+
+def test_files_default_to_the_citys_own_folder():
+    """Without `files`, a city reads every file in its own folder under raw_dir (name order)."""
+    block = {"layout": "station_columns_csv", "station_columns": ["a1"], "variable": "pm25",
+             "units": {"pm25": "ug/m3"}, "time": {"column": "date", "format": "%Y-%m-%d"}}
+    assert validate_format("mytown", block)["files"] == "mytown/*"
+    assert validate_format("mytown", {**block, "files": "x/*.csv"})["files"] == "x/*.csv"
+    with pytest.raises(InputError, match="cities.mytown.files"):
+        validate_format("mytown", {**block, "files": ""})

@@ -17,7 +17,7 @@ import pandas as pd
 from pipeline.errors import InputError
 from pipeline.ingest import cadence, jsonl, long_csv, qc, station_columns_csv, timeparse, wide_csv
 from pipeline.atomic import write_json_atomic, write_parquet_atomic
-from pipeline.ingest.formats import validate_format
+from pipeline.ingest.formats import files_pattern, validate_format
 from pipeline.ingest.values import parse_numbers, to_canonical
 from pipeline.stations import load_stations, stations_of_city
 from pipeline.units import conversion_to_canonical
@@ -36,13 +36,13 @@ def _matching_files(raw_dir, pattern: str) -> list[Path]:
     return paths
 
 
-def raw_files(raw_dir, fmt: dict) -> list[str]:
+def raw_files(raw_dir, city: str, fmt: dict) -> list[str]:
     """The raw files a city's format names, for the rule's input list.
 
     With no match it returns the pattern itself, so Snakemake reports one clear missing input instead of
     running an ingest job with nothing to read.
     """
-    pattern = fmt["files"]
+    pattern = files_pattern(city, fmt)
     paths = sorted(str(p) for p in Path(raw_dir).glob(pattern) if p.is_file())
     return paths or [str(Path(raw_dir) / pattern)]
 

@@ -5,6 +5,7 @@ new format needs only config. Keys (defaults in brackets):
 
   layout          wide_csv | long_csv | jsonl | station_columns_csv           (required)
   files           glob relative to raw_dir, e.g. "mycity/*.csv"; matched files are read in name order
+                  [every file in the city's own folder: "<city>/*"]
   station_column  column (jsonl: field) holding the station code                (required)
   station_map     {code in the dump: station_id}                                [codes used as ids]
   time            {column: NAME | parts: {year, month, day, hour[, minute]},
@@ -47,10 +48,10 @@ _ALLOWED = {
     "station_columns_csv": _COMMON - {"station_column"} | _CSV | {"station_columns", "variable"},
 }
 _REQUIRED = {
-    "wide_csv": ("files", "station_column", "time", "columns", "units"),
-    "long_csv": ("files", "station_column", "time", "variable_column", "value_column", "variables"),
-    "jsonl": ("files", "station_column", "time", "columns", "units"),
-    "station_columns_csv": ("files", "station_columns", "variable", "time", "units"),
+    "wide_csv": ("station_column", "time", "columns", "units"),
+    "long_csv": ("station_column", "time", "variable_column", "value_column", "variables"),
+    "jsonl": ("station_column", "time", "columns", "units"),
+    "station_columns_csv": ("station_columns", "variable", "time", "units"),
 }
 _TIME_KEYS = {"column", "parts", "format", "timezone", "label", "ambiguous", "nonexistent", "earliest", "latest"}
 DEFAULTS = {"separator": ",", "decimal": ".", "header_line": 1, "encoding": "utf-8", "sentinels": [],
@@ -60,6 +61,11 @@ DEFAULTS = {"separator": ",", "decimal": ".", "header_line": 1, "encoding": "utf
 # `latest` None means the time of ingestion: a reading cannot come from the future.
 TIME_DEFAULTS = {"timezone": "UTC", "label": "start", "ambiguous": "order", "nonexistent": "drop",
                  "earliest": "1970-01-01T00:00Z", "latest": None}
+
+
+def files_pattern(city: str, fmt: dict) -> str:
+    """The city's `files` glob: by default every file in the city's own folder under raw_dir."""
+    return fmt.get("files", f"{city}/*")
 
 
 def _fail(message: str, config_file: str | None, field: str):
@@ -95,6 +101,9 @@ def validate_format(city: str, fmt: dict, reference_temperature_c: float = 25.0,
             _fail(f"missing (required for layout {layout})", config_file, f"{prefix}.{key}")
     spec = copy.deepcopy(DEFAULTS)
     spec.update(copy.deepcopy(fmt))
+    spec["files"] = files_pattern(city, fmt)
+    if not isinstance(spec["files"], str) or not spec["files"].strip():
+        _fail("must be a glob relative to raw_dir, e.g. \"mycity/*.csv\"", config_file, f"{prefix}.files")
     time = spec["time"]
     if not isinstance(time, dict) or set(time) - _TIME_KEYS:
         _fail(f"must be a mapping with keys among {sorted(_TIME_KEYS)}", config_file, f"{prefix}.time")

@@ -4,7 +4,7 @@
 def raw_files_of(wildcards):
     from pipeline.ingest import raw_files
 
-    return raw_files(PLAN.cfg.data.raw_dir, PLAN.city_format(wildcards.city))
+    return raw_files(PLAN.cfg.data.raw_dir, wildcards.city, PLAN.city_format(wildcards.city))
 
 
 def city_format_json(wildcards):
