@@ -13,6 +13,7 @@ import importlib
 import sys
 import traceback
 
+from pipeline import variables
 from pipeline.errors import InputError
 from pipeline.tracking import redact
 
@@ -72,6 +73,7 @@ def main(argv: list[str] | None = None) -> int:
     argv = sys.argv[1:] if argv is None else list(argv)
     command = requested_command(argv)
     args = build_parser({command} if command else set()).parse_args(argv)
+    variables.use_project(args.root)
     try:
         return int(args.handler(args) or 0)
     except InputError as error:

@@ -24,7 +24,7 @@ from functools import lru_cache
 
 from pipeline.errors import InputError
 from pipeline import variables
-from pipeline.variables import REGISTRY_FILE
+from pipeline.variables import registry_file
 
 CONVENTIONAL_MOLAR_VOLUME_L = 24.45  # at 25 C and 1 atm (common practice)
 CONVENTIONAL_TEMPERATURE_K = 298.15
@@ -136,7 +136,7 @@ def molar_volume_l_per_mol(reference_temperature_c: float,
 def _canonical_unit(variable: str) -> str:
     spelled = normalise_unit(variables.BY_NAME[variable].unit)
     if spelled is None:
-        raise InputError(f"unknown unit '{variables.BY_NAME[variable].unit}'", file=str(REGISTRY_FILE),
+        raise InputError(f"unknown unit '{variables.BY_NAME[variable].unit}'", file=str(registry_file()),
                          field=f"variables.{variable}.unit")
     return spelled
 

@@ -1,7 +1,7 @@
 """Canonical variables and site types, read from config/variables.yaml; QC flag codes.
 
-Reads config/variables.yaml once, on first use (a study adds a variable or a site type there, with no
-code change); writes nothing. Every clean Parquet table uses exactly these variable names and units.
+Reads the project's config/variables.yaml (the shipped one when the project has none) once, on first use
+(a study adds a variable or a site type there, with no code change); writes nothing. Every clean Parquet table uses exactly these variable names and units.
 Ingestion converts delivered units into these and flags values outside the plausible range (flag, never
 silently drop). Read by ingest, windows, features, demo and the report. A bad entry is an InputError
 naming the file and the field (e.g. `variables.nox.high`).
@@ -17,7 +17,23 @@ import yaml
 
 from pipeline.errors import InputError
 
-REGISTRY_FILE = Path(__file__).resolve().parents[1] / "config" / "variables.yaml"
+PACKAGED_REGISTRY = Path(__file__).resolve().parents[1] / "config" / "variables.yaml"
+
+
+_project_root = Path(".")  # Snakemake runs every rule in the project folder; the CLI sets its --root
+
+
+def use_project(root) -> None:
+    """Read the variables of the project at `root` (the command line's --root) from now on."""
+    global _project_root
+    _project_root = Path(root)
+
+
+def registry_file() -> Path:
+    """The project's own config/variables.yaml, else the shipped one: a study that adds a variable edits
+    its project's file, not the installed package."""
+    own = _project_root / "config" / "variables.yaml"
+    return own.resolve() if own.is_file() else PACKAGED_REGISTRY
 # Variable names become column and feature names: lower case, and never a QC column's `_qc` suffix.
 _VARIABLE_NAME = re.compile(r"^[a-z][a-z0-9_]{0,39}$")
 _ENTRY_KEYS = {"unit", "low", "high", "description", "molar_mass_g_per_mol"}
@@ -69,7 +85,7 @@ def _variable(name, entry, file: str) -> Variable:
                     None if mass is None else float(mass))
 
 
-def read_registry(path=REGISTRY_FILE) -> Registry:
+def read_registry(path) -> Registry:
     """Read and check a variables file; the canonical units are checked by pipeline.units on first use."""
     file = str(path)
     try:
@@ -92,9 +108,13 @@ def read_registry(path=REGISTRY_FILE) -> Registry:
     return Registry(variables, frozenset(site_types))
 
 
-@lru_cache(maxsize=1)
 def registry() -> Registry:
-    return read_registry()
+    return _registry_at(registry_file())
+
+
+@lru_cache(maxsize=4)
+def _registry_at(path: Path) -> Registry:
+    return read_registry(path)
 
 
 def __getattr__(name: str):

@@ -6,9 +6,9 @@ import yaml
 from pipeline import variables
 from pipeline.errors import InputError
 from pipeline.units import conversion_to_canonical
-from pipeline.variables import REGISTRY_FILE, read_registry
+from pipeline.variables import PACKAGED_REGISTRY, read_registry, registry_file
 
-SHIPPED = yaml.safe_load(REGISTRY_FILE.read_text())
+SHIPPED = yaml.safe_load(PACKAGED_REGISTRY.read_text())
 
 
 def write(tmp_path, content) -> str:
@@ -18,7 +18,7 @@ def write(tmp_path, content) -> str:
 
 
 def test_shipped_registry_holds_todays_variables_and_site_types():
-    registry = read_registry()
+    registry = read_registry(PACKAGED_REGISTRY)
     names = [v.name for v in registry.variables]
     assert names[:13] == ["pm25", "pm10", "no2", "co", "o3", "so2", "temp_c", "rh_pct", "wind_speed_ms",
                           "wind_dir_deg", "pressure_hpa", "precip_mm", "aux"]
@@ -38,7 +38,7 @@ def test_shipped_registry_holds_todays_variables_and_site_types():
     (lambda c: c.pop("site_types"), "variables"),
 ])
 def test_a_bad_entry_is_one_line_naming_file_and_field(tmp_path, change, field):
-    content = yaml.safe_load(REGISTRY_FILE.read_text())
+    content = yaml.safe_load(PACKAGED_REGISTRY.read_text())
     change(content)
     path = write(tmp_path, content)
     with pytest.raises(InputError) as caught:
@@ -48,7 +48,7 @@ def test_a_bad_entry_is_one_line_naming_file_and_field(tmp_path, change, field):
 
 
 def test_a_study_adds_variables_and_site_types_in_config_only(tmp_path, monkeypatch):
-    content = yaml.safe_load(REGISTRY_FILE.read_text())
+    content = yaml.safe_load(PACKAGED_REGISTRY.read_text())
     content["variables"]["dew_point"] = {"unit": "degC", "low": -80.0, "high": 40.0, "description": "dew point"}
     content["variables"]["solar_radiation"] = {"unit": "W/m^2", "low": 0.0, "high": 1500.0,
                                                "description": "global horizontal irradiance"}
@@ -68,3 +68,16 @@ def test_nox_as_no2_converts_with_the_molar_mass_of_no2():
     nox = conversion_to_canonical("nox", "ppb")
     assert nox.factor == pytest.approx(1.8818, abs=1e-4)
     assert nox.as_record()["reference_pressure_atm"] == 1.0
+
+
+def test_a_project_reads_its_own_variables_file(tmp_path, monkeypatch):
+    """Rules run in the project folder: its config/variables.yaml wins over the shipped one, so a study adds
+    a variable without touching the installed package; a project without one uses the shipped file."""
+    monkeypatch.chdir(tmp_path)
+    assert registry_file() == PACKAGED_REGISTRY
+    content = yaml.safe_load(PACKAGED_REGISTRY.read_text())
+    content["variables"]["bc"] = {"unit": "ug/m3", "low": 0.0, "high": 500.0, "description": "black carbon"}
+    (tmp_path / "config").mkdir()
+    (tmp_path / "config" / "variables.yaml").write_text(yaml.safe_dump(content))
+    assert registry_file() == (tmp_path / "config" / "variables.yaml").resolve()
+    assert "bc" in {v.name for v in read_registry(registry_file()).variables}

@@ -16,9 +16,9 @@ def city_format_json(wildcards):
 def variables_digest(wildcards):
     """config/variables.yaml is read by the ingestion code, not imported: its content re-runs ingestion."""
     from pipeline.provenance import file_digest
-    from pipeline.variables import REGISTRY_FILE
+    from pipeline.variables import registry_file
 
-    return file_digest(REGISTRY_FILE)[:16]
+    return file_digest(registry_file())[:16]
 
 
 rule ingest_city:
