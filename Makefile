@@ -31,6 +31,8 @@ bench: $(STAMP)
 	$(BIN)/python bench/trainer_vs_bare_torch.py
 	$(BIN)/python bench/seed_ensemble.py
 	$(BIN)/python bench/bookkeeping_scale.py
+	$(BIN)/python bench/command_latency.py
+	$(BIN)/python bench/new_city_latency.py
 
 clean-results:
 	rm -rf results/splits results/runs results/grid.* results/report.html results/logs .snakemake
