@@ -19,6 +19,7 @@ from pathlib import Path
 import pandas as pd
 
 from pipeline.errors import InputError
+from pipeline.provenance import file_digest
 from pipeline.textfile import read_text
 
 # Columns of RawTable.frame besides the value columns.
@@ -157,3 +158,24 @@ def time_text(table: pd.DataFrame, time_spec: dict) -> pd.Series:
 
 def time_columns(time_spec: dict) -> list[str]:
     return [time_spec["column"]] if "column" in time_spec else list(time_spec["parts"].values())
+
+
+def read_csv_files(paths: list, spec: dict, needed: list[str], frames_of, long: bool,
+                   records_per_line: int = 1) -> RawTable:
+    """Every file of a CSV layout: its columns checked, its table turned into raw frames by
+    `frames_of(path, table)`, its lines accounted for (a malformed line loses `records_per_line` records)."""
+    frames, files, malformed = [], [], 0
+    for path in paths:
+        text = read_csv_text(path, spec)
+        require_columns(text.table, needed, path, spec["header_line"])
+        frames.extend(frames_of(path, text.table))
+        files.append(text.file_entry(path, file_digest(path)))
+        malformed += text.malformed_records * records_per_line
+    return RawTable(pd.concat(frames, ignore_index=True), long=long, files=files,
+                    pre_dropped={"unparseable_record": malformed})
+
+
+def located(path: Path, table: pd.DataFrame, spec: dict) -> dict:
+    """The columns every raw frame starts with: where each record came from, its station and its stamp."""
+    return {"file": str(path), "line": table["line"], "station_raw": table[spec["station_column"]].str.strip(),
+            "time_raw": time_text(table, spec["time"])}

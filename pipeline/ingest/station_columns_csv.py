@@ -9,22 +9,16 @@ record: rows read = data lines x station columns.
 
 import pandas as pd
 
-from pipeline.ingest.raw import RawTable, read_csv_text, require_columns, time_columns, time_text
-from pipeline.provenance import file_digest
+from pipeline.ingest.raw import RawTable, read_csv_files, time_columns, time_text
 
 
 def read(paths: list, spec: dict) -> RawTable:
-    frames, files, malformed = [], [], 0
     variable = spec["variable"]
-    for path in paths:
-        text = read_csv_text(path, spec)
-        table = text.table
-        require_columns(table, [*time_columns(spec["time"]), *spec["station_columns"]], path, spec["header_line"])
+
+    def frames_of(path, table):
         times = time_text(table, spec["time"])
-        for column in spec["station_columns"]:
-            frames.append(pd.DataFrame({"file": str(path), "line": table["line"], "station_raw": column,
-                                        "time_raw": times, variable: table[column].to_numpy()}))
-        files.append(text.file_entry(path, file_digest(path)))
-        malformed += text.malformed_records * len(spec["station_columns"])
-    return RawTable(pd.concat(frames, ignore_index=True), long=False, files=files,
-                    pre_dropped={"unparseable_record": malformed})
+        return [pd.DataFrame({"file": str(path), "line": table["line"], "station_raw": column, "time_raw": times,
+                              variable: table[column].to_numpy()}) for column in spec["station_columns"]]
+
+    return read_csv_files(paths, spec, [*time_columns(spec["time"]), *spec["station_columns"]], frames_of,
+                          long=False, records_per_line=len(spec["station_columns"]))

@@ -141,6 +141,19 @@ class TorchForecaster(ForecastModel):
         return self
 
 
+@dataclass
+class StackParams(LevelParams):
+    """Size of a stack of hidden layers (MLP) or recurrent layers (LSTM, GRU)."""
+    hidden: int = 32  # units or state size: 32 keeps a 48-hour window at a few ms per batch on one thread
+    layers: int = 1
+    dropout: float = 0.0  # off by default: short runs with early stopping rarely need it
+
+    def __post_init__(self):
+        super().__post_init__()
+        check_positive_ints(self, "hidden", "layers")
+        check_fraction(self, "dropout")
+
+
 class LinearForecaster(TorchForecaster):
     """Same map as ridge (flattened lags -> H) but trained by the shared loop, so it takes penalties."""
 
@@ -159,16 +172,8 @@ class LinearForecaster(TorchForecaster):
 class MLPForecaster(TorchForecaster):
     family = "mlp"
 
-    @dataclass
-    class Params(LevelParams):
-        hidden: int = 32  # units per hidden layer: small enough for quick CPU runs
-        layers: int = 1  # hidden layers
-        dropout: float = 0.0  # off by default: short runs with early stopping rarely need it
-
-        def __post_init__(self):
-            super().__post_init__()
-            check_positive_ints(self, "hidden", "layers")
-            check_fraction(self, "dropout")
+    # hidden: units per hidden layer; layers: hidden layers; dropout: in the hidden layers
+    Params = StackParams
 
     def build_network(self, lookback, n_features, horizon):
         from pipeline.models.networks import MLPNet
@@ -181,16 +186,9 @@ class LSTMForecaster(TorchForecaster):
     family = "lstm"
     cell = "lstm"
 
-    @dataclass
-    class Params(LevelParams):
-        hidden: int = 32  # state size; 32 keeps a 48-hour window at a few ms per batch on one thread
-        layers: int = 1  # stacked recurrent layers
-        dropout: float = 0.0  # between stacked layers only (ignored with one layer)
-
-        def __post_init__(self):
-            super().__post_init__()
-            check_positive_ints(self, "hidden", "layers")
-            check_fraction(self, "dropout")
+    # hidden: state size; layers: stacked recurrent layers; dropout: between stacked layers only (ignored
+    # with one layer)
+    Params = StackParams
 
     def build_network(self, lookback, n_features, horizon):
         from pipeline.models.networks import RecurrentNet
