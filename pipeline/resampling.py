@@ -98,12 +98,12 @@ def seed_interval(values) -> tuple[float, float, str]:
     support no confidence statement. From 3 seeds: the Student t interval of the mean over seeds
     (mean +- t_{1-a/2, n-1} s / sqrt(n)), labelled SEED_CI. No finite value: NaN bounds.
     """
-    from scipy import stats as sps  # imported here: `shiftgrid grid` starts faster
     arr = np.asarray(values, dtype=np.float64)
     arr = arr[np.isfinite(arr)]
     if arr.size == 0:
         return float("nan"), float("nan"), SEED_RANGE
     if arr.size < MIN_SEEDS_FOR_CI:
         return float(arr.min()), float(arr.max()), SEED_RANGE
+    from scipy import stats as sps  # only here: importing scipy.stats takes ~1 s, and 1-2 seeds need none
     half = sps.t.ppf(0.975, arr.size - 1) * arr.std(ddof=1) / np.sqrt(arr.size)
     return float(arr.mean() - half), float(arr.mean() + half), SEED_CI
