@@ -27,6 +27,7 @@ the logged ones is an InputError naming the run id and the record file. A record
 
 from __future__ import annotations
 
+import functools
 import json
 import math
 import tempfile
@@ -135,11 +136,23 @@ def collect_runs(record_paths: list[Path | str]) -> tuple[pd.DataFrame, dict]:
     return runs, skipped
 
 
-def predictions_of(run_id: str, artifact_uri: str, tracking_uri: str, record_path: str) -> pd.DataFrame:
+def local_artifacts(artifact_uri: str, project_artifacts: Path | None) -> Path:
+    """A local run's artifact folder. The store keeps absolute paths, so in a project folder that was moved,
+    copied or mounted elsewhere a folder that is not where the store says is looked up at the same place
+    under this project's own mlartifacts/."""
+    path = Path(unquote(urlparse(artifact_uri).path))
+    if path.exists() or project_artifacts is None or "mlartifacts" not in path.parts:
+        return path
+    tail = path.parts[len(path.parts) - path.parts[::-1].index("mlartifacts"):]
+    return Path(project_artifacts).joinpath(*tail)
+
+
+def predictions_of(run_id: str, artifact_uri: str, tracking_uri: str, record_path: str,
+                   project_artifacts: Path | None = None) -> pd.DataFrame:
     """A run's predictions table: read in place for a local artifact store, downloaded otherwise."""
     parsed = urlparse(artifact_uri)
     if parsed.scheme in ("", "file"):
-        path = Path(unquote(parsed.path)) / PREDICTIONS_ARTIFACT
+        path = local_artifacts(artifact_uri, project_artifacts) / PREDICTIONS_ARTIFACT
         if not path.exists():
             raise InputError(f"MLflow run {run_id} has no artifact {PREDICTIONS_ARTIFACT} ({path})",
                              file=record_path, field="artifacts")
@@ -233,10 +246,12 @@ def build_grid(runs: pd.DataFrame, dm: pd.DataFrame, intervals: pd.DataFrame, me
 
 
 def aggregate(record_paths: list[Path | str], out_dir: Path | str, metric: str = "mae",
-              n_boot: int = 2000, load=predictions_of) -> dict:
-    """Whole aggregation step; returns the meta dict also written to grid_meta.json."""
+              n_boot: int = 2000, load=None) -> dict:
+    """Whole aggregation step; returns the meta dict also written to grid_meta.json. `load` reads a run's
+    predictions (default: predictions_of, with this project's mlartifacts/ under `out_dir`)."""
     out_dir = Path(out_dir)
     out_dir.mkdir(parents=True, exist_ok=True)
+    load = load or functools.partial(predictions_of, project_artifacts=out_dir.resolve() / "mlartifacts")
     runs, skipped = collect_runs(record_paths)
     rules = grid_stats.available_rules(runs)
     parts, by_target = {"dm": [], "intervals": [], "summary": [], "trials": []}, {}

@@ -267,3 +267,20 @@ def test_window_tables_give_horizon_and_stride_in_hours_for_a_daily_study():
     tables = window_tables(runs, ["source-holdout"], load=lambda *args: frame)
     assert (tables["r1"]["horizon"], tables["r1"]["stride"]) == (72, 24)
     assert stats.dm_lag_order(tables["r1"]["horizon"], tables["r1"]["stride"]) == 2
+
+
+def test_a_moved_project_reads_its_predictions_from_its_own_artifacts(tmp_path):
+    """The store keeps absolute artifact paths; after the project folder moved, re-aggregating must read the
+    artifacts where they are now (under this project's mlartifacts/), not fail on the old place."""
+    from pipeline.aggregate import PREDICTIONS_ARTIFACT, local_artifacts, predictions_of
+    moved = tmp_path / "new" / "results" / "mlartifacts"
+    artifact = moved / "1" / "abc123" / "artifacts" / PREDICTIONS_ARTIFACT
+    artifact.parent.mkdir(parents=True)
+    pd.DataFrame({"origin": [1, 2]}).to_parquet(artifact)
+    old_uri = (tmp_path / "old" / "results" / "mlartifacts" / "1" / "abc123" / "artifacts").as_uri()
+    assert local_artifacts(old_uri, moved) == moved / "1" / "abc123" / "artifacts"
+    assert predictions_of("abc123", old_uri, "", "record.json", project_artifacts=moved)["origin"].tolist() == [1, 2]
+    with pytest.raises(InputError, match="abc123"):  # without the project's folder: the old place, one line
+        predictions_of("abc123", old_uri, "", "record.json")
+    here = (moved / "1" / "abc123" / "artifacts").as_uri()
+    assert local_artifacts(here, tmp_path / "elsewhere") == moved / "1" / "abc123" / "artifacts"
