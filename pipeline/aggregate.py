@@ -32,7 +32,7 @@ import json
 import math
 import tempfile
 from pathlib import Path
-from urllib.parse import unquote, urlparse
+from urllib.parse import urlparse
 
 import numpy as np
 import pandas as pd
@@ -136,23 +136,12 @@ def collect_runs(record_paths: list[Path | str]) -> tuple[pd.DataFrame, dict]:
     return runs, skipped
 
 
-def local_artifacts(artifact_uri: str, project_artifacts: Path | None) -> Path:
-    """A local run's artifact folder. The store keeps absolute paths, so in a project folder that was moved,
-    copied or mounted elsewhere a folder that is not where the store says is looked up at the same place
-    under this project's own mlartifacts/."""
-    path = Path(unquote(urlparse(artifact_uri).path))
-    if path.exists() or project_artifacts is None or "mlartifacts" not in path.parts:
-        return path
-    tail = path.parts[len(path.parts) - path.parts[::-1].index("mlartifacts"):]
-    return Path(project_artifacts).joinpath(*tail)
-
-
 def predictions_of(run_id: str, artifact_uri: str, tracking_uri: str, record_path: str,
                    project_artifacts: Path | None = None) -> pd.DataFrame:
     """A run's predictions table: read in place for a local artifact store, downloaded otherwise."""
     parsed = urlparse(artifact_uri)
     if parsed.scheme in ("", "file"):
-        path = local_artifacts(artifact_uri, project_artifacts) / PREDICTIONS_ARTIFACT
+        path = tracking.local_artifacts(artifact_uri, project_artifacts) / PREDICTIONS_ARTIFACT
         if not path.exists():
             raise InputError(f"MLflow run {run_id} has no artifact {PREDICTIONS_ARTIFACT} ({path})",
                              file=record_path, field="artifacts")

@@ -89,8 +89,21 @@ def download_artifact(client, run_id: str, path: str, workdir: Path | str) -> Pa
     try:
         return Path(client.download_artifacts(run_id, path, str(workdir)))
     except (MlflowException, OSError) as error:  # missing artifact: MLflow's own error or a missing file
+        moved = moved_artifact(client, run_id, path)
+        if moved is not None:
+            return moved
         raise InputError(f"run {run_id} has no readable artifact {path}: {str(error).splitlines()[0]}",
                          field="artifacts") from None
+
+
+def moved_artifact(client, run_id: str, path: str) -> Path | None:
+    """The artifact in a project folder that moved since the run: a SQLite store's artifacts sit beside it
+    (results_dir/mlartifacts), while the store still names the old absolute place. None when not found."""
+    store = tracking.sqlite_path(client.tracking_uri)
+    if store is None:
+        return None
+    folder = tracking.local_artifacts(client.get_run(run_id).info.artifact_uri, store.resolve().parent / "mlartifacts")
+    return folder / path if (folder / path).is_file() else None
 
 
 def resolved_config(client, run_id: str) -> dict:

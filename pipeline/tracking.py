@@ -19,6 +19,7 @@ import re
 import time
 from pathlib import Path
 from typing import Iterable
+from urllib.parse import unquote, urlparse
 
 from pipeline.errors import InputError
 
@@ -131,6 +132,17 @@ def resolve_tracking_uri(uri: str | None, results_dir: Path | str) -> str:
 
 def artifact_location(results_dir: Path | str) -> str:
     return (Path(results_dir).resolve() / "mlartifacts").as_uri()
+
+
+def local_artifacts(artifact_uri: str, project_artifacts: Path | None) -> Path:
+    """A local run's artifact folder. The store keeps absolute paths, so in a project folder that was moved,
+    copied or mounted elsewhere a folder that is not where the store says is looked up at the same place
+    under this project's own mlartifacts/ (`project_artifacts`)."""
+    path = Path(unquote(urlparse(artifact_uri).path))
+    if path.exists() or project_artifacts is None or "mlartifacts" not in path.parts:
+        return path
+    tail = path.parts[len(path.parts) - path.parts[::-1].index("mlartifacts"):]
+    return Path(project_artifacts).joinpath(*tail)
 
 
 def search_all_runs(client, experiment_ids: list[str], filter_string: str = "") -> list:

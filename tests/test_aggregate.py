@@ -272,7 +272,8 @@ def test_window_tables_give_horizon_and_stride_in_hours_for_a_daily_study():
 def test_a_moved_project_reads_its_predictions_from_its_own_artifacts(tmp_path):
     """The store keeps absolute artifact paths; after the project folder moved, re-aggregating must read the
     artifacts where they are now (under this project's mlartifacts/), not fail on the old place."""
-    from pipeline.aggregate import PREDICTIONS_ARTIFACT, local_artifacts, predictions_of
+    from pipeline.aggregate import PREDICTIONS_ARTIFACT, predictions_of
+    from pipeline.tracking import local_artifacts
     moved = tmp_path / "new" / "results" / "mlartifacts"
     artifact = moved / "1" / "abc123" / "artifacts" / PREDICTIONS_ARTIFACT
     artifact.parent.mkdir(parents=True)

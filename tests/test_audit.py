@@ -200,3 +200,28 @@ def test_a_damaged_config_artifact_is_one_line(tmp_path, monkeypatch):
     with pytest.raises(InputError) as caught:
         audit.resolved_config(None, "abc123")
     assert "not readable YAML" in str(caught.value) and "\n" not in str(caught.value)
+
+
+def test_an_artifact_is_found_after_the_project_folder_moved(tmp_path):
+    """The SQLite store records absolute artifact paths; after `mv old new` the audit commands read each
+    artifact beside the store's new place instead of failing on the old one."""
+    import shutil
+
+    from pipeline import tracking
+
+    old = tmp_path / "old" / "results"
+    old.mkdir(parents=True)
+    uri = tracking.resolve_tracking_uri(None, old)
+    experiment = tracking.setup_store(uri, "moved", tracking.artifact_location(old))
+    client = tracking.client_for(uri)
+    run_id = client.create_run(experiment).info.run_id
+    note = tmp_path / "resolved_config.yaml"
+    note.write_text("job: {}\nsplit: {}\n")
+    client.log_artifact(run_id, str(note), "config")
+    client.set_terminated(run_id)
+    shutil.move(str(tmp_path / "old"), str(tmp_path / "new"))
+    moved = tracking.client_for(tracking.resolve_tracking_uri(None, tmp_path / "new" / "results"))
+    assert audit.resolved_config(moved, run_id) == {"job": {}, "split": {}}
+    shutil.rmtree(tmp_path / "new" / "results" / "mlartifacts")
+    with pytest.raises(InputError, match=f"run {run_id} has no readable artifact"):
+        audit.resolved_config(moved, run_id)
