@@ -28,6 +28,7 @@ test-fast: $(STAMP)
 bench: $(STAMP)
 	$(BIN)/python bench/ingest_vs_pyarrow.py
 	$(BIN)/python bench/startup_overhead.py
+	$(BIN)/python bench/demo_stages.py
 	$(BIN)/python bench/trainer_vs_bare_torch.py
 	$(BIN)/python bench/seed_ensemble.py
 	$(BIN)/python bench/bookkeeping_scale.py
