@@ -29,7 +29,7 @@ DROP_REASONS = ("unparseable_record", "unknown_station", "variable_not_mapped", 
                 "ambiguous_local_time", "timestamp_off_the_step", "conflicting_duplicate")
 
 
-def _matching_files(raw_dir, pattern: str) -> list[Path]:
+def matching_files(raw_dir, pattern: str) -> list[Path]:
     paths = sorted(p for p in Path(raw_dir).glob(pattern) if p.is_file())
     if not paths:
         raise InputError(f"no raw file matches '{pattern}'", file=str(Path(raw_dir) / pattern))
@@ -118,7 +118,7 @@ def ingest_city(city: str, fmt: dict, raw_dir, stations: pd.DataFrame,
                 ) -> tuple[pd.DataFrame, dict]:
     """Read a city's raw dump and return (clean table, QC report dict). Writes nothing."""
     spec = validate_format(city, fmt, reference_temperature_c, config_file)
-    paths = _matching_files(raw_dir, spec["files"])
+    paths = matching_files(raw_dir, spec["files"])
     raw = READERS[spec["layout"]].read(paths, spec)
     frame = raw.frame.reset_index(drop=True)
     reason = np.full(len(frame), "", dtype=object)

@@ -14,13 +14,13 @@ from pathlib import Path
 import pandas as pd
 
 from pipeline.errors import InputError
-from pipeline.ingest.core import READERS, _matching_files, ingest_city
+from pipeline.ingest.core import READERS, matching_files, ingest_city
 from pipeline.ingest.formats import validate_format
 from pipeline.stations import load_stations, stations_of_city
 
 
 def _stations_from_codes(city: str, spec: dict, raw_dir) -> pd.DataFrame:
-    raw = READERS[spec["layout"]].read(_matching_files(raw_dir, spec["files"]), spec)
+    raw = READERS[spec["layout"]].read(matching_files(raw_dir, spec["files"]), spec)
     codes = sorted({spec["station_map"].get(code, code) for code in raw.frame["station_raw"].unique() if code})
     return pd.DataFrame({"station_id": codes, "city": city})
 
