@@ -13,6 +13,9 @@ from dataclasses import dataclass
 from pipeline.errors import InputError, from_mapping
 
 SAMPLING_MODES = ("balanced", "pooled")  # fit.sampling; the samplers live in pipeline.sampling
+# fit.validation_windows: which validation windows a fit is evaluated and selected on (pipeline.train);
+# the first is the default.
+VALIDATION_WINDOW_MODES = ("non_overlapping", "all")
 
 
 @dataclass
@@ -30,11 +33,19 @@ class FitConfig:
     # Batch composition and each environment's weight in the loss: balanced (equal share and weight per
     # environment) or pooled (shares and weights follow the environments' sizes); see pipeline.sampling.
     sampling: str = "balanced"
+    # Validation windows evaluated during the fit and for model selection (pipeline.train), for every
+    # family and rule: non_overlapping keeps, per set and station, only windows whose forecast targets do
+    # not overlap (origins >= forecast.horizon_hours apart): overlapping windows repeat most target hours,
+    # so this keeps the information at horizon / stride times less evaluation; all: every window. A fit
+    # setting, not a forecast one: it changes how a fit is monitored, not which windows exist (test
+    # metrics always use every test window).
+    validation_windows: str = VALIDATION_WINDOW_MODES[0]
 
     def __post_init__(self):
-        if self.sampling not in SAMPLING_MODES:
-            raise InputError(f"must be one of {', '.join(SAMPLING_MODES)}, got {self.sampling!r}",
-                             field="fit.sampling")
+        for name, modes in (("sampling", SAMPLING_MODES), ("validation_windows", VALIDATION_WINDOW_MODES)):
+            if getattr(self, name) not in modes:
+                raise InputError(f"must be one of {', '.join(modes)}, got {getattr(self, name)!r}",
+                                 field=f"fit.{name}")
         for name in ("max_steps", "batch_size", "eval_every", "patience", "threads"):
             value = getattr(self, name)
             if isinstance(value, bool) or int(value) != value or value < 1:

@@ -2,7 +2,8 @@
 
 Pure computation (no files, no MLflow): pipeline.train_job reads the inputs, calls `run_seed` for every
 unit of a job and logs the outcome. Obeys the job slice (pipeline.config.job_slice): model, penalty,
-fit, selection (rule + also: every rule's checkpoint is evaluated), forecast, metrics.
+fit (with `fit.validation_windows`: which validation windows every fit is evaluated and selected on, see
+`validation_sets`), selection (rule + also: every rule's checkpoint is evaluated), forecast, metrics.
 Metrics are computed in the target's canonical units on the target test block, plus the source test
 block per environment (worst-environment risk, in-distribution vs target gap); per rule also its validation
 value at the chosen step (`<rule>.selection_score`), by which a hyperparameter search selects its trial.
@@ -22,12 +23,26 @@ from pipeline.fit_config import FitConfig
 from pipeline.metrics import forecast_scores, mse
 from pipeline.models import build_model
 from pipeline.penalties import build_penalty
+from pipeline.windows import non_overlapping_targets
 
 
 def subset(window_set, mask: np.ndarray):
     """The windows of a WindowSet where mask is True (same feature and environment lists)."""
     return dataclasses.replace(window_set, X=window_set.X[mask], y=window_set.y[mask], env=window_set.env[mask],
                                station=window_set.station[mask], origin=window_set.origin[mask])
+
+
+def validation_sets(windows, job: dict) -> dict:
+    """The validation sets every fit of this job is evaluated and selected on (all families, search trials,
+    selection rules and rotation refits): {"source": ..., "target": ...}, each thinned as
+    `fit.validation_windows` says (pipeline.fit_config). Test metrics never use these: they take every
+    test window."""
+    sets = {"source": windows.val_source, "target": windows.val_target}
+    if FitConfig(**job["fit"]).validation_windows == "all":
+        return sets
+    horizon = job["forecast"]["horizon_hours"]
+    return {name: subset(window_set, non_overlapping_targets(window_set, horizon))
+            for name, window_set in sets.items()}
 
 
 def station_city_map(tables: dict[str, pd.DataFrame]) -> dict[str, str]:
@@ -86,14 +101,17 @@ def validation_history(model, val: dict) -> list[dict]:
     return [entry]
 
 
-def rotation_curves(job: dict, seed: int, windows, split: dict, station_city: dict) -> dict[str, dict]:
+def rotation_curves(job: dict, seed: int, windows, split: dict, station_city: dict,
+                    val_source) -> dict[str, dict]:
+    """Per left-out source group, the validation curve of a refit without it, on `val_source` (the job's
+    source validation set, pipeline.train.validation_sets) restricted to the group's stations."""
     curves = {}
     for group, stations in rotation_groups(split, station_city).items():
         keep = ~np.isin(windows.train.station, list(stations))
-        held = np.isin(windows.val_source.station, list(stations))
+        held = np.isin(val_source.station, list(stations))
         if keep.sum() == 0 or held.sum() == 0:
             continue
-        held_out = {"source": subset(windows.val_source, held)}
+        held_out = {"source": subset(val_source, held)}
         refit = _fit(job, seed, subset(windows.train, keep), held_out)
         curves[group] = selection.curve(validation_history(refit, held_out), "val/source/all")
     return curves
@@ -161,7 +179,7 @@ def run_seed(job: dict, seed: int, windows, split: dict, station_city: dict, gro
     """Fit one seed (through its `group` when it trains with its siblings) and evaluate it under every
     configured selection rule."""
     started = time.perf_counter()
-    val = {"source": windows.val_source, "target": windows.val_target}
+    val = validation_sets(windows, job)
     model = group.fit(seed, windows.train, val) if group is not None else _fit(job, seed, windows.train, val)
     fit_seconds = time.perf_counter() - started
     primary = job["selection"]["rule"]
@@ -169,7 +187,7 @@ def run_seed(job: dict, seed: int, windows, split: dict, station_city: dict, gro
     history = validation_history(model, val)
     rotation = None
     if selection.ROTATION in rules:
-        rotation = rotation_curves(job, seed, windows, split, station_city)
+        rotation = rotation_curves(job, seed, windows, split, station_city, val["source"])
         if not rotation and model.history_:
             rules.remove(selection.ROTATION)  # a single source group cannot be left out
     metrics, predictions, chosen = {}, {}, {}
@@ -190,4 +208,5 @@ def run_seed(job: dict, seed: int, windows, split: dict, station_city: dict, gro
     # and bookkeeping, which bench/startup_overhead.py reports as a share of the sweep.
     metrics["compute_seconds"] = time.perf_counter() - started
     return {"model": model, "metrics": metrics, "predictions": predictions, "chosen": chosen,
-            "primary": primary if primary in chosen else rules[0]}
+            "primary": primary if primary in chosen else rules[0],
+            "validation_windows": {name: len(window_set.y) for name, window_set in val.items()}}

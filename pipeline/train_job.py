@@ -103,6 +103,8 @@ def _train_and_log(client, experiment_id: str, unit: dict, split: dict, windows,
         params = tracking.flatten({k: v for k, v in job.items() if k != "model_name"})
         params.update({"n_train_windows": str(len(windows.train.y)),
                        "n_test_windows": str(len(windows.test_target.y))})
+        # fit.validation_windows is among the params (the job slice); the sizes show what it left
+        params.update({f"n_val_{name}_windows": str(n) for name, n in outcome["validation_windows"].items()})
         with tempfile.TemporaryDirectory() as workdir:
             artifacts = _artifacts(Path(workdir), job, split, outcome, windows)
             tracking.log_run(client, experiment_id, run_name=run_name, params=params, metrics=outcome["metrics"],

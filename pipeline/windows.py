@@ -305,3 +305,26 @@ def build_windows(split_record: dict, tables: dict, cfg: ForecastConfig | dict |
     if len(windows.train) == 0:
         raise InputError(f"{record['split_id']}: no training window (skipped: {skipped})", field="windows")
     return windows
+
+
+def non_overlapping_targets(window_set: WindowSet, horizon_hours: float) -> np.ndarray:
+    """Boolean mask of the windows whose forecast targets overlap no other kept window's: per station, in
+    origin order, a window is kept when its origin is at least `horizon_hours` after the last kept one
+    (the first window of every station is kept). Windows at a stride below the horizon share most of
+    their target hours, so the kept ones carry nearly the same information at horizon / stride times
+    fewer forecasts (pipeline.train evaluates fits on them: `fit.validation_windows`)."""
+    keep = np.zeros(len(window_set.y), dtype=bool)
+    if not len(keep):
+        return keep
+    gap = np.timedelta64(int(round(float(horizon_hours) * 3600)), "s")
+    origins = np.asarray(window_set.origin).astype("datetime64[ns]")
+    stations = np.asarray(window_set.station)
+    for station in pd.unique(stations):
+        rows = np.flatnonzero(stations == station)
+        rows = rows[np.argsort(origins[rows], kind="stable")]
+        ordered = origins[rows]
+        position = 0
+        while position < len(rows):  # jump to the first origin at least one horizon after the kept one
+            keep[rows[position]] = True
+            position = int(np.searchsorted(ordered, ordered[position] + gap, side="left"))
+    return keep

@@ -89,3 +89,21 @@ def test_seeds_trained_together_log_what_each_seed_logs_alone(setting, monkeypat
         np.testing.assert_equal({k: v for k, v in logged.items() if k not in timings},
                                 {k: v for k, v in logged_alone.items() if k not in timings})
     assert len({record["metrics"]["target_mae"] for record in together}) == 3  # the seeds differ
+
+
+def test_the_run_params_name_the_validation_windows_and_their_counts(setting):
+    folder, uri = setting
+    client = client_for(uri)
+    counts, test_windows = {}, set()
+    for mode in ("non_overlapping", "all"):
+        unit = job("ridge", {"alpha": 1.0})
+        unit["fit"] = {**FIT_SETTINGS, "validation_windows": mode}
+        record = run_train_job(folder / "split.json", [{"job": unit, "seed": 0}], [folder / f"v_{mode}.json"], uri,
+                               "unit", "c1", supersede=False, reuse=False)[0]
+        params = client.get_run(record["run_id"]).data.params
+        assert params["fit.validation_windows"] == mode
+        counts[mode] = (int(params["n_val_source_windows"]), int(params["n_val_target_windows"]))
+        test_windows.add(params["n_test_windows"])
+    # stride 4 h, horizon 6 h: every other window is kept; the test metrics use every window either way
+    assert all(0 < thin < every for thin, every in zip(counts["non_overlapping"], counts["all"]))
+    assert len(test_windows) == 1

@@ -6,7 +6,7 @@ import pytest
 
 from pipeline.errors import InputError
 from pipeline.splits import admitted_target_block, compute_time_blocks, plan_splits
-from pipeline.windows import ForecastConfig, build_windows
+from pipeline.windows import ForecastConfig, build_windows, non_overlapping_targets
 from synthetic_clean import START, clean_table, station_table, with_qc
 
 L, H, HOURS = 12, 6, 400
@@ -224,3 +224,39 @@ def test_config_checks():
         build_windows(record, make_tables(), config(horizon_hours=18))
     with pytest.raises(InputError, match="forecast.target"):
         build_windows(record, make_tables(), config(target="pm1"))
+
+
+def hand_windows(stations, hours):
+    """A WindowSet-like object with only the fields the thinning reads: station and origin (hours from START)."""
+    origin = np.array([np.datetime64(START.tz_localize(None), "ns") + np.timedelta64(h, "h") for h in hours])
+    return type("Hand", (), {"station": np.array(stations, dtype=object), "origin": origin,
+                             "y": np.zeros((len(hours), 1))})()
+
+
+def test_thinning_keeps_per_station_the_first_window_and_then_one_per_horizon():
+    # Rows out of origin order and interleaved stations: a at hours 0, 3, ..., 21 (stride 3), plus an
+    # irregular b; horizon 6 h.
+    stations = ["a", "b", "a", "a", "b", "a", "b", "a", "a", "b", "a", "a"]
+    hours = [9, 10, 0, 3, 2, 6, 7, 12, 15, 13, 18, 21]
+    keep = non_overlapping_targets(hand_windows(stations, hours), horizon_hours=6)
+    kept = {s: sorted(h for s2, h, k in zip(stations, hours, keep) if k and s2 == s) for s in "ab"}
+    assert kept == {"a": [0, 6, 12, 18], "b": [2, 10]}  # b: 7 is 5 h after 2 (dropped), 13 is 3 h after 10
+
+
+def test_thinned_windows_never_share_a_target_hour_and_every_station_keeps_its_first():
+    record = make_record()
+    windows = build_windows(record, make_tables(), config(stride_hours=2))
+    for name in ("val_source", "val_target"):
+        window_set = getattr(windows, name)
+        keep = non_overlapping_targets(window_set, H)
+        assert 0 < keep.sum() < len(keep)
+        for station in set(window_set.station):
+            mine = window_set.station == station
+            kept_hours = np.sort(origin_hours(window_set)[mine & keep])
+            assert kept_hours[0] == origin_hours(window_set)[mine].min()  # the first window is kept
+            assert np.all(np.diff(kept_hours) >= H)  # targets (origin + 1 .. origin + H) never overlap
+            # greedy: every dropped window is less than one horizon after the last kept one before it
+            for hour in origin_hours(window_set)[mine & ~keep]:
+                assert hour - kept_hours[kept_hours <= hour].max() < H
+    assert not non_overlapping_targets(windows.val_source, H).all()
+    assert non_overlapping_targets(windows.val_source, 1).all()  # stride >= horizon: nothing overlaps
