@@ -49,7 +49,7 @@ def main() -> None:
     with tempfile.TemporaryDirectory() as folder:
         raw = Path(folder)
         generate_demo(raw, stations, {args.city: fmt}, "2025-01-01", args.days, seed=7)
-        paths = [Path(p) for p in raw_files(raw, fmt)]
+        paths = [Path(p) for p in raw_files(raw, args.city, fmt)]
         n_bytes = sum(p.stat().st_size for p in paths)
         separator = fmt.get("separator", ",")
 

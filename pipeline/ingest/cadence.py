@@ -51,13 +51,19 @@ def cadence_label(step: pd.Timedelta) -> str:
 
 
 def delivered_step(times: pd.Series, series: pd.DataFrame) -> pd.Timedelta | None:
-    """The most common positive difference between consecutive stamps of one series (None: no pair)."""
-    frame = series.assign(_time=times.to_numpy()).dropna(subset=["_time"])
-    frame = frame.drop_duplicates().sort_values([*series.columns, "_time"])
-    same = (frame[list(series.columns)].shift() == frame[list(series.columns)]).all(axis=1)
-    steps = frame["_time"].diff()[same]
-    steps = steps[steps > pd.Timedelta(0)]
-    return None if steps.empty else steps.mode().min()
+    """The most common positive difference between consecutive stamps of one series (None: no pair);
+    the shortest of equally common ones."""
+    valid = times.notna().to_numpy()
+    nanos = times.to_numpy("datetime64[ns]", na_value=np.datetime64("NaT")).view("int64")[valid]
+    series_of = series.groupby(list(series.columns), sort=False, dropna=False).ngroup().to_numpy()[valid]
+    order = np.lexsort((nanos, series_of))
+    nanos, series_of = nanos[order], series_of[order]
+    steps = np.diff(nanos)[series_of[1:] == series_of[:-1]]
+    steps = steps[steps > 0]  # repeated stamps are no step
+    if not len(steps):
+        return None
+    lengths, counts = np.unique(steps, return_counts=True)
+    return pd.Timedelta(int(lengths[np.argmax(counts)]), unit="ns")
 
 
 def aggregate(clean: pd.DataFrame, variables: list[str], step: pd.Timedelta, cadence: pd.Timedelta,

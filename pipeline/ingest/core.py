@@ -86,17 +86,29 @@ def _convert_long(kept: pd.DataFrame, spec: dict, temperature: float):
 
 
 def _complete_grid(keys: pd.DataFrame, values: dict, step: pd.Timedelta) -> pd.DataFrame:
-    """One row per station and step from its first to last delivered step; absent steps MISSING."""
-    delivered = pd.DataFrame({"station_id": keys["station_id"].to_numpy(), "time": keys["time"].to_numpy()})
+    """One row per station and step from its first to last delivered step; absent steps MISSING.
+
+    Keys are unique and on the step (off-step rows and duplicates were dropped), so each delivered row
+    has one place on its station's grid: the station's offset plus its steps since the station's first.
+    """
+    codes, stations = pd.factorize(keys["station_id"], sort=True)
+    nanos = keys["time"].to_numpy("datetime64[ns]").view("int64")
+    per_station = pd.Series(nanos).groupby(codes)
+    first, last = per_station.min().to_numpy(), per_station.max().to_numpy()
+    lengths = (last - first) // step.value + 1
+    starts = np.concatenate([[0], np.cumsum(lengths)[:-1]])
+    rows = int(lengths.sum())
+    steps_in = np.arange(rows) - np.repeat(starts, lengths)
+    grid = pd.DataFrame({"station_id": np.repeat(np.asarray(stations, dtype=object), lengths),
+                         "time": pd.to_datetime(np.repeat(first, lengths) + steps_in * step.value, utc=True)})
+    place = starts[codes] + (nanos - first[codes]) // step.value
     for variable, (numbers, flags) in values.items():
-        delivered[variable] = numbers
-        delivered[qc_column(variable)] = flags
-    pieces = []
-    for station, group in delivered.groupby("station_id", sort=True):
-        hours = pd.date_range(group["time"].min(), group["time"].max(), freq=step)
-        pieces.append(pd.DataFrame({"station_id": station, "time": hours}))
-    grid = pd.concat(pieces, ignore_index=True)
-    return _with_every_variable(grid.merge(delivered, on=["station_id", "time"], how="left"), values)
+        column_values = np.full(rows, np.nan)
+        column_values[place] = numbers
+        column_flags = np.full(rows, QC_MISSING, dtype="int8")
+        column_flags[place] = flags
+        grid[variable], grid[qc_column(variable)] = column_values, column_flags
+    return _with_every_variable(grid, values)
 
 
 def _with_every_variable(clean: pd.DataFrame, delivered) -> pd.DataFrame:
@@ -127,8 +139,9 @@ def ingest_city(city: str, fmt: dict, raw_dir, stations: pd.DataFrame,
     def active():
         return reason == ""
 
-    codes = {code: spec["station_map"].get(code, code) for code in frame["station_raw"].unique()}
-    frame["station_id"] = frame["station_raw"].map(codes)
+    station_codes, delivered_codes = pd.factorize(frame["station_raw"])
+    mapped = pd.array([spec["station_map"].get(code, code) for code in delivered_codes], dtype="str")
+    frame["station_id"] = mapped.take(station_codes)
     unknown = ~frame["station_id"].isin(known).to_numpy()
     reason[unknown] = "unknown_station"
     series_keys = ["station_id"]
@@ -143,7 +156,7 @@ def ingest_city(city: str, fmt: dict, raw_dir, stations: pd.DataFrame,
     reason[active() & parsed.isna().to_numpy()] = "unparseable_timestamp"
     window = timeparse.window_bounds(spec["time"])
     reason[active() & timeparse.outside_window(parsed, window)] = "timestamp_outside_window"
-    exact = qc.mark_exact_duplicates(frame, active(), ["station_id", "time_raw", *value_columns])
+    exact = qc.mark_exact_duplicates(frame, active(), ["station_id", "time_raw"], value_columns)
     reason[exact] = "exact_duplicate"
 
     if timeparse.is_aware(parsed):
@@ -222,10 +235,10 @@ def ingest_city(city: str, fmt: dict, raw_dir, stations: pd.DataFrame,
         "variables_delivered": sorted(values),
         "variables_not_delivered": [v for v in VARIABLE_NAMES if v not in values],
         "values": qc.flag_counts(clean, VARIABLE_NAMES),
-        "stations_without_data": sorted(known - set(clean["station_id"])),
+        "stations_without_data": sorted(known - set(clean["station_id"].unique())),
         **qc.series_notes(clean, sorted(values)),
-        "gaps": {station: qc.station_gaps(group["utc"], step)
-                 for station, group in kept.groupby("station_id", sort=True)},
+        "gaps": {station: qc.station_gaps(times, step)
+                 for station, times in kept["utc"].groupby(kept["station_id"], sort=True)},
         "clean_rows": int(len(clean)),
     }
     assert report["rows"]["dropped"] == sum(dropped.values()), "every dropped row has one reason"

@@ -21,11 +21,18 @@ from pipeline.variables import QC_FLAG_NAMES, QC_OK, qc_column
 HOUR = pd.Timedelta(hours=1)
 
 
-def mark_exact_duplicates(frame: pd.DataFrame, active: np.ndarray, columns: list[str]) -> np.ndarray:
-    """Boolean mask (over frame) of active rows that repeat an earlier active row exactly."""
+def mark_exact_duplicates(frame: pd.DataFrame, active: np.ndarray, keys: list[str],
+                          values: list[str]) -> np.ndarray:
+    """Boolean mask (over frame) of active rows that repeat an earlier active row exactly (keys and values).
+
+    Only rows whose keys repeat can repeat exactly, and they are few: the values of those alone are compared.
+    """
     duplicated = np.zeros(len(frame), dtype=bool)
     if active.any():
-        duplicated[active] = frame.loc[active, columns].duplicated(keep="first").to_numpy()
+        maybe = np.zeros(len(frame), dtype=bool)
+        maybe[active] = frame.loc[active, keys].duplicated(keep=False).to_numpy()
+        if maybe.any():
+            duplicated[maybe] = frame.loc[maybe, [*keys, *values]].duplicated(keep="first").to_numpy()
     return duplicated
 
 

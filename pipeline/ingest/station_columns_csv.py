@@ -18,7 +18,7 @@ def read(paths: list, spec: dict) -> RawTable:
     def frames_of(path, table):
         times = time_text(table, spec["time"])
         return [pd.DataFrame({"file": str(path), "line": table["line"], "station_raw": column, "time_raw": times,
-                              variable: table[column].to_numpy()}) for column in spec["station_columns"]]
+                              variable: table[column].array}) for column in spec["station_columns"]]
 
     return read_csv_files(paths, spec, [*time_columns(spec["time"]), *spec["station_columns"]], frames_of,
                           long=False, records_per_line=len(spec["station_columns"]))

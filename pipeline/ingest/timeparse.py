@@ -28,9 +28,15 @@ _OFFSET_SUFFIX = re.compile(r"(?:Z|[+-]\d{2}:?\d{2})$")
 def parse_text(text: pd.Series, time_spec: dict) -> pd.Series:
     """Text -> datetimes: naive local for strftime formats, UTC-aware for iso8601 / epoch_s.
 
-    Unparseable text gives NaT.
+    Unparseable text gives NaT. Each distinct text is parsed once: a network repeats every stamp once per
+    station (and variable), and parsing is per text, so the result is the same as parsing every row.
     """
-    fmt = time_spec["format"]
+    codes, distinct = pd.factorize(text, use_na_sentinel=False)
+    parsed = _parse_distinct(pd.Series(distinct, dtype=text.dtype), time_spec["format"])
+    return pd.Series(parsed.array.take(codes), index=text.index, name=text.name)
+
+
+def _parse_distinct(text: pd.Series, fmt: str) -> pd.Series:
     if fmt == "iso8601":
         has_offset = text.str.contains(_OFFSET_SUFFIX, regex=True)
         parsed = pd.to_datetime(text.where(has_offset), format="ISO8601", utc=True, errors="coerce")
@@ -58,13 +64,17 @@ def localize_to_utc(naive: pd.Series, group_keys: pd.DataFrame, time_spec: dict)
               "ambiguous_rows": 0, "ambiguous_assigned_summer_time": 0,
               "ambiguous_assigned_standard_time": 0, "ambiguous_lone_rows": 0,
               "ambiguous_rows_dropped": 0, "nonexistent_rows_dropped": 0}
-    # Two cheap passes tell the cases apart: NaT under ambiguous="NaT" (with nonexistent shifted)
-    # marks repeated local hours; NaT under nonexistent="NaT" marks skipped local hours.
-    ambiguous = naive.dt.tz_localize(tz, ambiguous="NaT", nonexistent="shift_forward").isna()
-    nonexistent = naive.dt.tz_localize(tz, ambiguous=np.ones(len(naive), dtype=bool),
-                                       nonexistent="NaT").isna()
-    ambiguous &= naive.notna()
-    nonexistent &= naive.notna() & ~ambiguous
+    # Localizing is per stamp, so each distinct local stamp is localized once, every way it may be read.
+    codes, distinct = pd.factorize(naive, use_na_sentinel=False)
+    local = pd.Series(distinct)
+    # Cheap passes tell the cases apart: NaT under ambiguous="NaT" (with nonexistent shifted) marks
+    # repeated local hours; NaT under nonexistent="NaT" marks skipped local hours.
+    repeated = local.dt.tz_localize(tz, ambiguous="NaT", nonexistent="shift_forward").isna().to_numpy()
+    as_summer = local.dt.tz_localize(tz, ambiguous=np.ones(len(local), dtype=bool), nonexistent="NaT")
+    as_standard = local.dt.tz_localize(tz, ambiguous=np.zeros(len(local), dtype=bool), nonexistent="NaT")
+    skipped = as_summer.isna().to_numpy()
+    ambiguous = pd.Series(repeated[codes], index=naive.index) & naive.notna()
+    nonexistent = pd.Series(skipped[codes], index=naive.index) & naive.notna() & ~ambiguous
     occurrence = pd.Series(0, index=naive.index)
     if ambiguous.any():
         keys = group_keys[ambiguous].copy()
@@ -78,7 +88,9 @@ def localize_to_utc(naive: pd.Series, group_keys: pd.DataFrame, time_spec: dict)
         summer = np.ones(len(naive), dtype=bool)
     else:  # order (and drop: the flag is unused for dropped rows)
         summer = (occurrence == 0).to_numpy()
-    utc = naive.dt.tz_localize(tz, ambiguous=summer, nonexistent="NaT").dt.tz_convert("UTC")
+    # The flag only matters for repeated hours; elsewhere both readings are the same instant.
+    utc = pd.Series(as_summer.array.take(codes), index=naive.index).where(
+        summer, pd.Series(as_standard.array.take(codes), index=naive.index)).dt.tz_convert("UTC")
     reason = pd.Series("", index=naive.index, dtype=object)
     reason[nonexistent] = "nonexistent_local_time"
     report["nonexistent_rows_dropped"] = int(nonexistent.sum())

@@ -6,18 +6,59 @@ missing (empty cell or a missing-value word, any letter case) -> unparseable (te
 sentinel (a delivered no-data code, compared before unit conversion, as delivered) ->
 out of range (outside the canonical variable's [low, high] after conversion).
 A value with any flag other than ok becomes NaN; the flag keeps the reason.
+
+Most cells are plain numbers or missing-value words as delivered, so pyarrow's cast reads those (its
+results are bit for bit what pandas' to_numeric gives for such text); the few other cells (stray words,
+padded text, other letter cases, nan / inf spellings) take the per-cell rules above through pandas.
 """
 
 import numpy as np
 import pandas as pd
+import pyarrow as pa
+import pyarrow.compute as pc
 
 from pipeline.units import Conversion
 from pipeline.variables import (BY_NAME, QC_MISSING, QC_OK, QC_OUT_OF_RANGE, QC_SENTINEL,
                                 QC_UNPARSEABLE)
 
 
+# Text both parsers read the same way: optional sign, digits with one decimal point, optional exponent.
+_PLAIN_NUMBER = r"^[+-]?(?:[0-9]+(?:\.[0-9]*)?|\.[0-9]+)(?:[eE][+-]?[0-9]+)?$"
+
+
 def parse_numbers(text: pd.Series, spec: dict) -> tuple[np.ndarray, np.ndarray]:
     """Text -> (float64 values as delivered, int8 flags); flagged values are NaN."""
+    words = spec["missing_values"]
+    arrow_text = isinstance(text.dtype, pd.StringDtype) and text.dtype.storage == "pyarrow"
+    if not arrow_text or text.hasnans or any(word != word.strip() for word in words):
+        return _parse_cells(text, spec)
+    cells = text.array.__arrow_array__()  # the column's Arrow chunks, no copy
+    is_missing = pc.is_in(cells, value_set=pa.array(words, cells.type))
+    missing = is_missing.to_numpy(zero_copy_only=False)
+    dotted = cells if spec["decimal"] == "." else pc.replace_substring(cells, spec["decimal"], ".")
+    readable = pc.if_else(is_missing, pa.scalar(None, cells.type), dotted)
+    try:
+        numbers = pc.cast(readable, pa.float64()).to_numpy(zero_copy_only=False)
+        plain = ~missing
+    except pa.ArrowInvalid:  # some cell is not a number: read only the plain ones here
+        plain = pc.match_substring_regex(readable, _PLAIN_NUMBER).fill_null(False).to_numpy(zero_copy_only=False)
+        numbers = pc.cast(pc.if_else(plain, readable, pa.scalar(None, cells.type)),
+                          pa.float64()).to_numpy(zero_copy_only=False)
+    numbers = np.array(numbers, dtype="float64")  # writable; nulls are NaN
+    plain &= np.isfinite(numbers)
+    flags = np.full(len(text), QC_OK, dtype="int8")
+    flags[missing] = QC_MISSING
+    sentinel = plain & np.isin(numbers, np.asarray(spec["sentinels"], dtype="float64"))
+    flags[sentinel] = QC_SENTINEL
+    other = ~missing & ~plain
+    if other.any():
+        numbers[other], flags[other] = _parse_cells(text[other], spec)
+    numbers[flags != QC_OK] = np.nan
+    return numbers, flags
+
+
+def _parse_cells(text: pd.Series, spec: dict) -> tuple[np.ndarray, np.ndarray]:
+    """The per-cell rules of the module docstring, for any text."""
     stripped = text.astype(str).str.strip()
     missing = stripped.isin(spec["missing_values"]).to_numpy(copy=True)
     if spec["decimal"] != ".":

@@ -14,9 +14,8 @@ def read(paths: list, spec: dict) -> RawTable:
     needed = [spec["station_column"], *time_columns(spec["time"]), *spec["columns"]]
 
     def frames_of(path, table):
-        frame = pd.DataFrame(located(path, table, spec))
-        for raw_name, canonical in spec["columns"].items():
-            frame[canonical] = table[raw_name].to_numpy()
-        return [frame]
+        # .array keeps the Arrow strings as they are (no copy into Python objects)
+        return [pd.DataFrame({**located(path, table, spec),
+                              **{canonical: table[raw_name].array for raw_name, canonical in spec["columns"].items()}})]
 
     return read_csv_files(paths, spec, needed, frames_of, long=False)
