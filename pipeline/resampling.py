@@ -45,18 +45,29 @@ def moving_block_starts(n: int, block: int, n_boot: int, seed: int) -> np.ndarra
     return rng.integers(n - block + 1, size=(n_boot, math.ceil(n / block)), dtype=np.int64)
 
 
-def resampled_sums(values: np.ndarray, starts: np.ndarray, block: int) -> np.ndarray:
-    """Column sums of the rows a moving-block resample picks: (n_boot, features).
+def block_counts(n: int, starts: np.ndarray, block: int) -> np.ndarray:
+    """How often each of the n rows is picked by each moving-block resample: (n_boot, n).
 
-    `values` is (n, features); each resample concatenates blocks of `block` consecutive rows from
-    `starts` and truncates to n rows (the last block is cut short). Prefix sums make each block an O(1)
-    difference, so memory stays at n_boot x blocks x features.
-    """
-    n = values.shape[0]
-    prefix = np.vstack([np.zeros((1, values.shape[1])), np.cumsum(values, axis=0)])
+    Each resample concatenates blocks of `block` consecutive rows from `starts` and truncates to n rows
+    (the last block is cut short). A resample's column sums are then counts @ values: one matrix product
+    serves every column (and every grid cell that shares the draws)."""
     lengths = np.full(starts.shape[1], block, dtype=np.int64)
     lengths[-1] = n - block * (starts.shape[1] - 1)
-    return (prefix[starts + lengths] - prefix[starts]).sum(axis=1)
+    offsets = np.arange(block)
+    rows = starts[:, :, None] + offsets  # (n_boot, blocks, block)
+    used = np.broadcast_to(offsets < lengths[:, None], rows.shape)
+    flat = (np.arange(starts.shape[0])[:, None, None] * n + rows)[used]
+    return np.bincount(flat, minlength=starts.shape[0] * n).reshape(starts.shape[0], n).astype(np.float64)
+
+
+def resample_counts(n: int, block: int, n_boot: int, seed: int) -> np.ndarray:
+    """`block_counts` of the draws `moving_block_starts(n, block, n_boot, seed)` makes."""
+    return block_counts(n, moving_block_starts(n, block, n_boot, seed), block)
+
+
+def resampled_sums(values: np.ndarray, starts: np.ndarray, block: int) -> np.ndarray:
+    """Column sums of the rows a moving-block resample picks: (n_boot, features), for `values` (n, features)."""
+    return block_counts(values.shape[0], starts, block) @ values
 
 
 def moving_block_replicates(values: np.ndarray, statistic: Callable[[np.ndarray], np.ndarray], block: int,
@@ -73,22 +84,31 @@ def moving_block_replicates(values: np.ndarray, statistic: Callable[[np.ndarray]
     if values.ndim != 2 or not np.isfinite(values).all():
         raise InputError(f"values must be a finite (n, features) array, got shape {values.shape}",
                          field="values")
-    starts = moving_block_starts(values.shape[0], block, n_boot, seed)
-    return np.concatenate([statistic(resampled_sums(values, starts[i:i + chunk], block))
-                           for i in range(0, n_boot, chunk)])
+    counts = resample_counts(values.shape[0], block, n_boot, seed)
+    return np.concatenate([statistic(counts[i:i + chunk] @ values) for i in range(0, n_boot, chunk)])
 
 
 def percentile_interval(replicates, level: float = 0.95) -> tuple[float, float]:
     """Percentile interval of bootstrap replicates (NaN replicates, e.g. empty resamples, left out)."""
+    low, high = percentile_intervals(np.asarray(replicates, dtype=np.float64).reshape(1, -1), level)
+    return float(low[0]), float(high[0])
+
+
+def percentile_intervals(replicates: np.ndarray, level: float = 0.95) -> tuple[np.ndarray, np.ndarray]:
+    """`percentile_interval` of each row of (statistics, n_boot) replicates: (lows, highs). Rows without a
+    NaN are done in one np.quantile call (the same quantiles row by row); the others one by one, without
+    their NaN."""
     if not 0.0 < level < 1.0:
         raise InputError(f"level must lie in (0, 1), got {level}", field="level")
-    arr = np.asarray(replicates, dtype=np.float64)
-    arr = arr[np.isfinite(arr)]
-    if arr.size == 0:
-        return float("nan"), float("nan")
     tail = (1.0 - level) / 2.0
-    low, high = np.quantile(arr, [tail, 1.0 - tail])
-    return float(low), float(high)
+    bounds = np.full((2, replicates.shape[0]), np.nan)
+    finite = np.isfinite(replicates)
+    whole = finite.all(axis=1)
+    if whole.any():
+        bounds[:, whole] = np.quantile(replicates[whole], [tail, 1.0 - tail], axis=1)
+    for row in np.flatnonzero(~whole & finite.any(axis=1)):
+        bounds[:, row] = np.quantile(replicates[row, finite[row]], [tail, 1.0 - tail])
+    return bounds[0], bounds[1]
 
 
 def seed_interval(values) -> tuple[float, float, str]:

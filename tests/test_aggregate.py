@@ -280,7 +280,7 @@ def test_a_moved_project_reads_its_predictions_from_its_own_artifacts(tmp_path):
     pd.DataFrame({"origin": [1, 2]}).to_parquet(artifact)
     old_uri = (tmp_path / "old" / "results" / "mlartifacts" / "1" / "abc123" / "artifacts").as_uri()
     assert local_artifacts(old_uri, moved) == moved / "1" / "abc123" / "artifacts"
-    assert predictions_of("abc123", old_uri, "", "record.json", project_artifacts=moved)["origin"].tolist() == [1, 2]
+    assert predictions_of("abc123", old_uri, "", "record.json", project_artifacts=moved)["origin"].to_pylist() == [1, 2]
     with pytest.raises(InputError, match="abc123"):  # without the project's folder: the old place, one line
         predictions_of("abc123", old_uri, "", "record.json")
     here = (moved / "1" / "abc123" / "artifacts").as_uri()
