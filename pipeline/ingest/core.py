@@ -47,13 +47,15 @@ def raw_files(raw_dir, city: str, fmt: dict) -> list[str]:
     return paths or [str(Path(raw_dir) / pattern)]
 
 
-def _convert_wide(kept: pd.DataFrame, spec: dict, temperature: float):
+def _convert_wide(parsed: dict, kept: np.ndarray, spec: dict, temperature: float):
+    """`parsed`: {variable: (numbers, flags)} over every delivered row, emptied as it is converted (so
+    that the delivered and the converted values are not all held at once); `kept`: the mask of rows kept."""
     values, conversions = {}, {}
     for canonical in spec["columns"].values():
         conversion = conversion_to_canonical(canonical, spec["units"][canonical], temperature)
-        numbers, flags = parse_numbers(kept[canonical], spec)
-        values[canonical] = to_canonical(numbers, flags, canonical, conversion)
-        conversions[canonical] = [{**conversion.as_record(), "values": int(len(kept))}]
+        numbers, flags = parsed.pop(canonical)
+        values[canonical] = to_canonical(numbers[kept], flags[kept], canonical, conversion)
+        conversions[canonical] = [{**conversion.as_record(), "values": int(kept.sum())}]
     return values, conversions
 
 
@@ -99,30 +101,32 @@ def _complete_grid(keys: pd.DataFrame, values: dict, step: pd.Timedelta) -> pd.D
     starts = np.concatenate([[0], np.cumsum(lengths)[:-1]])
     rows = int(lengths.sum())
     steps_in = np.arange(rows) - np.repeat(starts, lengths)
-    grid = pd.DataFrame({"station_id": np.repeat(np.asarray(stations, dtype=object), lengths),
-                         "time": pd.to_datetime(np.repeat(first, lengths) + steps_in * step.value, utc=True)})
+    grid = {"station_id": pd.array(list(stations), dtype="string").take(np.repeat(np.arange(len(stations)), lengths)),
+            "time": pd.to_datetime((np.repeat(first, lengths) + steps_in * step.value).view("datetime64[ns]"),
+                                   utc=True)}
     place = starts[codes] + (nanos - first[codes]) // step.value
     for variable, (numbers, flags) in values.items():
-        column_values = np.full(rows, np.nan)
-        column_values[place] = numbers
-        column_flags = np.full(rows, QC_MISSING, dtype="int8")
-        column_flags[place] = flags
-        grid[variable], grid[qc_column(variable)] = column_values, column_flags
-    return _with_every_variable(grid, values)
+        grid[variable] = np.full(rows, np.nan)
+        grid[variable][place] = numbers
+        grid[qc_column(variable)] = np.full(rows, QC_MISSING, dtype="int8")
+        grid[qc_column(variable)][place] = flags
+    return _with_every_variable(grid, values)  # in (station, time) order as built
 
 
-def _with_every_variable(clean: pd.DataFrame, delivered) -> pd.DataFrame:
-    """The clean-table schema: every canonical variable and its QC column; undelivered ones MISSING."""
-    columns = {"station_id": clean["station_id"].astype("string"),
-               "time": clean["time"].astype("datetime64[ns, UTC]")}
+def _with_every_variable(clean, delivered) -> pd.DataFrame:
+    """The clean-table schema: every canonical variable and its QC column; undelivered ones MISSING.
+    `clean`: a table or {column: array}; rows stay in the order given."""
+    rows = len(clean["time"])
+    columns = {"station_id": pd.array(clean["station_id"], dtype="string"),
+               "time": pd.array(clean["time"], dtype="datetime64[ns, UTC]")}
     for variable in VARIABLE_NAMES:
         if variable in delivered:
-            columns[variable] = clean[variable].astype("float64")
-            columns[qc_column(variable)] = clean[qc_column(variable)].fillna(QC_MISSING).astype("int8")
+            columns[variable] = np.asarray(clean[variable], dtype="float64")
+            columns[qc_column(variable)] = np.asarray(clean[qc_column(variable)], dtype="int8")
         else:  # not delivered by this city
-            columns[variable] = np.full(len(clean), np.nan)
-            columns[qc_column(variable)] = np.full(len(clean), QC_MISSING, dtype="int8")
-    return pd.DataFrame(columns).sort_values(["station_id", "time"], ignore_index=True)
+            columns[variable] = np.full(rows, np.nan)
+            columns[qc_column(variable)] = np.full(rows, QC_MISSING, dtype="int8")
+    return pd.DataFrame(columns)
 
 
 def ingest_city(city: str, fmt: dict, raw_dir, stations: pd.DataFrame,
@@ -158,6 +162,9 @@ def ingest_city(city: str, fmt: dict, raw_dir, stations: pd.DataFrame,
     reason[active() & timeparse.outside_window(parsed, window)] = "timestamp_outside_window"
     exact = qc.mark_exact_duplicates(frame, active(), ["station_id", "time_raw"], value_columns)
     reason[exact] = "exact_duplicate"
+    if not raw.long:  # the values' text has served (exact duplicates): numbers take far less memory
+        parsed_values = {column: parse_numbers(frame[column], spec) for column in value_columns}
+        frame = frame.drop(columns=value_columns)
 
     if timeparse.is_aware(parsed):
         utc = parsed.where(active())  # dropped stamps may lie outside what nanoseconds can hold
@@ -186,7 +193,7 @@ def ingest_city(city: str, fmt: dict, raw_dir, stations: pd.DataFrame,
                                                              spec["duplicates"])
     reason[losers] = "conflicting_duplicate"
 
-    kept = frame[active()].reset_index(drop=True)
+    kept = frame.loc[active(), list(frame.columns) if raw.long else ["station_id", "utc"]].reset_index(drop=True)
     if kept.empty:  # never hand an empty table to the splits and training
         if len(frame) + raw.pre_dropped.get("unparseable_record", 0) == 0:
             raise InputError(f"no data row in {len(paths)} delivered file(s)", file=str(paths[0]),
@@ -199,12 +206,12 @@ def ingest_city(city: str, fmt: dict, raw_dir, stations: pd.DataFrame,
         keys, values, conversions = _convert_long(kept, spec, reference_temperature_c)
     else:
         keys = kept[["station_id", "utc"]].rename(columns={"utc": "time"})
-        values, conversions = _convert_wide(kept, spec, reference_temperature_c)
+        values, conversions = _convert_wide(parsed_values, active(), spec, reference_temperature_c)
     clean = _complete_grid(keys, values, step)
     aggregation = None
     if study_step > step:
         clean, aggregation = cadence.aggregate(clean, sorted(values), step, study_step, spec["completeness"])
-        clean = _with_every_variable(clean, values)
+        clean = _with_every_variable(clean, values).sort_values(["station_id", "time"], ignore_index=True)
 
     dropped = {name: int((reason == name).sum()) for name in DROP_REASONS}
     dropped["unparseable_record"] = raw.pre_dropped.get("unparseable_record", 0)

@@ -30,7 +30,7 @@ def mark_exact_duplicates(frame: pd.DataFrame, active: np.ndarray, keys: list[st
     duplicated = np.zeros(len(frame), dtype=bool)
     if active.any():
         maybe = np.zeros(len(frame), dtype=bool)
-        maybe[active] = frame.loc[active, keys].duplicated(keep=False).to_numpy()
+        maybe[active] = pd.Series(_row_keys(frame, keys)[active]).duplicated(keep=False).to_numpy()
         if maybe.any():
             duplicated[maybe] = frame.loc[maybe, [*keys, *values]].duplicated(keep="first").to_numpy()
     return duplicated
@@ -42,11 +42,22 @@ def mark_conflicting_duplicates(frame: pd.DataFrame, active: np.ndarray, keys: l
     losers = np.zeros(len(frame), dtype=bool)
     if not active.any():
         return losers, 0
-    subset = frame.loc[active, keys]
+    subset = pd.Series(_row_keys(frame, keys)[active])
     keep = "last" if policy == "keep_last" else "first"
     losers[active] = subset.duplicated(keep=keep).to_numpy()
-    groups = int(subset[subset.duplicated(keep=False)].drop_duplicates().shape[0])
+    groups = int(subset[subset.duplicated(keep=False)].nunique())
     return losers, groups
+
+
+def _row_keys(frame: pd.DataFrame, columns: list[str]) -> np.ndarray:
+    """One int64 per row, equal for two rows exactly when their values in `columns` are all equal (missing
+    values equal to each other, as DataFrame.duplicated has them)."""
+    keys = np.zeros(len(frame), dtype="int64")
+    for column in columns:
+        codes, distinct = pd.factorize(frame[column], use_na_sentinel=False)
+        # Distinct pairs stay distinct (codes < len(distinct)); renumbering keeps keys below the row count.
+        keys = pd.factorize(keys * len(distinct) + codes)[0]
+    return keys
 
 
 def station_gaps(times: pd.Series, step: pd.Timedelta = HOUR) -> dict:
@@ -54,27 +65,31 @@ def station_gaps(times: pd.Series, step: pd.Timedelta = HOUR) -> dict:
 
     Counts are named in hours for an hourly delivery, else in steps (with the step's length beside them).
     """
-    stamps = pd.Series(times.unique()).sort_values().reset_index(drop=True)
-    first, last = stamps.iloc[0], stamps.iloc[-1]
-    on_grid = int((last - first) / step) + 1
-    steps = (stamps.diff() / step).iloc[1:].astype(int) - 1  # missing steps before each delivered one
+    stamps = np.unique(times.to_numpy("datetime64[ns]").view("int64"))  # sorted
+    first, last = stamps[0], stamps[-1]
+    on_grid = int((last - first) / step.value) + 1
+    steps = (np.diff(stamps) / step.value).astype(int) - 1  # missing steps before each delivered one
     gaps = steps[steps > 0]
     longest = int(gaps.max()) if len(gaps) else 0
-    longest_start = (stamps.iloc[int(gaps.idxmax()) - 1] + step).isoformat() if len(gaps) else None
+    longest_start = _utc(stamps[int(np.argmax(steps))] + step.value).isoformat() if len(gaps) else None
     unit = "hours" if step == HOUR else "steps"
-    stats = {"first": first.isoformat(), "last": last.isoformat(), f"{unit}_on_grid": on_grid,
+    stats = {"first": _utc(first).isoformat(), "last": _utc(last).isoformat(), f"{unit}_on_grid": on_grid,
              f"{unit}_with_data": len(stamps), f"missing_{unit}": on_grid - len(stamps),
              "gap_count": int(len(gaps)), f"longest_gap_{unit}": longest, "longest_gap_start": longest_start}
     return stats if step == HOUR else {**stats, "step": str(step)}
+
+
+def _utc(nanoseconds) -> pd.Timestamp:
+    return pd.Timestamp(int(nanoseconds), unit="ns", tz="UTC")
 
 
 def flag_counts(clean: pd.DataFrame, variables) -> dict:
     """{variable: {flag name: count}} over the whole clean table (gap rows included)."""
     counts = {}
     for variable in variables:
-        column = clean[qc_column(variable)]
-        tally = column.value_counts()
-        counts[variable] = {name: int(tally.get(code, 0)) for code, name in QC_FLAG_NAMES.items()}
+        tally = np.bincount(clean[qc_column(variable)].to_numpy().astype("int64"), minlength=len(QC_FLAG_NAMES))
+        counts[variable] = {name: int(tally[code]) if code < len(tally) else 0
+                            for code, name in QC_FLAG_NAMES.items()}
     return counts
 
 
@@ -92,15 +107,22 @@ def series_notes(clean: pd.DataFrame, variables, min_values: int = 24) -> dict:
     """Notes, not drops: stations none of whose values passed QC, and series (station, variable) with at
     least `min_values` valid values that never change (a stuck sensor or a filled-in constant)."""
     variables = list(variables)
-    ok = clean[[qc_column(v) for v in variables]].to_numpy() == QC_OK
-    grouped = clean[variables].where(ok).groupby(clean["station_id"].astype(str), sort=True)
-    counts, lows, highs = grouped.count(), grouped.min(), grouped.max()
-    without = [str(s) for s in counts.index[counts.sum(axis=1) == 0]]
+    codes, stations = pd.factorize(clean["station_id"], sort=True)
+    order = np.argsort(codes, kind="stable")
+    starts = np.searchsorted(codes[order], np.arange(len(stations)))  # each station's rows, contiguous
+    counts, lows, highs = (np.zeros((len(stations), len(variables))) for _ in range(3))
+    for column, variable in enumerate(variables):  # a column at a time: a few MB, not the whole table
+        values = clean[variable].to_numpy("float64")[order]
+        valid = (clean[qc_column(variable)].to_numpy()[order] == QC_OK) & ~np.isnan(values)
+        counts[:, column] = np.add.reduceat(valid.astype("int64"), starts)
+        lows[:, column] = np.minimum.reduceat(np.where(valid, values, np.inf), starts)
+        highs[:, column] = np.maximum.reduceat(np.where(valid, values, -np.inf), starts)
+    without = [str(s) for s in stations[counts.sum(axis=1) == 0]]
     constant = {}
-    for station in counts.index:
-        for variable in variables:
-            if counts.at[station, variable] >= min_values and lows.at[station, variable] == highs.at[station, variable]:
-                constant.setdefault(str(station), {})[variable] = float(lows.at[station, variable])
+    for row, station in enumerate(stations):
+        for column, variable in enumerate(variables):
+            if counts[row, column] >= min_values and lows[row, column] == highs[row, column]:
+                constant.setdefault(str(station), {})[variable] = float(lows[row, column])
     return {"stations_without_valid_values": without, "constant_series": constant}
 
 

@@ -247,7 +247,13 @@ def read_csv_files(paths: list, spec: dict, needed: list[str], frames_of, long: 
                     pre_dropped={"unparseable_record": malformed})
 
 
+def file_column(path: Path, rows: int) -> pd.Categorical:
+    """The path on every row as a category: one byte per row, not one copy of the text per row."""
+    return pd.Categorical.from_codes(np.zeros(rows, dtype="int8"), categories=[str(path)])
+
+
 def located(path: Path, table: pd.DataFrame, spec: dict) -> dict:
     """The columns every raw frame starts with: where each record came from, its station and its stamp."""
-    return {"file": str(path), "line": table["line"], "station_raw": table[spec["station_column"]].str.strip(),
+    return {"file": file_column(path, len(table)), "line": table["line"],
+            "station_raw": table[spec["station_column"]].str.strip(),
             "time_raw": time_text(table, spec["time"])}
