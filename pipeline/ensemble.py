@@ -35,7 +35,7 @@ import torch
 from torch import nn
 
 from pipeline.fit_config import FitConfig
-from pipeline.penalties import Penalty
+from pipeline.penalties import BatchLayout, Penalty
 from pipeline.sampling import make_sampler
 from pipeline.train_loop import (EVAL_CHUNK, FitProgress, TrainResult, _check_batches, copy_state,
                                  make_optimizer, prepare_fit, training_tensors, validation_scores)
@@ -123,7 +123,7 @@ def train_ensemble(build_network, train, val: dict | None = None, penalty: Penal
     progress = [FitProgress(env_names, member_penalty, cfg) for member_penalty in penalties]
     final_step, final_state = {}, {}
     X, y = training_tensors(train)
-    counts = samplers[0].counts
+    layout = BatchLayout(samplers[0].counts)  # every seed's batch has the same environment counts
     optimizer = make_optimizer(stacked, cfg)
     active, step = list(range(len(seeds))), 0
 
@@ -141,21 +141,20 @@ def train_ensemble(build_network, train, val: dict | None = None, penalty: Penal
         active.remove(k)
         final_step[k], final_state[k] = step, copy_state(networks[k])
 
+    stacked.train()  # once: evaluations (StackedAffineChain.predict) do not switch it to eval mode
     while step < cfg.max_steps and active:
         if penalty.resets_optimizer_at(step):
             optimizer = make_optimizer(stacked, cfg)
-        stacked.train()
         index = torch.stack([torch.cat(sampler.next_batch()) for sampler in samplers])  # (K, B)
         predictions, targets = stacked(X[index]), y[index]
-        losses, step_logs, diverged = [], {}, []
+        losses, step_terms, diverged = [], {}, []
         for k in active:
-            loss, logs = penalties[k](list(torch.split(predictions[k], counts)), list(torch.split(targets[k], counts)),
-                                      step, env_weights=samplers[k].risk_weights)
-            if not math.isfinite(logs["loss"]):
+            terms = penalties[k].objective(predictions[k], targets[k], layout, step, env_weights=samplers[k].risk_weights)
+            if not math.isfinite(terms.loss_value()):
                 diverged.append(k)
                 continue
-            losses.append(loss)
-            step_logs[k] = logs
+            losses.append(terms.loss)
+            step_terms[k] = terms
         for k in diverged:  # as train_network: the state before this step is the fit's last
             progress[k].stop_reason = "non_finite_loss"
             stop(k)
@@ -170,10 +169,10 @@ def train_ensemble(build_network, train, val: dict | None = None, penalty: Penal
                 torch.nn.utils.clip_grad_norm_(network.parameters(), cfg.grad_clip)
         optimizer.step()
         step += 1
-        for k, logs in step_logs.items():
-            progress[k].record_step(logs)
-        due = [k for k in step_logs if progress[k].evaluation_due(step)]
-        evaluate(due, {k: step_logs[k]["penalty_weight"] for k in due})
+        for k, terms in step_terms.items():
+            progress[k].record_step(terms)
+        due = [k for k in step_terms if progress[k].evaluation_due(step)]
+        evaluate(due, {k: step_terms[k].weight for k in due})
         for k in due:
             if progress[k].stop_reason:
                 stop(k)

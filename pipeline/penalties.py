@@ -67,6 +67,81 @@ def irm_gradient_autograd(pred: torch.Tensor, target: torch.Tensor) -> torch.Ten
     return grad
 
 
+class BatchLayout:
+    """How a batch's rows are grouped: one run of consecutive rows per environment, `counts[e]` rows long
+    (the order of the sampler's environments), and the two halves of each run (IRMv1's split_halves).
+
+    Per-group means are computed for every group at once, never in a Python loop per environment: with
+    equal runs (balanced batches, the default) by one reshape, which gives each environment's mean bit for
+    bit as a mean over its own rows would; with unequal runs (pooled batches) by one index_add of the row
+    sums, whose rounding may differ from a per-environment mean in the last bits.
+    """
+
+    def __init__(self, counts: list[int]):
+        import torch
+
+        self.counts = [int(c) for c in counts]
+        if not self.counts or min(self.counts) < 1:
+            raise ValueError(f"every environment needs >= 1 row in a batch, got counts {self.counts}")
+        self.n_envs = len(self.counts)
+        self.equal = len(set(self.counts)) == 1
+        halves = [part for count in self.counts for part in (count // 2, count - count // 2)]
+        self.half_sizes = torch.tensor(halves, dtype=torch.int64)
+        self.half_ids = torch.repeat_interleave(torch.arange(len(halves)), self.half_sizes)
+        self.env_sizes = torch.tensor(self.counts, dtype=torch.int64)
+        self.env_ids = torch.repeat_interleave(torch.arange(self.n_envs), self.env_sizes)
+
+    @staticmethod
+    def _segment_means(rows: torch.Tensor, ids: torch.Tensor, sizes: torch.Tensor) -> torch.Tensor:
+        import torch
+
+        sums = torch.zeros(len(sizes), dtype=rows.dtype, device=rows.device).index_add(0, ids, rows.sum(1))
+        return sums / (sizes.to(rows.dtype) * rows.shape[1])
+
+    def env_means(self, values: torch.Tensor) -> torch.Tensor:
+        """(E,): the mean of each environment's values (rows of `values`, any trailing shape)."""
+        rows = values.reshape(len(values), -1)
+        if self.equal:
+            return rows.reshape(self.n_envs, -1).mean(1)
+        return self._segment_means(rows, self.env_ids, self.env_sizes)
+
+    def half_means(self, values: torch.Tensor) -> torch.Tensor:
+        """(E, 2): per environment, the mean over the first half of its rows and over the second half (an
+        odd count gives the second half one more row)."""
+        import torch
+
+        if min(self.counts) < 2:
+            raise ValueError(f"irm estimator split_halves needs >= 2 windows per environment, got {min(self.counts)}")
+        rows = values.reshape(len(values), -1)
+        if not self.equal:
+            return self._segment_means(rows, self.half_ids, self.half_sizes).reshape(self.n_envs, 2)
+        per_env, half = self.counts[0], self.counts[0] // 2
+        if per_env % 2 == 0:  # both halves in one reduction
+            return rows.reshape(self.n_envs, 2, -1).mean(2)
+        per_env_rows = rows.reshape(self.n_envs, per_env, -1)
+        return torch.stack([per_env_rows[:, :half].mean((1, 2)), per_env_rows[:, half:].mean((1, 2))], dim=1)
+
+
+class StepTerms:
+    """What a penalty computed for one step: the loss to backpropagate and, detached, what the training
+    loop logs. Floats are made only when asked (`logs`), so a step costs no conversions."""
+
+    def __init__(self, loss, risks, term, weight: float, loss_scale: float, extras: dict):
+        self.loss, self.risks, self.term = loss, risks, term
+        self.weight, self.loss_scale, self.extras = weight, loss_scale, extras
+
+    def loss_value(self) -> float:
+        return float(self.loss.detach())
+
+    def logs(self) -> dict[str, float]:
+        logs = {f"risk/{e}": r for e, r in enumerate(self.risks.tolist())}
+        logs.update(penalty_value=float(self.term), penalty_weight=self.weight, loss_scale=self.loss_scale,
+                    loss=self.loss_value())
+        for name, values in self.extras.items():
+            logs.update({f"{name}/{g}": v for g, v in enumerate(values.tolist())})
+        return logs
+
+
 class Penalty:
     """Base class: the weight schedule, the rescaling and the logs; subclasses supply the term P."""
 
@@ -108,29 +183,47 @@ class Penalty:
     def reset(self) -> None:
         """Forget any state carried between steps (called by the training loop at the start of a fit)."""
 
-    def penalty_term(self, risks: torch.Tensor, preds: list[torch.Tensor], targets: list[torch.Tensor],
+    def penalty_term(self, risks: torch.Tensor, errors: torch.Tensor, preds: torch.Tensor, layout: BatchLayout,
                      weight: float, base_risk: torch.Tensor) -> tuple[torch.Tensor, dict]:
+        """(P, {log name: tensor of per-group values}); errors = preds - targets, rows grouped by `layout`."""
         raise NotImplementedError
+
+    def objective(self, preds: torch.Tensor, targets: torch.Tensor, layout: BatchLayout, step: int,
+                  env_weights: torch.Tensor | None = None) -> StepTerms:
+        """The loss of one batch whose rows are grouped by environment as `layout` says.
+        env_weights: the a_e of the module docstring (>= 0, summing to 1); None = 1/E each."""
+        import torch
+
+        errors = preds - targets
+        risks = layout.env_means(errors ** 2)
+        weight = self.effective_weight(step)
+        # risks.mean() rather than a uniform weighted sum keeps balanced runs bit-identical to earlier ones.
+        base_risk = risks.mean() if env_weights is None else torch.sum(env_weights.to(risks.dtype) * risks)
+        if weight == 0:
+            # A term with weight 0 only adds 0 to the loss and its gradient: compute it for the logs, on
+            # detached values, and leave it out of the graph (the loss is then the ERM twin's, bit for bit).
+            term, extras = self.penalty_term(risks.detach(), errors.detach(), preds.detach(), layout, weight,
+                                             base_risk.detach())
+            loss = base_risk
+        else:
+            term, extras = self.penalty_term(risks, errors, preds, layout, weight, base_risk)
+            loss = base_risk + weight * term
+        loss_scale = 1.0 / weight if (self.rescale_heavy and weight > 1.0) else 1.0
+        if loss_scale != 1.0:
+            loss = loss * loss_scale
+        return StepTerms(loss, risks.detach(), term.detach(), weight, loss_scale, extras)
 
     def __call__(self, preds_by_env: list[torch.Tensor], targets_by_env: list[torch.Tensor],
                  step: int, env_weights: torch.Tensor | None = None) -> tuple[torch.Tensor, dict[str, float]]:
-        """env_weights: the a_e of the module docstring (>= 0, summing to 1); None = 1/E each."""
+        """(loss, logs) from one tensor of forecasts and one of targets per environment (`objective` on
+        their concatenation)."""
         if len(preds_by_env) == 0 or len(preds_by_env) != len(targets_by_env):
             raise ValueError("preds_by_env and targets_by_env must be non-empty lists of equal length")
         import torch
 
-        risks = torch.stack([torch.mean((p - t) ** 2) for p, t in zip(preds_by_env, targets_by_env)])
-        weight = self.effective_weight(step)
-        # risks.mean() rather than a uniform weighted sum keeps balanced runs bit-identical to earlier ones.
-        base_risk = risks.mean() if env_weights is None else torch.sum(env_weights.to(risks.dtype) * risks)
-        term, extra_logs = self.penalty_term(risks, preds_by_env, targets_by_env, weight, base_risk)
-        loss = base_risk + weight * term
-        loss_scale = 1.0 / weight if (self.rescale_heavy and weight > 1.0) else 1.0
-        loss = loss * loss_scale
-        logs = {f"risk/{e}": float(r) for e, r in enumerate(risks.detach())}
-        logs.update(penalty_value=float(term.detach()), penalty_weight=weight,
-                    loss_scale=loss_scale, loss=float(loss.detach()), **extra_logs)
-        return loss, logs
+        terms = self.objective(torch.cat(list(preds_by_env)), torch.cat(list(targets_by_env)),
+                               BatchLayout([len(p) for p in preds_by_env]), step, env_weights)
+        return terms.loss, terms.logs()
 
 
 class ERMPenalty(Penalty):
@@ -138,7 +231,7 @@ class ERMPenalty(Penalty):
 
     name = "erm"
 
-    def penalty_term(self, risks, preds, targets, weight, base_risk):
+    def penalty_term(self, risks, errors, preds, layout, weight, base_risk):
         import torch
 
         return torch.zeros((), dtype=risks.dtype, device=risks.device), {}
@@ -156,7 +249,9 @@ class IRMv1Penalty(Penalty):
     - "squared": the square of the batch gradient. Its expectation is g_e^2 plus the variance of the batch
       gradient, i.e. biased upwards by the sampling noise, more so the smaller the batch.
     `irm_gradient` = "closed_form" (default; squared error only, a little cheaper) or "autograd";
-    tests check both give the same value and the same gradients.
+    tests check both give the same value and the same gradients. Either way every environment's (or
+    half's) gradient comes out of one computation over the whole batch (BatchLayout), one autograd.grad
+    call for "autograd"; `irm_gradient_closed_form` and `irm_gradient_autograd` define it for one.
     """
 
     name = "irm"
@@ -173,21 +268,39 @@ class IRMv1Penalty(Penalty):
         self.estimator = estimator
         self.min_windows_per_env = 2 if estimator == "split_halves" else 1
 
-    def squared_gradient(self, pred: torch.Tensor, target: torch.Tensor) -> torch.Tensor:
-        """The estimate of one environment's squared gradient (see the class docstring)."""
-        gradient_of = irm_gradient_closed_form if self.irm_gradient == "closed_form" else irm_gradient_autograd
+    def _group_means(self, values, layout: BatchLayout):
+        """Per group (environment, or its two halves for split_halves) the mean of `values`, as one tensor."""
         if self.estimator == "squared":
-            return gradient_of(pred, target) ** 2
-        half = len(pred) // 2
-        if half == 0:
-            raise ValueError(f"irm estimator split_halves needs >= 2 windows per environment, got {len(pred)}")
-        # Halves along the window axis; an odd count gives the second half one more window (still independent).
-        return gradient_of(pred[:half], target[:half]) * gradient_of(pred[half:], target[half:])
+            return layout.env_means(values)
+        return layout.half_means(values)
 
-    def penalty_term(self, risks, preds, targets, weight, base_risk):
+    def gradients(self, errors, preds, layout: BatchLayout):
+        """d/dw of each group's risk R(w * f) at w = 1: (E,) for "squared", (E, 2) for split halves."""
         import torch
 
-        return torch.mean(torch.stack([self.squared_gradient(p, t) for p, t in zip(preds, targets)])), {}
+        if self.irm_gradient == "closed_form":  # 2 mean((f - y) f), as irm_gradient_closed_form
+            return 2.0 * self._group_means(errors * preds, layout)
+        # One dummy scale per group, and one autograd.grad call: each group's risk depends on its own scale
+        # only, so the gradient of their sum with respect to the scales is every group's gradient.
+        split = self.estimator == "split_halves"
+        scale = torch.ones(2 * layout.n_envs if split else layout.n_envs, dtype=preds.dtype, device=preds.device,
+                           requires_grad=True)
+        with torch.enable_grad():  # also for a detached warm-up term (the logs)
+            row_scale = scale[layout.half_ids if split else layout.env_ids].reshape(-1, *([1] * (preds.dim() - 1)))
+            # w f - y written as (f - y) + (w - 1) f: the errors as they are, exactly, at w = 1
+            scaled_errors = errors + (row_scale - 1.0) * preds
+            (grad,) = torch.autograd.grad(self._group_means(scaled_errors ** 2, layout).sum(), scale,
+                                          create_graph=True)
+        return grad.reshape(layout.n_envs, 2) if split else grad
+
+    def penalty_term(self, risks, errors, preds, layout, weight, base_risk):
+        import torch
+
+        gradients = self.gradients(errors, preds, layout)
+        if self.estimator == "squared":
+            return torch.mean(gradients ** 2), {}
+        # Halves along the window axis; an odd count gives the second half one more window (still independent).
+        return torch.mean(gradients[:, 0] * gradients[:, 1]), {}
 
 
 class VRExPenalty(Penalty):
@@ -199,7 +312,7 @@ class VRExPenalty(Penalty):
 
     name = "vrex"
 
-    def penalty_term(self, risks, preds, targets, weight, base_risk):
+    def penalty_term(self, risks, errors, preds, layout, weight, base_risk):
         import torch
 
         return torch.mean((risks - risks.mean()) ** 2), {}
@@ -228,7 +341,7 @@ class GroupDROPenalty(Penalty):
     def reset(self) -> None:
         self.q_ = None
 
-    def penalty_term(self, risks, preds, targets, weight, base_risk):
+    def penalty_term(self, risks, errors, preds, layout, weight, base_risk):
         import torch
 
         n_groups = risks.shape[0]
@@ -241,8 +354,7 @@ class GroupDROPenalty(Penalty):
             log_q = torch.log(self.q_) + self.eta * risks.detach()
             self.q_ = torch.softmax(log_q, dim=0)
         robust = torch.sum(self.q_ * risks)
-        logs = {f"q/{g}": float(v) for g, v in enumerate(self.q_)}
-        return robust - base_risk, logs
+        return robust - base_risk, {"q": self.q_}
 
 
 _PENALTY_CLASSES = {cls.name: cls for cls in (ERMPenalty, IRMv1Penalty, VRExPenalty, GroupDROPenalty)}

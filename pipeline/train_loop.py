@@ -8,9 +8,11 @@ What it does, in order:
 1. fork the global torch RNG and seed it (so weight init and dropout are reproducible and the caller's
    RNG is untouched), set torch threads, make a dedicated torch.Generator for batch sampling;
 2. every step draws a batch as `fit.sampling` says (pipeline.sampling: environment-balanced, or pooled
-   with environment weights in the loss), runs one forward pass, splits predictions by environment, asks
-   the penalty for the loss, clips the gradient norm and takes one Adam step; the optimizer is rebuilt
-   when the penalty's warm-up ends (for ERM runs with the same warm-up too: pipeline.twins);
+   with environment weights in the loss), runs one forward pass, asks the penalty for the loss of the
+   whole batch (its rows grouped by environment: pipeline.penalties.BatchLayout), clips the gradient norm
+   and takes one Adam step; the optimizer is rebuilt when the penalty's warm-up ends (for ERM runs with
+   the same warm-up too: pipeline.twins). The step's logged values stay tensors until the next
+   evaluation, which turns them into floats at once (no conversion per step);
 3. every `eval_every` steps (and at the last step) computes the MSE on every validation set, overall and
    per environment, and stores a history entry. Only AFTER the warm-up (step > penalty.warmup_steps) does
    it store a snapshot and count towards early stopping: a warm-up snapshot was trained without the
@@ -34,7 +36,7 @@ import torch
 
 from pipeline.errors import InputError
 from pipeline.fit_config import FitConfig
-from pipeline.penalties import Penalty, build_penalty
+from pipeline.penalties import BatchLayout, Penalty, StepTerms, build_penalty
 from pipeline.sampling import EnvironmentBalancedSampler, make_sampler  # noqa: F401 (re-exported)
 from pipeline.window_check import WindowSetLike, check_window_set
 
@@ -119,25 +121,31 @@ class FitProgress:
 
     def __init__(self, env_names: list, penalty: Penalty, cfg: FitConfig):
         self.env_names, self.penalty, self.cfg = env_names, penalty, cfg
-        # penalty log key -> history key of each environment's training risk
-        self.risk_keys = {f"risk/{e}": f"train/risk/{name}" for e, name in enumerate(env_names)}
-        self.since_eval = self._empty_logs()
+        self.risk_keys = [f"train/risk/{name}" for name in env_names]  # history key of each env's training risk
+        self.since_eval: list[StepTerms] = []  # the steps since the last evaluation
         self.history: list[dict[str, float]] = []
         self.snapshots: dict[int, dict[str, torch.Tensor]] = {}
         self.best_value, self.best_step, self.evals_without_gain = math.inf, None, 0
         self.stop_reason: str | None = None  # set when the fit must stop before fit.max_steps
         self.eval_seconds = 0.0
 
-    def _empty_logs(self) -> dict[str, list[float]]:
-        return {key: [] for key in ("train_loss", "penalty_value", *self.risk_keys.values())}
+    def record_step(self, terms: StepTerms) -> None:
+        """The penalty's terms of one optimizer step; made into floats only at the next evaluation."""
+        self.since_eval.append(terms)
 
-    def record_step(self, logs: dict[str, float]) -> None:
-        """The penalty's logs of one optimizer step."""
+    def _training_means(self) -> dict[str, float]:
+        """The mean of each training value over the steps since the last evaluation (none without a step):
+        three tensor conversions per evaluation instead of a float per value and step."""
+        steps = self.since_eval
+        if not steps:
+            return {}
         # Unscaled objective (loss / loss_scale) so histories with and without rescaling compare.
-        self.since_eval["train_loss"].append(logs["loss"] / logs["loss_scale"])
-        self.since_eval["penalty_value"].append(logs["penalty_value"])
-        for risk_key, history_key in self.risk_keys.items():
-            self.since_eval[history_key].append(logs[risk_key])
+        losses = torch.stack([terms.loss.detach() for terms in steps]).tolist()
+        values = {"train_loss": [loss / terms.loss_scale for loss, terms in zip(losses, steps)],
+                  "penalty_value": torch.stack([terms.term for terms in steps]).tolist()}
+        risks = torch.stack([terms.risks for terms in steps]).T.tolist()
+        values.update(zip(self.risk_keys, risks))
+        return {key: float(np.mean(column)) for key, column in values.items()}
 
     def evaluation_due(self, step: int) -> bool:
         return step % self.cfg.eval_every == 0 or step == self.cfg.max_steps
@@ -147,13 +155,10 @@ class FitProgress:
         """A history entry from the validation `scores` at `step`; `weight`: the penalty weight of the last
         step taken (of the next one for a `final` entry); `state()` gives the weights to snapshot.
         A `final` evaluation (the fit stopped between evaluations) is always snapshotted, never counted."""
-        entry = {"step": step, "penalty_weight": weight}
-        # The mean of each gathered value; none for a key with no step since the last evaluation.
-        entry.update({key: float(np.mean(values)) for key, values in self.since_eval.items() if values})
-        entry.update(scores)
+        entry = {"step": step, "penalty_weight": weight, **self._training_means(), **scores}
         self.history.append(entry)
         self.eval_seconds += seconds
-        self.since_eval = self._empty_logs()
+        self.since_eval = []
         if not final and step <= self.penalty.warmup_steps:
             return  # a warm-up model: on the curve, never selected, not counted for stopping
         self.snapshots[step] = state()
@@ -225,29 +230,30 @@ def train_network(build_network, train: WindowSetLike, val: dict[str, WindowSetL
         X, y = training_tensors(train)
         optimizer = make_optimizer(network, cfg)
         progress = FitProgress([train.env_names[e] for e in sampler.env_ids], penalty, cfg)
+        layout = BatchLayout(sampler.counts)  # the batch's rows, environment by environment
+        parameters = list(network.parameters())
         step = 0
 
+        network.train()
         while step < cfg.max_steps:
             if penalty.resets_optimizer_at(step):
                 optimizer = make_optimizer(network, cfg)
-            network.train()
             index = torch.cat(sampler.next_batch())  # one gather of inputs and one of targets per step
-            preds_by_env = list(torch.split(network(X[index]), sampler.counts))
-            targets_by_env = list(torch.split(y[index], sampler.counts))
-            loss, logs = penalty(preds_by_env, targets_by_env, step, env_weights=sampler.risk_weights)
-            if not math.isfinite(logs["loss"]):  # the penalty's float of the loss: no second pass over it
+            terms = penalty.objective(network(X[index]), y[index], layout, step, env_weights=sampler.risk_weights)
+            if not math.isfinite(terms.loss_value()):
                 progress.stop_reason = "non_finite_loss"
                 break
             optimizer.zero_grad(set_to_none=True)
-            loss.backward()
+            terms.loss.backward()
             if cfg.grad_clip > 0:
-                torch.nn.utils.clip_grad_norm_(network.parameters(), cfg.grad_clip)
+                torch.nn.utils.clip_grad_norm_(parameters, cfg.grad_clip)
             optimizer.step()
             step += 1
-            progress.record_step(logs)
+            progress.record_step(terms)
             if progress.evaluation_due(step):
-                progress.add_evaluation(step, logs["penalty_weight"], *timed_evaluation(network, val),
+                progress.add_evaluation(step, terms.weight, *timed_evaluation(network, val),
                                         lambda: copy_state(network))
+                network.train()  # the evaluation left it in eval mode
                 if progress.stop_reason:
                     break
 

@@ -224,3 +224,92 @@ def test_which_runs_count_as_penalised():
 def test_bad_penalty_settings_raise_input_error(kwargs, match):
     with pytest.raises(InputError, match=match):
         build_penalty(**kwargs)
+
+
+# --- every environment at once (pipeline.penalties.BatchLayout) ------------------------------------------
+def per_environment_terms(preds, targets, name, estimator="split_halves", eta=0.01):
+    """Risks and penalty term environment by environment, written with numpy from the formulas above
+    (IRMv1: Arjovsky et al. 2019, section 3; V-REx: Krueger et al. 2021; Group DRO: Sagawa et al. 2020)."""
+    risks = np.array([np.mean((p - t) ** 2) for p, t in zip(preds, targets)])
+
+    def gradient(p, t):  # d/dw mean((w p - t)^2) at w = 1
+        return 2 * np.mean((p - t) * p)
+
+    if name == "irm" and estimator == "squared":
+        term = np.mean([gradient(p, t) ** 2 for p, t in zip(preds, targets)])
+    elif name == "irm":
+        term = np.mean([gradient(p[:len(p) // 2], t[:len(p) // 2]) * gradient(p[len(p) // 2:], t[len(p) // 2:])
+                        for p, t in zip(preds, targets)])
+    elif name == "vrex":
+        term = np.var(risks)
+    else:
+        q = np.exp(eta * risks) / np.exp(eta * risks).sum()
+        term = np.sum(q * risks) - risks.mean()
+    return risks, term
+
+
+@pytest.mark.parametrize("counts", [(6, 6, 6), (5, 8, 3)])  # balanced batches; pooled ones (unequal)
+@pytest.mark.parametrize("name,extra", [("irm", {}), ("irm", {"irm_gradient": "autograd"}),
+                                        ("irm", {"estimator": "squared"}),
+                                        ("irm", {"estimator": "squared", "irm_gradient": "autograd"}),
+                                        ("vrex", {}), ("groupdro", {})])
+def test_all_environments_at_once_give_each_environment_its_own_formula(counts, name, extra):
+    rng = np.random.default_rng(sum(counts))
+    preds = [rng.normal(size=(n, 4)) for n in counts]
+    targets = [p + rng.normal(0.2, 1.0, size=p.shape) for p in preds]
+    risks, term = per_environment_terms(preds, targets, name, extra.get("estimator", "split_halves"))
+    loss, logs = build_penalty(name, weight=1.0, **extra)([t(p) for p in preds], [t(y) for y in targets], step=0)
+    np.testing.assert_allclose([logs[f"risk/{e}"] for e in range(3)], risks, rtol=1e-12)
+    assert logs["penalty_value"] == pytest.approx(term, rel=1e-10, abs=1e-12)
+    assert float(loss.detach()) == pytest.approx(risks.mean() + term, rel=1e-10)
+
+
+@pytest.mark.parametrize("counts", [(6, 6, 6), (5, 8, 3)])
+@pytest.mark.parametrize("name,extra", [("irm", {}), ("irm", {"irm_gradient": "autograd"}), ("vrex", {}),
+                                        ("groupdro", {})])
+def test_all_environments_at_once_give_the_gradients_of_a_loop_over_environments(counts, name, extra):
+    generator = torch.Generator().manual_seed(1)
+    preds = [torch.randn(n, 3, generator=generator, dtype=torch.float64).requires_grad_() for n in counts]
+    targets = [torch.randn(n, 3, generator=generator, dtype=torch.float64) for n in counts]
+    loss, _ = build_penalty(name, weight=3.0, **extra)(preds, targets, step=0)
+    fused = torch.autograd.grad(loss, preds)
+    # the same objective written as a loop over environments (weight 3 > 1: the loss is divided by 3)
+    risks = torch.stack([torch.mean((p - y) ** 2) for p, y in zip(preds, targets)])
+    if name == "irm":
+        halves = [(2 * torch.mean((p[:len(p) // 2] - y[:len(p) // 2]) * p[:len(p) // 2]),
+                   2 * torch.mean((p[len(p) // 2:] - y[len(p) // 2:]) * p[len(p) // 2:])) for p, y in zip(preds, targets)]
+        term = torch.mean(torch.stack([a * b for a, b in halves]))
+    elif name == "vrex":
+        term = torch.mean((risks - risks.mean()) ** 2)
+    else:
+        q = torch.softmax(0.01 * risks.detach(), 0)
+        term = torch.sum(q * risks) - risks.mean()
+    looped = torch.autograd.grad((risks.mean() + 3.0 * term) / 3.0, preds)
+    for a, b in zip(fused, looped):
+        torch.testing.assert_close(a, b, rtol=1e-12, atol=1e-14)
+
+
+def test_balanced_batches_give_each_environment_the_risk_of_its_own_mean_bit_for_bit():
+    # What keeps balanced ERM, V-REx and Group DRO fits identical to those of the loop over environments.
+    from pipeline.penalties import BatchLayout
+
+    generator = torch.Generator().manual_seed(2)
+    for n_envs, per_env, horizon in ((3, 42, 24), (2, 7, 5), (4, 64, 1)):
+        errors = torch.randn(n_envs * per_env, horizon, generator=generator) ** 2
+        expected = torch.stack([chunk.mean() for chunk in torch.split(errors, per_env)])
+        assert torch.equal(BatchLayout([per_env] * n_envs).env_means(errors), expected)
+        halves = BatchLayout([per_env] * n_envs).half_means(errors)
+        first, second, half = halves[:, 0], halves[:, 1], per_env // 2
+        assert torch.equal(first, torch.stack([chunk[:half].mean() for chunk in torch.split(errors, per_env)]))
+        assert torch.equal(second, torch.stack([chunk[half:].mean() for chunk in torch.split(errors, per_env)]))
+
+
+def test_a_zero_weight_term_is_logged_but_leaves_the_loss_and_its_gradient_to_the_risks():
+    generator = torch.Generator().manual_seed(3)
+    preds = [torch.randn(4, 2, generator=generator, dtype=torch.float64).requires_grad_() for _ in range(3)]
+    targets = [torch.randn(4, 2, generator=generator, dtype=torch.float64) for _ in range(3)]
+    loss, logs = build_penalty("irm", weight=5.0, warmup_steps=3, estimator="squared")(preds, targets, step=0)
+    assert logs["penalty_weight"] == 0.0 and logs["penalty_value"] > 0  # the warm-up's term is in the logs
+    erm_loss, _ = build_penalty("erm")(preds, targets, step=0)
+    assert torch.equal(loss, erm_loss)
+    assert all(torch.equal(a, b) for a, b in zip(torch.autograd.grad(loss, preds), torch.autograd.grad(erm_loss, preds)))

@@ -55,10 +55,11 @@ class RecordingERM(ERMPenalty):
         super().__init__(**kwargs)
         self.batch_shapes, self.env_weights = [], []
 
-    def __call__(self, preds_by_env, targets_by_env, step, env_weights=None):
-        self.batch_shapes.append([tuple(p.shape) for p in preds_by_env])
+    def objective(self, preds, targets, layout, step, env_weights=None):
+        assert preds.shape == targets.shape and len(preds) == sum(layout.counts)
+        self.batch_shapes.append([(count, *preds.shape[1:]) for count in layout.counts])  # rows per environment
         self.env_weights.append(env_weights)
-        return super().__call__(preds_by_env, targets_by_env, step, env_weights=env_weights)
+        return super().objective(preds, targets, layout, step, env_weights=env_weights)
 
 
 def test_every_training_batch_holds_every_environment():
