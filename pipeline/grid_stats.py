@@ -216,8 +216,16 @@ def summarise(runs: pd.DataFrame, metric: str, rule: str) -> pd.DataFrame:
     column = metric_column(runs.columns, metric, rule)
     runs = runs.assign(**{c: runs[c] if c in runs else v for c, v in PROTOCOL_DEFAULTS.items()})
     rows = []
-    for key, group in runs.groupby(list(ID_COLUMNS), sort=True, dropna=False):
-        values = group[column].to_numpy(np.float64)
+    # positions per group rather than group frames: thousands of small frames cost more than the statistics
+    grouped = runs.groupby(list(ID_COLUMNS), sort=True, dropna=False)
+    codes = grouped.ngroup().to_numpy()
+    order = np.argsort(codes, kind="stable")  # each group's rows in table order
+    ends = np.cumsum(np.bincount(codes, minlength=grouped.ngroups))
+    metric_values = runs[column].to_numpy(np.float64)
+    seeds, run_ids = runs["seed"].to_numpy(), runs["run_id"].astype(str).to_numpy()
+    for key, end, size in zip(grouped.size().index, ends, np.diff(ends, prepend=0)):
+        positions = order[end - size:end]
+        values = metric_values[positions]
         finite = values[np.isfinite(values)]
         low, high, kind = resampling.seed_interval(finite)
         rows.append({**dict(zip(ID_COLUMNS, key)),
@@ -228,7 +236,7 @@ def summarise(runs: pd.DataFrame, metric: str, rule: str) -> pd.DataFrame:
                      "std": float(finite.std(ddof=1)) if finite.size > 1 else np.nan,
                      "n_seeds": int(finite.size), "n_missing": int(values.size - finite.size),
                      "seed_low": low, "seed_high": high, "seed_interval": kind,
-                     "run_ids": ";".join(group.sort_values("seed")["run_id"].astype(str))})
+                     "run_ids": ";".join(run_ids[positions[np.argsort(seeds[positions], kind="stable")]])})
     summary = pd.DataFrame(rows)
     if summary.empty:
         raise InputError("no runs to summarise", field="runs")
@@ -241,15 +249,15 @@ def summarise(runs: pd.DataFrame, metric: str, rule: str) -> pd.DataFrame:
 
 
 def _add_erm_comparison(summary: pd.DataFrame, column: str) -> pd.DataFrame:
-    erm = summary[summary["penalty"] == ERM].set_index(["split_id", "model", "sampling"])
+    erm = summary[summary["penalty"] == ERM]
+    erm_mean = dict(zip(zip(erm["split_id"], erm["model"], erm["sampling"]), erm["mean"]))  # one ERM cell per key
     summary = summary.copy()
     for name in ("vs_erm_change", "vs_erm_outcome", "vs_erm_wins", "vs_erm_ties", "vs_erm_losses", "vs_erm_missing"):
         summary[name] = np.nan
     penalised = ~summary["penalty"].isin([ERM, NOT_APPLICABLE])
     for (model, penalty), group in summary[penalised].groupby(["model", "penalty"]):
-        twins = [erm.loc[(split, model, sampling)] if (split, model, sampling) in erm.index else None
-                 for split, sampling in zip(group["split_id"], group["sampling"])]
-        base_mean = np.array([twin["mean"] if twin is not None else np.nan for twin in twins])
+        base_mean = np.array([erm_mean.get((split, model, sampling), np.nan)
+                              for split, sampling in zip(group["split_id"], group["sampling"])], dtype=np.float64)
         summary.loc[group.index, "vs_erm_change"] = stats.relative_change(group["mean"].to_numpy(), base_mean)
         codes = stats.outcome_codes(as_loss(group["mean"], column), as_loss(base_mean, column))
         summary.loc[group.index, "vs_erm_outcome"] = codes  # -1 win, 0 tie, 1 loss, 2 no twin
