@@ -1,11 +1,13 @@
 """Windows per second of the project's training loop against a bare PyTorch loop, side by side (never pass/fail).
 
-    .venv/bin/python bench/trainer_vs_bare_torch.py [--steps 150] [--rounds 2] [--families linear lstm transformer]
+    .venv/bin/python bench/trainer_vs_bare_torch.py [--steps 150] [--rounds 2] [--penalty-rounds 5]
+        [--families linear lstm transformer] [--validation-windows non_overlapping|all]
 
 Invented windows shaped like one leave-one-city-out split of the demo (bench/demo_shapes.py). Per family:
 
 - trainer: pipeline.train_loop.train_network with the project's fit defaults (batch 128, Adam, gradient
-  clipping, evaluation of both validation sets every 25 steps, snapshots) and an ERM penalty with the
+  clipping, evaluation of both validation sets every 25 steps, snapshots; the validation sets as a training
+  job hands them to the loop under `fit.validation_windows`, non_overlapping by default) and an ERM penalty with the
   shipped warm-up (100 steps), early stopping out of reach so both sides take the same steps; its time is
   the whole fit, evaluations included;
 - bare: the same network, batch size, optimizer and clipping in a hand-written loop (random batch, forward,
@@ -13,8 +15,9 @@ Invented windows shaped like one leave-one-city-out split of the demo (bench/dem
 
 Figures: trainer windows/s over bare windows/s (goal >= 0.8), the share of the trainer's time spent on
 evaluations (goal < 20 %), and the time of one step of each penalty over an ERM step (goal <= 1.15; no
-validation sets, penalties active from step 0, steps / 3 per fit). Rounds alternate the sides so both
-see the same machine load; each figure takes the fastest round. Single-threaded torch on both sides, as
+validation sets, penalties active from step 0, steps / 3 per fit, `--penalty-rounds` rounds over the
+four penalties in turn). Rounds alternate the sides so both see the same machine load; each figure takes
+the fastest round. Single-threaded torch on both sides, as
 the training jobs run.
 """
 
@@ -63,7 +66,7 @@ def bare_fit(build, train, cfg: FitConfig) -> tuple[float, int]:
     return time.perf_counter() - started, cfg.max_steps * cfg.batch_size
 
 
-def measure_family(family: str, steps: int, rounds: int, train, val) -> dict[str, float]:
+def measure_family(family: str, steps: int, rounds: int, penalty_rounds: int, train, val) -> dict[str, float]:
     build = network_builder(family)
     cfg = FitConfig(max_steps=steps, patience=10**6, threads=1)
     # Warm-up: the first optimizer of a process imports torch._dynamo (seconds, once); neither side pays it.
@@ -76,7 +79,7 @@ def measure_family(family: str, steps: int, rounds: int, train, val) -> dict[str
         bare = max(bare, windows / seconds)
     step_seconds = {}
     penalty_cfg = FitConfig(max_steps=steps // 3, patience=10**6, threads=1, eval_every=steps)
-    for _ in range(rounds):
+    for _ in range(penalty_rounds):
         for name, weight in {"erm": 0.0, **PENALTIES}.items():
             seconds, _, _ = trainer_fit(build, train, {}, penalty_cfg, build_penalty(name, weight, 0))
             step_seconds[name] = min(step_seconds.get(name, np.inf), seconds / penalty_cfg.max_steps)
@@ -89,17 +92,21 @@ def main() -> None:
     parser = argparse.ArgumentParser(description=__doc__.splitlines()[0])
     parser.add_argument("--steps", type=int, default=150, help="optimizer steps per fit (fit.max_steps)")
     parser.add_argument("--rounds", type=int, default=2)
+    parser.add_argument("--penalty-rounds", type=int, default=5, help="rounds of the penalty step timing")
     parser.add_argument("--families", nargs="*", default=["linear", "lstm", "transformer"])
+    parser.add_argument("--validation-windows", default="non_overlapping", choices=["non_overlapping", "all"],
+                        help="fit.validation_windows: the validation sets the trainer evaluates")
     args = parser.parse_args()
     torch.set_num_threads(1)
-    train, val = demo_split()
+    train, val = demo_split(args.validation_windows)
     print(f"cores: {os.cpu_count()}, load average: {' '.join(f'{x:.1f}' for x in os.getloadavg())}, "
-          f"torch threads 1, {args.steps} steps, best of {args.rounds} alternating rounds; "
-          f"windows {len(train.y)} train, {len(val['source'].y)} + {len(val['target'].y)} validation")
+          f"torch threads 1, {args.steps} steps, best of {args.rounds} alternating rounds "
+          f"({args.penalty_rounds} for the penalty steps); windows {len(train.y)} train, "
+          f"{len(val['source'].y)} + {len(val['target'].y)} validation ({args.validation_windows})")
     print(f"{'family':<12} {'trainer w/s':>11} {'bare w/s':>9} {'ratio':>6}  {'eval share':>10}  "
           + "  ".join(f"{name + '/erm':>12}" for name in PENALTIES))
     for family in args.families:
-        f = measure_family(family, args.steps, args.rounds, train, val)
+        f = measure_family(family, args.steps, args.rounds, args.penalty_rounds, train, val)
         print(f"{family:<12} {f['trainer']:>11.0f} {f['bare']:>9.0f} {f['trainer'] / f['bare']:>6.2f}  "
               f"{f['eval_share']:>10.1%}  " + "  ".join(f"{f[name]:>12.2f}" for name in PENALTIES))
     print("goals: ratio >= 0.80 (trainer windows/s over bare, evaluations included); eval share < 20 %; "

@@ -17,7 +17,7 @@ histories and snapshots bit for bit):
   the same forecasts but rounds some weight gradients differently, depending on the shapes);
 - loss: each seed's penalty (its own copy: Group DRO keeps state) on its own slice; the backward pass
   of their sum hands each seed the gradient of its own loss, times exactly 1;
-- clipping: clip_grad_norm_ of each seed's own parameters;
+- clipping: each seed's own gradient norm, clipped as clip_grad_norm_ clips it (train_loop.clip_gradient_norms);
 - Adam: one fused optimizer over every seed's own tensors updates each tensor as that seed's optimizer
   would (one stacked tensor would not: fused Adam rounds a tensor's last elements apart from the rest);
 - bookkeeping, evaluation every `eval_every` steps, snapshots and early stopping per seed
@@ -37,8 +37,8 @@ from torch import nn
 from pipeline.fit_config import FitConfig
 from pipeline.penalties import BatchLayout, Penalty
 from pipeline.sampling import make_sampler
-from pipeline.train_loop import (EVAL_CHUNK, FitProgress, TrainResult, _check_batches, copy_state,
-                                 make_optimizer, prepare_fit, training_tensors, validation_scores)
+from pipeline.train_loop import (EVAL_CHUNK, FitProgress, TrainResult, _check_batches, clip_gradient_norms,
+                                 copy_state, make_optimizer, prepare_fit, training_tensors, validation_scores)
 
 
 def affine_layers(network: nn.Module) -> list[tuple[str, nn.Linear]] | None:
@@ -119,6 +119,7 @@ def train_ensemble(build_network, train, val: dict | None = None, penalty: Penal
         penalties[-1].reset()
     _check_batches(samplers[0], penalty, train.env_names, cfg)
     stacked = StackedAffineChain(networks)
+    parameter_groups = [list(network.parameters()) for network in networks]  # clipped seed by seed
     env_names = [train.env_names[e] for e in samplers[0].env_ids]
     progress = [FitProgress(env_names, member_penalty, cfg) for member_penalty in penalties]
     final_step, final_state = {}, {}
@@ -165,8 +166,7 @@ def train_ensemble(build_network, train, val: dict | None = None, penalty: Penal
         optimizer.zero_grad(set_to_none=True)
         torch.stack(losses).sum().backward()
         if cfg.grad_clip > 0:
-            for network in networks:
-                torch.nn.utils.clip_grad_norm_(network.parameters(), cfg.grad_clip)
+            clip_gradient_norms(parameter_groups, cfg.grad_clip)
         optimizer.step()
         step += 1
         for k, terms in step_terms.items():
