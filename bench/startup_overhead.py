@@ -36,7 +36,7 @@ def job_compute(results: Path) -> dict[str, float]:
             continue
         client = clients.setdefault(record["tracking_uri"], client_for(record["tracking_uri"]))
         if record["penalty"] == "na":
-            job = "fit_baselines"  # one job fits the baselines of every split
+            job = f"fit_baselines/{record['split_id']}"  # one job per split fits its baselines
         else:
             job = f"train_model/{record['split_id']}/{record['model']}"
         # a searched run's work is in its trials (those trained in this job); its parent only copies results
@@ -45,7 +45,7 @@ def job_compute(results: Path) -> dict[str, float]:
         for run_id in trained:
             metrics = client.get_run(run_id).data.metrics
             compute[job] = compute.get(job, 0.0) + metrics.get("compute_seconds", 0.0)
-            # data preparation happens once per split inside a job (the baselines job covers every split)
+            # data preparation happens once per split (and forecast variable) inside a job
             key = (job, record["split_id"])
             prepare[key] = max(prepare.get(key, 0.0), metrics.get("prepare_seconds", 0.0))
     return {job: compute[job] + sum(v for (j, _), v in prepare.items() if j == job) for job in compute}

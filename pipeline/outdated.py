@@ -24,7 +24,7 @@ from pathlib import Path
 from pipeline import provenance
 from pipeline.errors import InputError
 from pipeline.provenance import file_digest
-from pipeline.workflow import ALL_SPLITS, BASELINES
+from pipeline.workflow import BASELINES
 
 TRAINING_RULES = ("train_model", "fit_baselines")
 AGGREGATION_RULES = ("aggregate_grid", "diagnose_shift", "render_report")
@@ -209,14 +209,13 @@ def explain(jobs: list[PlannedJob], plan, root: Path | str) -> list[str]:
     for job in jobs:
         key = tuple(job.output)
         if job.rule in TRAINING_RULES:
-            split_id = job.wildcards.get("split_id", ALL_SPLITS)
-            model = job.wildcards.get("model", BASELINES)
+            split_id = job.wildcards.get("split_id", "?")
+            model = job.wildcards.get("model", BASELINES)  # a split's baselines job has no model wildcard
             variable = job.wildcards.get("variable")  # with several forecast targets
             planned = plan.jobs.get((split_id, model, variable) if variable else (split_id, model))
             families = sorted({u["job"]["model"]["family"] for u in planned.units}) if planned else ["?"]
-            # the baselines job covers every split: it is concerned by every city
-            cities = plan.split_cities(split_id) if split_id in plan.splits else list(plan.cities)
-            if split_id in new_splits or (split_id == ALL_SPLITS and new_splits and "Missing output" in job.reason):
+            cities = plan.split_cities(split_id) if split_id in plan.splits else []
+            if split_id in new_splits:
                 reasons["new splits"].add(key)
                 continue
             if "Missing output" in job.reason:

@@ -2,8 +2,9 @@
 
 Reads the Hydra config (overrides passed as `snakemake --config overrides="..."`), the station table and
 the package's source files (for code digests); never reads data, so adding data never changes the job
-list. Composes once per model x penalty pair, not once per job, and only when the plan's inputs changed:
-otherwise the plan comes from pipeline.plan_cache (read/written under `.snakemake/shiftgrid-plans/`).
+list. Composes with Hydra twice whatever the number of model x penalty pairs (pipeline.config.
+VariantComposer derives each pair's config), and only when the plan's inputs changed: otherwise the plan
+comes from pipeline.plan_cache (read/written under `.snakemake/shiftgrid-plans/`).
 Each job's params are sorted-key JSON of exactly its config slice plus the digest of the code it runs (the
 rule script's import closure, pipeline.provenance), which is what makes re-runs minimal. Nothing that
 depends on where the project folder sits enters them, so a copied or moved project stays up to date.
@@ -19,7 +20,7 @@ from __future__ import annotations
 
 import os
 import shlex
-from dataclasses import asdict, dataclass, field
+from dataclasses import dataclass, field, fields
 from pathlib import Path
 
 from pipeline import environments, plan_cache, provenance, twins
@@ -28,15 +29,14 @@ from pipeline.errors import InputError
 from pipeline.tracking import hide_credentials, resolve_tracking_uri
 
 
-BASELINES = "baselines"  # model key of the one job that fits every closed-form family on every split
-ALL_SPLITS = "all"  # split key of that job
+BASELINES = "baselines"  # model key of a split's job that fits every closed-form family on it
 
 
 @dataclass
 class TrainJob:
     """One Snakemake job: a split x gradient-trained model (every penalty and seed), or the closed-form
-    baselines of every split. Units are the runs it produces, in the order of the rule's outputs."""
-    split_id: str  # or ALL_SPLITS
+    baselines of one split. Units are the runs it produces, in the order of the rule's outputs."""
+    split_id: str
     model: str  # sweep model name, or BASELINES
     units: list[dict]  # {"split_id", "model", "penalty", "seed", "job": config slice[, "search": trials]}
     code_digest: str
@@ -96,6 +96,16 @@ class WorkflowPlan:
         """The training job of a split and model (and forecast variable, when there are several)."""
         return self.jobs[(split_id, model, target) if self.several_targets and target else (split_id, model)]
 
+    def baselines_job(self, split_id: str) -> "TrainJob":
+        """The job that fits every closed-form family on this split (every forecast variable of it)."""
+        return self.jobs[(split_id, BASELINES)]
+
+    def baseline_record_patterns(self) -> list[str]:
+        """The fit_baselines rule's outputs, with a {split_id} wildcard, in the order of its job's units
+        (every split's baselines job has the same units, bar the split)."""
+        first = self.baselines_job(next(iter(self.splits)))
+        return [self.run_record("{split_id}", unit) for unit in first.units]
+
     def records_of(self, job: TrainJob) -> list[str]:
         return [self.run_record(unit["split_id"], unit) for unit in job.units]
 
@@ -120,7 +130,7 @@ class WorkflowPlan:
     def to_data(self) -> dict:
         """The plan as JSON-able data (pipeline.plan_cache stores it); `from_data` restores it."""
         return {"cfg": to_container(self.cfg), "overrides": self.overrides, "cities": self.cities,
-                "splits": self.splits, "jobs": [asdict(job) for job in self.jobs.values()],
+                "splits": self.splits, "jobs": [job_data(job) for job in self.jobs.values()],
                 "trainable_models": self.trainable_models, "baseline_models": self.baseline_models,
                 "rule_code": self.rule_code, "targets": self.targets}
 
@@ -134,6 +144,12 @@ class WorkflowPlan:
 
     def city_format(self, city: str) -> dict:
         return to_container(self.cfg.data.cities[city])
+
+
+def job_data(job: TrainJob) -> dict:
+    """A job's fields as data for JSON: its units are not copied (dataclasses.asdict deep-copies every
+    job slice, seconds for experiment=full's thousands of units)."""
+    return {item.name: getattr(job, item.name) for item in fields(TrainJob)}
 
 
 def unit_target(unit: dict) -> str:
@@ -192,15 +208,16 @@ def plan_config(overrides: str | list | None = None, root: Path | str = ".") -> 
 
 
 def compose_plan(overrides: list[str], root: Path) -> WorkflowPlan:
-    """Compose the configuration with Hydra (once per model x penalty pair) and plan cities, splits, jobs."""
+    """Compose the configuration (Hydra twice, pipeline.config.VariantComposer) and plan cities, splits, jobs."""
     from pipeline import search
-    from pipeline.config import compose_config, expand_sweep_overrides, forecast_targets, job_slice, validate
+    from pipeline.config import VariantComposer, expand_sweep_overrides, forecast_targets, job_slice, validate
     from pipeline.names import NOT_APPLICABLE
     from pipeline.splits import plan_splits
     from pipeline.stations import load_stations
 
     overrides = expand_sweep_overrides(overrides)
-    cfg = compose_config(overrides, root)
+    variants = VariantComposer(overrides, root)  # two Hydra compositions serve every model x penalty
+    cfg = variants.base
     validate(cfg)
     stations = load_stations(root / cfg.data.stations)
     configured = set(cfg.data.cities)
@@ -224,12 +241,12 @@ def compose_plan(overrides: list[str], root: Path) -> WorkflowPlan:
     search.check_config(search_cfg, root / "config")
     baseline_units, baseline_families = [], []
     for model_name in cfg.sweep.models:
-        model_cfg = compose_config([*overrides, f"model={model_name}"], root)
+        model_cfg = variants.compose(model_name)
         family = model_cfg.model.family
         if not _is_trainable(to_container(model_cfg.model)):
-            # Closed-form families take well under a second per split: one job fits them all on every
-            # split, so the ~4 s of process start-up is paid once (bench/startup_overhead.py); unchanged
-            # runs inside it are reused, so a re-run retrains only the splits that changed.
+            # Closed-form families take well under a second per split: one job per split fits them all,
+            # so start-up is paid once per split, not per family, and a split's baselines depend on its
+            # own cities only (new data for one city re-fits the baselines of its splits alone).
             plan.baseline_models.append(model_name)
             baseline_families.append(family)
             baseline_units += search.attach([{"model": model_name, "penalty": NOT_APPLICABLE, "seed": 0,
@@ -237,10 +254,13 @@ def compose_plan(overrides: list[str], root: Path) -> WorkflowPlan:
                                                                  target)} for target in plan.targets],
                                             search_cfg, trainable=False)
             continue
+        if model_name == BASELINES:  # its jobs' keys would be those of the splits' baselines jobs
+            raise InputError(f"a gradient-trained model may not be named {BASELINES!r}", file="config",
+                             field="sweep.models")
         plan.trainable_models.append(model_name)
         units = []
         for penalty_name in cfg.sweep.penalties:
-            pair_cfg = compose_config([*overrides, f"model={model_name}", f"penalty={penalty_name}"], root)
+            pair_cfg = variants.compose(model_name, penalty_name)
             validate(pair_cfg)
             units += [{"model": model_name, "penalty": penalty_name, "seed": seed,
                        "job": _for_target(job_slice(pair_cfg, model_name, penalty_name), target)}
@@ -259,10 +279,11 @@ def compose_plan(overrides: list[str], root: Path) -> WorkflowPlan:
                                                       if unit_target(u) == target], digest, versions,
                                target if plan.several_targets else "")
                 plan.jobs[job.key] = job
-    if baseline_units and splits:
-        units = [{"split_id": split_id, **unit} for split_id in splits for unit in baseline_units]
+    if baseline_units:
         families = sorted(set(baseline_families))
-        plan.jobs[(ALL_SPLITS, BASELINES)] = TrainJob(ALL_SPLITS, BASELINES, units,
-                                                      plan.code_digest("fit_baselines", families),
-                                                      plan.versions("fit_baselines", families))
+        digest, versions = plan.code_digest("fit_baselines", families), plan.versions("fit_baselines", families)
+        for split_id in splits:
+            job = TrainJob(split_id, BASELINES, [{"split_id": split_id, **unit} for unit in baseline_units],
+                           digest, versions)
+            plan.jobs[job.key] = job
     return plan

@@ -55,3 +55,23 @@ def test_two_forecast_targets_schedule_a_job_per_variable(project):
         assert f"runs/{variable}/" in text and f"logs/train_model/{variable}/" in text
     trained = [job for key, job in plan.jobs.items() if key[1] != "baselines"]
     assert len(trained) == 2 * len(plan.splits) * len(plan.trainable_models)
+
+
+@pytest.mark.e2e
+def test_each_split_has_its_own_baselines_job_reading_only_its_cities(project):
+    """New data for one city must not re-fit the baselines of splits without it: a split's baselines job
+    reads its split record, the tracking record and the clean tables of its own cities, nothing else."""
+    from pipeline.outdated import parse_dry_run
+
+    overrides = ["experiment=demo"]  # some of its splits leave a city out
+    plan = plan_workflow(overrides, project)
+    assert any(len(plan.split_cities(split_id)) < len(plan.cities) for split_id in plan.splits)
+    result = dry_run(overrides, root=project)
+    assert result.returncode == 0, (result.stdout[-2000:], result.stderr[-2000:])
+    jobs = [job for job in parse_dry_run(result.stdout + "\n" + result.stderr) if job.rule == "fit_baselines"]
+    assert sorted(job.wildcards["split_id"] for job in jobs) == sorted(plan.splits)
+    for job in jobs:
+        split_id = job.wildcards["split_id"]
+        assert set(job.input) == {f"{plan.results_dir}/splits/{split_id}.json", f"{plan.results_dir}/tracking.json",
+                                  *(plan.clean_path(city) for city in plan.split_cities(split_id))}
+        assert job.output == plan.records_of(plan.baselines_job(split_id))

@@ -93,10 +93,9 @@ def scheduled(project: Path, overrides: list[str] = OVERRIDES) -> tuple[dict[str
 
 
 def training_jobs(jobs) -> set[tuple[str, str]]:
-    """(split, model) of scheduled training jobs; the closed-form baselines of all splits share one job
-    ("all", "baselines"), inside which unchanged runs are reused rather than retrained."""
-    return {(j.wildcards.get("split_id", "all"), j.wildcards.get("model", "baselines"))
-            for j in jobs if j.rule in TRAINING}
+    """(split, model) of scheduled training jobs; the closed-form baselines of a split share one job
+    (split, "baselines"), inside which unchanged runs are reused rather than retrained."""
+    return {(j.wildcards["split_id"], j.wildcards.get("model", "baselines")) for j in jobs if j.rule in TRAINING}
 
 
 def scheduled_while_edited(base: Path, path: Path, edited: bytes):
@@ -203,9 +202,10 @@ def test_verify_reports_identical_and_touches_no_record(base, plan):
 def test_case3_one_models_hyperparameter_reruns_only_that_model(base, plan):
     path = base / "config" / "model" / "ridge.yaml"
     counts, jobs, status = scheduled_while_edited(base, path, path.read_bytes().replace(b"alpha: 1.0", b"alpha: 3.0"))
-    assert counts == {"fit_baselines": 1, "aggregate_grid": 1, "render_report": 1}
-    assert {model for _, model in training_jobs(jobs)} == {"baselines"}  # ridge's job; the others are reused
-    assert "hyperparameters of model ridge changed: 1 training jobs" in status.stdout
+    # every split's baselines job (ridge's runs are in each); persistence's runs are reused inside them
+    assert counts == {"fit_baselines": 2, "aggregate_grid": 1, "render_report": 1}
+    assert training_jobs(jobs) == {(split_id, "baselines") for split_id in plan.splits}
+    assert "hyperparameters of model ridge changed: 2 training jobs" in status.stdout
 
 
 @pytest.mark.e2e
@@ -227,8 +227,8 @@ def test_case5_code_of_one_family_reruns_only_that_family(base, plan):
     module = base / "pipeline" / provenance.family_module_file("persistence")
     counts, jobs, status = scheduled_while_edited(base, module,
                                                   module.read_bytes() + b"\n# a comment changes the source digest\n")
-    assert counts == {"fit_baselines": 1, "aggregate_grid": 1, "render_report": 1}
-    assert {model for _, model in training_jobs(jobs)} == {"baselines"}
+    assert counts == {"fit_baselines": 2, "aggregate_grid": 1, "render_report": 1}
+    assert training_jobs(jobs) == {(split_id, "baselines") for split_id in plan.splits}
     assert "code of persistence" in status.stdout
     assert scheduled(base)[0] == {}  # restored source: nothing to do again
 
@@ -243,7 +243,7 @@ def test_case6_new_city_runs_only_the_new_splits(base, plan):
     assert counts == {"ingest_city": 1, "build_split": 1, "fit_baselines": 1, "train_model": 1,
                       "aggregate_grid": 1, "diagnose_shift": 1, "render_report": 1}
     assert [j.wildcards["city"] for j in jobs if j.rule == "ingest_city"] == ["dunmarrow"]
-    new_splits = {split for split, _ in training_jobs(jobs)} - {"all"}
+    new_splits = {split for split, _ in training_jobs(jobs)}  # the baselines of the old splits stay as they are
     assert len(new_splits) == 1 and new_splits.isdisjoint(plan.splits)
     status = shiftgrid(base, "status", "experiment=rerun_plus")
     assert "new splits: 1 (2 training jobs)" in status.stdout
@@ -282,7 +282,7 @@ def test_case1_new_rows_rerun_only_splits_of_that_city_and_supersede(base, plan)
     counts, jobs = scheduled(base)
     assert counts == {"ingest_city": 1, "build_split": 1, "fit_baselines": 1, "train_model": 1,
                       "aggregate_grid": 1, "diagnose_shift": 1, "render_report": 1}
-    assert {split for split, _ in training_jobs(jobs)} == {touched, "all"}
+    assert training_jobs(jobs) == {(touched, "linear"), (touched, "baselines")}  # the other split is untouched
     status = shiftgrid(base, "status", *OVERRIDES)
     assert "new data for city arlenvik: 2 training jobs" in status.stdout
 
@@ -302,9 +302,8 @@ def test_case1_new_rows_rerun_only_splits_of_that_city_and_supersede(base, plan)
             assert new["run_id"] != old["run_id"] and new["supersedes"] == [old["run_id"]]
             assert client.get_run(old["run_id"]).data.tags["superseded_by"] == new["run_id"]
         else:
-            # untouched split: the same run (the baselines job re-ran but reused it without retraining)
-            assert new["run_id"] == old["run_id"] and new["metrics"] == old["metrics"]
-            assert new["reused"] or new == old
+            # untouched split: none of its jobs ran, so its records are exactly as they were
+            assert new == old
             assert "superseded_by" not in client.get_run(old["run_id"]).data.tags
     grid = pd.read_parquet(base / "results" / "grid.parquet")
     assert set(grid["run_id"]) == {r["run_id"] for r in after.values()}  # current runs only

@@ -51,9 +51,13 @@ def test_two_targets_double_the_runs_each_under_its_variable(plans):
     # the variable is part of each job slice (so of the unit digest), and only it differs
     pm25, no2 = (two.job(trainable[0].split_id, "linear", v).units[0]["job"] for v in ("pm25", "no2"))
     assert pm25 != no2 and {**no2, "forecast": {**no2["forecast"], "target": "pm25"}} == pm25
-    # the baselines job fits every closed-form family for each variable
-    baselines = two.jobs[("all", "baselines")]
-    assert sorted({unit_target(u) for u in baselines.units}) == ["no2", "pm25"]
+    # a split's baselines job fits every closed-form family of it for each variable, one job per split
+    baselines = [job for key, job in two.jobs.items() if key[1] == "baselines"]
+    assert sorted(job.split_id for job in baselines) == sorted(two.splits)
+    for job in baselines:
+        assert sorted({unit_target(u) for u in job.units}) == ["no2", "pm25"]
+        assert {u["split_id"] for u in job.units} == {job.split_id}
+        assert two.records_of(job) == [p.replace("{split_id}", job.split_id) for p in two.baseline_record_patterns()]
 
 
 def test_plan_survives_the_cache_round_trip(plans):

@@ -1,7 +1,8 @@
 # Stage 3: training. One job per split x gradient-trained model runs every penalty and seed of it
-# (start-up is paid once per job); one job fits the closed-form baselines (penalty "na", shown as n/a,
-# seed 0) on every split. Within a job, a run whose inputs are unchanged is reused from MLflow, so a
-# re-run job retrains only what changed (pipeline.train_job).
+# (start-up is paid once per job); one job per split fits every closed-form baseline of it (penalty "na",
+# shown as n/a, seed 0), so new data for one city re-fits only its splits' baselines and no single
+# baselines job grows with the number of splits. Within a job, a run whose inputs are unchanged is
+# reused from MLflow, so a re-run job retrains only what changed (pipeline.train_job).
 
 PENALTIES = list(PLAN.cfg.sweep.penalties)
 SEEDS = list(PLAN.cfg.sweep.seeds)
@@ -46,33 +47,39 @@ rule train_model:
         "../scripts/train_model.py"
 
 
-def baseline_inputs(wildcards):
-    """Every split record and every clean table: the baselines job covers all splits."""
-    return {"splits": [f"{RESULTS}/splits/{split_id}.json" for split_id in PLAN.splits],
-            "clean": [PLAN.clean_path(city) for city in PLAN.cities]}
-
-
 def baselines_job(wildcards):
-    return PLAN.jobs[("all", "baselines")]
+    return PLAN.baselines_job(wildcards.split_id)
 
 
-if ("all", "baselines") in PLAN.jobs:
+def baselines_units(wildcards):
+    return baselines_job(wildcards).params_json
+
+
+def baselines_code(wildcards):
+    return baselines_job(wildcards).code_digest
+
+
+def baselines_versions(wildcards):
+    return baselines_job(wildcards).versions
+
+
+if PLAN.baseline_models and PLAN.splits:
 
     rule fit_baselines:
         input:
-            unpack(baseline_inputs),
+            unpack(clean_inputs_of_split),
+            split=f"{RESULTS}/splits/{{split_id}}.json",
             tracking=f"{RESULTS}/tracking.json",
         output:
-            PLAN.records_of(PLAN.jobs[("all", "baselines")]),
+            PLAN.baseline_record_patterns(),  # every closed-form model (x forecast variable) of one split
         log:
-            f"{RESULTS}/logs/fit_baselines.log",
+            f"{RESULTS}/logs/fit_baselines/{{split_id}}.log",
         benchmark:
-            f"{RESULTS}/benchmarks/fit_baselines.tsv"
+            f"{RESULTS}/benchmarks/fit_baselines/{{split_id}}.tsv"
         threads: 1
         params:
-            units=PLAN.jobs[("all", "baselines")].params_json,
-            code=PLAN.jobs[("all", "baselines")].code_digest,
-            versions=PLAN.jobs[("all", "baselines")].versions,
-            results=RESULTS,
+            units=baselines_units,
+            code=baselines_code,
+            versions=baselines_versions,
         script:
             "../scripts/fit_baselines.py"

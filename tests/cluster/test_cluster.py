@@ -100,9 +100,9 @@ def test_the_served_run_went_through_slurm_with_grouped_small_jobs(tiny_runs):
     kinds = collections.Counter("group_" + name.split("_")[1] if name.startswith("group_") else name.split("/")[0]
                                 for name in submitted)
     # One SLURM job for all cities' ingestion, one for the store setup with every split, one for the three
-    # closing steps; one per training job (3 splits x 2 trained models) and one for all baselines.
+    # closing steps; one per training job (3 splits x 2 trained models) and one per split's baselines.
     assert kinds == {"group_ingest": 1, "group_prepare": 1, "group_finish": 1, "rule_train_model": 6,
-                     "rule_fit_baselines": 1}, kinds
+                     "rule_fit_baselines": 3}, kinds
 
 
 def test_every_run_is_in_the_server_store(tiny_runs):
