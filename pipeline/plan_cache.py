@@ -1,7 +1,7 @@
 """A cache of the DAG plan: Snakemake invocations and `shiftgrid status` skip Hydra when nothing changed.
 
-Composing the plan costs one Hydra composition per model x penalty pair (0.5-0.8 s each on 2 busy cores)
-at every Snakemake invocation. The plan is a function of the overrides, the config tree, the files the
+Composing the plan costs two Hydra compositions (pipeline.config.VariantComposer), the splits and every
+job's params at every Snakemake invocation: seconds for experiment=full. The plan is a function of the overrides, the config tree, the files the
 plan reads (the station table), the package's code and the library versions (code digests and, with
 tracking.dependency_changes=rerun, versions are part of it); not of where the project folder sits, so a
 moved project keeps its entries. The key covers the overrides, the config tree and the code; the entry
