@@ -11,7 +11,7 @@ import yaml
 from pipeline.demo import generate_demo
 from pipeline.ingest import core, raw, timeparse
 from pipeline.ingest.formats import validate_format
-from pipeline.ingest.values import _parse_cells, parse_numbers
+from pipeline.ingest.values import _parse_cells, parse_number_columns, parse_numbers
 from pipeline.stations import load_stations
 
 REPO = Path(__file__).resolve().parents[1]
@@ -30,6 +30,8 @@ def test_fast_and_careful_ingestion_agree_on_a_demo_city(tmp_path, monkeypatch, 
     assert read_fast and all(table is not None for table in read_fast)  # every demo file is plain
     monkeypatch.setattr(raw, "_plain_table", lambda *args: None)
     monkeypatch.setattr(core, "parse_numbers", _parse_cells)
+    monkeypatch.setattr(core, "parse_number_columns",
+                        lambda columns, spec: {name: _parse_cells(text, spec) for name, text in columns.items()})
     careful_clean, careful_report = core.ingest_city(city, DEMO["cities"][city], tmp_path, STATIONS)
     pd.testing.assert_frame_equal(fast_clean, careful_clean, check_exact=True)
     assert fast_report == careful_report
@@ -47,6 +49,9 @@ def test_arrow_numbers_match_the_per_cell_rules(decimal):
     want_numbers, want_flags = _parse_cells(text, spec)
     np.testing.assert_array_equal(flags, want_flags)
     np.testing.assert_array_equal(numbers, want_numbers)  # NaN in the same places, numbers bit-equal
+    together = parse_number_columns({"a": text, "b": text[::-1].reset_index(drop=True)}, spec)
+    np.testing.assert_array_equal(together["a"][1], want_flags)
+    np.testing.assert_array_equal(together["b"][0], want_numbers[::-1])
 
 
 def test_arrow_cast_equals_to_numeric_bit_for_bit():

@@ -18,7 +18,7 @@ from pipeline.errors import InputError
 from pipeline.ingest import cadence, jsonl, long_csv, qc, station_columns_csv, timeparse, wide_csv
 from pipeline.atomic import write_json_atomic, write_parquet_atomic
 from pipeline.ingest.formats import files_pattern, validate_format
-from pipeline.ingest.values import parse_numbers, to_canonical
+from pipeline.ingest.values import parse_number_columns, parse_numbers, to_canonical
 from pipeline.stations import load_stations, stations_of_city
 from pipeline.units import conversion_to_canonical
 from pipeline.variables import QC_MISSING, VARIABLE_NAMES, qc_column
@@ -27,6 +27,8 @@ READERS = {"wide_csv": wide_csv, "long_csv": long_csv, "jsonl": jsonl, "station_
 DROP_REASONS = ("unparseable_record", "unknown_station", "variable_not_mapped", "unparseable_timestamp",
                 "timestamp_outside_window", "exact_duplicate", "nonexistent_local_time",
                 "ambiguous_local_time", "timestamp_off_the_step", "conflicting_duplicate")
+# Each row's fate as a small integer: 0 kept, else the 1-based position of its drop reason.
+REASON_CODE = {name: code for code, name in enumerate(DROP_REASONS, start=1)}
 
 
 def matching_files(raw_dir, pattern: str) -> list[Path]:
@@ -137,33 +139,33 @@ def ingest_city(city: str, fmt: dict, raw_dir, stations: pd.DataFrame,
     paths = matching_files(raw_dir, spec["files"])
     raw = READERS[spec["layout"]].read(paths, spec)
     frame = raw.frame.reset_index(drop=True)
-    reason = np.full(len(frame), "", dtype=object)
+    reason = np.zeros(len(frame), dtype="int8")
     known = set(stations_of_city(stations, city)["station_id"])
 
     def active():
-        return reason == ""
+        return reason == 0
 
     station_codes, delivered_codes = pd.factorize(frame["station_raw"])
     mapped = pd.array([spec["station_map"].get(code, code) for code in delivered_codes], dtype="str")
     frame["station_id"] = mapped.take(station_codes)
     unknown = ~frame["station_id"].isin(known).to_numpy()
-    reason[unknown] = "unknown_station"
+    reason[unknown] = REASON_CODE["unknown_station"]
     series_keys = ["station_id"]
     if raw.long:
         frame["variable"] = frame["variable_raw"].map(spec["variables"])
-        reason[active() & frame["variable"].isna().to_numpy()] = "variable_not_mapped"
+        reason[active() & frame["variable"].isna().to_numpy()] = REASON_CODE["variable_not_mapped"]
         series_keys.append("variable")
         value_columns = ["variable", "value_raw", "unit_raw"]
     else:
         value_columns = list(spec["columns"].values())
     parsed = timeparse.parse_text(frame["time_raw"], spec["time"])
-    reason[active() & parsed.isna().to_numpy()] = "unparseable_timestamp"
+    reason[active() & parsed.isna().to_numpy()] = REASON_CODE["unparseable_timestamp"]
     window = timeparse.window_bounds(spec["time"])
-    reason[active() & timeparse.outside_window(parsed, window)] = "timestamp_outside_window"
+    reason[active() & timeparse.outside_window(parsed, window)] = REASON_CODE["timestamp_outside_window"]
     exact = qc.mark_exact_duplicates(frame, active(), ["station_id", "time_raw"], value_columns)
-    reason[exact] = "exact_duplicate"
+    reason[exact] = REASON_CODE["exact_duplicate"]
     if not raw.long:  # the values' text has served (exact duplicates): numbers take far less memory
-        parsed_values = {column: parse_numbers(frame[column], spec) for column in value_columns}
+        parsed_values = parse_number_columns({column: frame[column] for column in value_columns}, spec)
         frame = frame.drop(columns=value_columns)
 
     if timeparse.is_aware(parsed):
@@ -176,7 +178,8 @@ def ingest_city(city: str, fmt: dict, raw_dir, stations: pd.DataFrame,
         local_utc, time_reason, dst = timeparse.localize_to_utc(
             parsed[rows], frame.loc[rows, series_keys], spec["time"])
         utc[rows] = local_utc.astype("datetime64[ns, UTC]")
-        reason[np.flatnonzero(rows)[time_reason.to_numpy() != ""]] = time_reason[time_reason != ""].to_numpy()
+        late = time_reason != ""
+        reason[np.flatnonzero(rows)[late.to_numpy()]] = time_reason[late].map(REASON_CODE).to_numpy()
     dst["hour_label"] = spec["time"]["label"]
     study_step = cadence.parse_cadence(spec["cadence"])
     step = cadence.delivered_step(utc.where(active()), frame[series_keys]) or study_step
@@ -186,12 +189,12 @@ def ingest_city(city: str, fmt: dict, raw_dir, stations: pd.DataFrame,
                          f"{cadence.cadence_label(step)} or coarser", file=config_file or "data config",
                          field=f"cities.{city}.cadence")
     frame["utc"] = timeparse.apply_label(utc, spec["time"], step).astype("datetime64[ns, UTC]")
-    reason[active() & timeparse.outside_window(frame["utc"], window)] = "timestamp_outside_window"
+    reason[active() & timeparse.outside_window(frame["utc"], window)] = REASON_CODE["timestamp_outside_window"]
     off_step = frame["utc"].notna() & (frame["utc"] != frame["utc"].dt.floor(step))
-    reason[active() & off_step.to_numpy()] = "timestamp_off_the_step"
+    reason[active() & off_step.to_numpy()] = REASON_CODE["timestamp_off_the_step"]
     losers, conflict_groups = qc.mark_conflicting_duplicates(frame, active(), ["utc", *series_keys],
                                                              spec["duplicates"])
-    reason[losers] = "conflicting_duplicate"
+    reason[losers] = REASON_CODE["conflicting_duplicate"]
 
     kept = frame.loc[active(), list(frame.columns) if raw.long else ["station_id", "utc"]].reset_index(drop=True)
     if kept.empty:  # never hand an empty table to the splits and training
@@ -200,7 +203,8 @@ def ingest_city(city: str, fmt: dict, raw_dir, stations: pd.DataFrame,
                              row=spec["header_line"] + 1 if spec["layout"] != "jsonl" else 1,
                              field="rows")
         raise InputError(f"no usable row for city {city}: every row was dropped "
-                         f"({qc.top_codes(pd.Series(reason[reason != '']))}, see unparseable_record too)",
+                         f"({qc.top_codes(pd.Series(np.array(DROP_REASONS)[reason[reason != 0] - 1]))}, "
+                         f"see unparseable_record too)",
                          file=str(paths[0]), field="rows")
     if raw.long:
         keys, values, conversions = _convert_long(kept, spec, reference_temperature_c)
@@ -213,7 +217,12 @@ def ingest_city(city: str, fmt: dict, raw_dir, stations: pd.DataFrame,
         clean, aggregation = cadence.aggregate(clean, sorted(values), step, study_step, spec["completeness"])
         clean = _with_every_variable(clean, values).sort_values(["station_id", "time"], ignore_index=True)
 
-    dropped = {name: int((reason == name).sum()) for name in DROP_REASONS}
+    tally = np.bincount(reason, minlength=len(DROP_REASONS) + 1)
+
+    def dropped_for(name: str) -> np.ndarray:
+        return reason == REASON_CODE[name]
+
+    dropped = {name: int(tally[code]) for name, code in REASON_CODE.items()}
     dropped["unparseable_record"] = raw.pre_dropped.get("unparseable_record", 0)
     rows_read = len(frame) + dropped["unparseable_record"]
     report = {
@@ -231,9 +240,9 @@ def ingest_city(city: str, fmt: dict, raw_dir, stations: pd.DataFrame,
         "time_window": {"earliest": spec["time"]["earliest"],
                         "latest": spec["time"]["latest"] or "time of ingestion",
                         "rows_dropped": dropped["timestamp_outside_window"],
-                        "stamps": qc.top_codes(frame.loc[reason == "timestamp_outside_window", "time_raw"])},
-        "unknown_station_codes": qc.top_codes(frame.loc[reason == "unknown_station", "station_raw"]),
-        "unmapped_variable_codes": (qc.top_codes(frame.loc[reason == "variable_not_mapped", "variable_raw"])
+                        "stamps": qc.top_codes(frame.loc[dropped_for("timestamp_outside_window"), "time_raw"])},
+        "unknown_station_codes": qc.top_codes(frame.loc[dropped_for("unknown_station"), "station_raw"]),
+        "unmapped_variable_codes": (qc.top_codes(frame.loc[dropped_for("variable_not_mapped"), "variable_raw"])
                                     if raw.long else {}),
         "dst": dst,
         "cadence": {"study": spec["cadence"], "delivered": cadence.cadence_label(step),

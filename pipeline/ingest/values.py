@@ -28,15 +28,43 @@ _PLAIN_NUMBER = r"^[+-]?(?:[0-9]+(?:\.[0-9]*)?|\.[0-9]+)(?:[eE][+-]?[0-9]+)?$"
 
 def parse_numbers(text: pd.Series, spec: dict) -> tuple[np.ndarray, np.ndarray]:
     """Text -> (float64 values as delivered, int8 flags); flagged values are NaN."""
+    return parse_number_columns({"": text}, spec)[""]
+
+
+def parse_number_columns(columns: dict, spec: dict) -> dict:
+    """parse_numbers for several text columns at once ({name: text} -> {name: (numbers, flags)}): their few
+    irregular cells go through the per-cell rules together, in one pass instead of one per column."""
+    parsed, irregular = {}, {}
+    for name, text in columns.items():
+        numbers, flags, other = _parse_plain(text, spec)
+        parsed[name] = numbers, flags
+        if other.any():
+            irregular[name] = other
+    if irregular:
+        numbers, flags = _parse_cells(pd.concat([columns[name][other] for name, other in irregular.items()],
+                                                ignore_index=True), spec)
+        start = 0
+        for name, other in irregular.items():
+            end = start + int(other.sum())
+            parsed[name][0][other], parsed[name][1][other] = numbers[start:end], flags[start:end]
+            start = end
+    for numbers, flags in parsed.values():
+        numbers[flags != QC_OK] = np.nan
+    return parsed
+
+
+def _parse_plain(text: pd.Series, spec: dict) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
+    """(numbers, flags, mask of the cells left to the per-cell rules): plain numbers and missing-value words
+    as delivered are read here, through Arrow."""
     words = spec["missing_values"]
     arrow_text = isinstance(text.dtype, pd.StringDtype) and text.dtype.storage == "pyarrow"
     if not arrow_text or text.hasnans or any(word != word.strip() for word in words):
-        return _parse_cells(text, spec)
+        return np.full(len(text), np.nan), np.full(len(text), QC_OK, dtype="int8"), np.ones(len(text), dtype=bool)
     cells = text.array.__arrow_array__()  # the column's Arrow chunks, no copy
     is_missing = pc.is_in(cells, value_set=pa.array(words, cells.type))
     missing = is_missing.to_numpy(zero_copy_only=False)
     dotted = cells if spec["decimal"] == "." else pc.replace_substring(cells, spec["decimal"], ".")
-    readable = pc.if_else(is_missing, pa.scalar(None, cells.type), dotted)
+    readable = pc.if_else(is_missing, pa.scalar(None, cells.type), dotted) if missing.any() else dotted
     try:
         numbers = pc.cast(readable, pa.float64()).to_numpy(zero_copy_only=False)
         plain = ~missing
@@ -48,13 +76,8 @@ def parse_numbers(text: pd.Series, spec: dict) -> tuple[np.ndarray, np.ndarray]:
     plain &= np.isfinite(numbers)
     flags = np.full(len(text), QC_OK, dtype="int8")
     flags[missing] = QC_MISSING
-    sentinel = plain & np.isin(numbers, np.asarray(spec["sentinels"], dtype="float64"))
-    flags[sentinel] = QC_SENTINEL
-    other = ~missing & ~plain
-    if other.any():
-        numbers[other], flags[other] = _parse_cells(text[other], spec)
-    numbers[flags != QC_OK] = np.nan
-    return numbers, flags
+    flags[plain & np.isin(numbers, np.asarray(spec["sentinels"], dtype="float64"))] = QC_SENTINEL
+    return numbers, flags, ~missing & ~plain
 
 
 def _parse_cells(text: pd.Series, spec: dict) -> tuple[np.ndarray, np.ndarray]:
