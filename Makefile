@@ -18,11 +18,15 @@ $(STAMP): pyproject.toml
 demo: $(STAMP)
 	$(BIN)/shiftgrid demo --run experiment=demo
 
+# Test files run on TEST_WORKERS pytest-xdist workers, one file (or the files sharing one DAG run;
+# tests/conftest.py) per worker at a time; TEST_WORKERS=0 runs them in this process.
+TEST_WORKERS ?= 2
+
 test: $(STAMP)
-	$(BIN)/python -m pytest -q
+	$(BIN)/python -m pytest -q -n $(TEST_WORKERS) --dist loadscope
 
 test-fast: $(STAMP)
-	$(BIN)/python -m pytest -q -m "not e2e"
+	$(BIN)/python -m pytest -q -n $(TEST_WORKERS) --dist loadscope -m "not e2e"
 
 # Benchmarks print each figure next to its goal; they never fail on timings.
 bench: $(STAMP)
