@@ -128,7 +128,7 @@ def _with_every_variable(clean, delivered) -> pd.DataFrame:
         else:  # not delivered by this city
             columns[variable] = np.full(rows, np.nan)
             columns[qc_column(variable)] = np.full(rows, QC_MISSING, dtype="int8")
-    return pd.DataFrame(columns)
+    return pd.DataFrame(columns, copy=False)  # the arrays are the table's own: no second copy of it in memory
 
 
 def ingest_city(city: str, fmt: dict, raw_dir, stations: pd.DataFrame,

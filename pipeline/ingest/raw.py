@@ -164,13 +164,13 @@ def _plain_table(data: bytes, text: str, spec: dict, path: Path) -> tuple[pd.Dat
                                read_options=pacsv.ReadOptions(column_names=names),
                                parse_options=pacsv.ParseOptions(delimiter=separator, quote_char=False),
                                convert_options=pacsv.ConvertOptions(
-                                   column_types={name: pa.string() for name in names},
+                                   column_types={name: pa.large_string() for name in names},
                                    strings_can_be_null=False))
     except pa.ArrowInvalid:  # a record with the wrong number of fields: the careful reader counts it
         return None
     if arrow.num_rows != rest.count(b"\n"):
         return None
-    table = arrow.to_pandas()
+    table = arrow.to_pandas()  # large_string is what pandas' str columns hold: no conversion copy
     table.insert(0, "line", np.arange(header_line + 1, header_line + 1 + len(table)))
     return table, hashlib.sha256(data).hexdigest()
 
