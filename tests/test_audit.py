@@ -193,6 +193,30 @@ def test_runs_table_has_the_target_city_in_its_own_column():
     assert "->" not in header and max(len(header), len(line)) <= 100
 
 
+def test_runs_names_each_runs_role_and_a_finished_trial_is_never_current(tmp_path):
+    """The grid reads a search's parent, not its trials: `--current` must not list a trial."""
+    from argparse import Namespace
+
+    from pipeline import tracking
+    from pipeline.commands.runs import search
+
+    uri = f"sqlite:///{tmp_path / 'mlflow.db'}"
+    experiment = tracking.setup_store(uri, "e", (tmp_path / "art").as_uri())
+    client = tracking.client_for(uri)
+    ids = {}
+    for name, tags in (("plain", {}), ("parent", {tracking.ROLE_TAG: "parent"}),
+                       ("trial", {tracking.ROLE_TAG: "trial"})):
+        ids[name] = client.create_run(experiment, tags={"model": "linear", **tags}).info.run_id
+        client.set_terminated(ids[name])
+    filters = dict(target=None, model=None, penalty=None, seed=None, variable=None, since=None, source=None,
+                   superseded=False)
+    listed = {row["run_id"]: row for row in search(client, experiment, Namespace(current=False, **filters))}
+    assert {name: (listed[i]["role"], listed[i]["state"]) for name, i in ids.items()} == {
+        "plain": ("run", "current"), "parent": ("parent", "current"), "trial": ("trial", "trial")}
+    current = {row["run_id"] for row in search(client, experiment, Namespace(current=True, **filters))}
+    assert current == {ids["plain"], ids["parent"]}
+
+
 def test_a_damaged_config_artifact_is_one_line(tmp_path, monkeypatch):
     bad = tmp_path / "resolved_config.yaml"
     bad.write_text("job: !!python/object/apply:os.system ['true']\nsplit: {}\n")

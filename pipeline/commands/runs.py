@@ -4,6 +4,10 @@
 Reads the MLflow store of the composed config (results_dir, tracking.uri, tracking.experiment) and lists
 its runs, newest first: table readable at 100 columns (run ID prefix; `show` accepts it), CSV or JSON
 with full IDs. Writes nothing.
+
+A run's role says what the grid makes of it: `run` (read as is), `parent` (a searched run, holding the
+results of the trial its selection rule picked) or `trial` (one setting a search tried; the grid reads its
+parent, so a finished trial's state is `trial`, never `current`).
 """
 
 import json
@@ -14,8 +18,8 @@ from pipeline.commands import add_run_filters
 from pipeline.errors import InputError
 
 FORMATS = ("table", "csv", "json")
-COLUMNS = ("run_id", "started", "split_id", "sources", "target", "variable", "model", "penalty", "seed", "state",
-           "superseded_by", "target_mae")
+COLUMNS = ("run_id", "started", "split_id", "sources", "target", "variable", "model", "penalty", "seed", "role",
+           "state", "superseded_by", "target_mae")
 VARIABLE_PARAM = "forecast.target"  # the forecast variable (--variable); --target is the target city
 
 
@@ -62,8 +66,11 @@ def search(client, experiment_id: str, args) -> list[dict]:
         tags = found.data.tags
         sources = tags.get("sources", "").split("+")
         successor = tags.get(tracking.SUPERSEDED_TAG)
-        # a killed, failed or still running run is never current: the grid uses finished runs only
-        state = "superseded" if successor else "current" if found.info.status == "FINISHED" else found.info.status.lower()
+        role = tags.get(tracking.ROLE_TAG, "run")
+        # a killed, failed or still running run is never current: the grid uses finished runs only, and of a
+        # search only the parent
+        finished = "trial" if role == "trial" else "current"
+        state = "superseded" if successor else finished if found.info.status == "FINISHED" else found.info.status.lower()
         if (args.source and args.source not in sources) or (args.current and state != "current") or \
                 (args.superseded and not successor):
             continue
@@ -71,7 +78,7 @@ def search(client, experiment_id: str, args) -> list[dict]:
                      "split_id": tags.get("split_id"), "sources": tags.get("sources"), "target": tags.get("target"),
                      "variable": found.data.params.get(VARIABLE_PARAM), "model": tags.get("model"),
                      "penalty": tags.get("penalty") and names.penalty_shown(tags["penalty"]),
-                     "seed": tags.get("seed"), "state": state,
+                     "seed": tags.get("seed"), "role": role, "state": state,
                      "superseded_by": successor or "", "target_mae": found.data.metrics.get("target_mae"),
                      "_start": found.info.start_time or 0})
     rows.sort(key=lambda row: (-row["_start"], row["run_id"]))
