@@ -4,16 +4,16 @@ alone with pipeline.train_loop.train_network.
 Reads in-memory window sets; writes nothing; obeys the `fit` group (pipeline.fit_config.FitConfig) and a
 penalty from pipeline.penalties, exactly as train_network does. Only the `linear` family and the `mlp`
 family without dropout (the default), both with `model.level` none, are trained together: their step is
-so small that the loop around it costs most of the time, and here one gather, one backward pass, one
-Adam step (fused, over every seed's tensors) and one evaluation pass per validation chunk serve all the
-seeds (bench/seed_ensemble.py measures the gain). Recurrent and attention networks spend their time in
+so small that the loop around it costs most of the time, and here one backward pass, one Adam step
+(fused, over every seed's tensors), one gradient-norm call and one evaluation pass per validation chunk
+serve all the seeds (bench/seed_ensemble.py measures the gain). Recurrent and attention networks spend their time in
 the products themselves, gain nothing this way and stay sequential (`stackable` says which).
 
 Why each seed's result is the one it gets alone (tests/test_ensemble.py checks weights, forecasts,
 histories and snapshots bit for bit):
 - weights: each seed's network is built under its own seed, as train_network builds it;
 - batches: each seed keeps its own sampler and torch.Generator seeded with the seed;
-- forward: nn.Linear's own kernel on each seed's slice (a batched matrix product, torch.baddbmm, gives
+- forward: nn.Linear's own kernel on each seed's own batch (a batched matrix product, torch.baddbmm, gives
   the same forecasts but rounds some weight gradients differently, depending on the shapes);
 - loss: each seed's penalty (its own copy: Group DRO keeps state) on its own slice; the backward pass
   of their sum hands each seed the gradient of its own loss, times exactly 1;
@@ -66,8 +66,7 @@ def stackable(network: nn.Module) -> bool:
 
 
 class StackedAffineChain(nn.Module):
-    """K networks of one architecture run as one module: inputs and forecasts stacked (K, B, ...), each
-    member's layers applied to its own slice."""
+    """K networks of one architecture run as one module: each member's layers applied to its own inputs."""
 
     def __init__(self, networks: list[nn.Module]):
         super().__init__()
@@ -77,25 +76,26 @@ class StackedAffineChain(nn.Module):
         self.members = nn.ModuleList(networks)
         self.layers = [[layer for _, layer in chain] for chain in zip(*chains)]  # per layer, every member's
 
-    def forward(self, X: torch.Tensor, members: list[int] | None = None) -> torch.Tensor:
-        """X (K, B, L, F) -> forecasts (K, B, H); with `members`, X (B, L, F) shared by those members."""
-        chosen = range(len(self.members)) if members is None else members
-        hidden = X.flatten(-2)
-        if members is not None:
-            hidden = hidden.expand(len(members), -1, -1)
-        for i, layer in enumerate(self.layers):
-            # nn.Linear's own kernel on each member's slice (see the module docstring: not baddbmm)
-            hidden = torch.stack([nn.functional.linear(hidden[row], layer[k].weight, layer[k].bias)
-                                  for row, k in enumerate(chosen)])
-            if i < len(self.layers) - 1:
-                hidden = torch.relu(hidden)
-        return hidden
+    def forward(self, inputs: list[torch.Tensor], members: list[int]) -> list[torch.Tensor]:
+        """Forecasts (B, H) of members[i] from inputs[i] (B, L, F), for every i. Each member's own batch,
+        gathered just before its layers use it: one stacked (K, B, L, F) gather would not stay in cache."""
+        forecasts = []
+        for X, k in zip(inputs, members):
+            hidden = X.flatten(1)
+            for i, layer in enumerate(self.layers):
+                # nn.Linear's own kernel on each member's inputs (see the module docstring: not baddbmm)
+                hidden = nn.functional.linear(hidden, layer[k].weight, layer[k].bias)
+                if i < len(self.layers) - 1:
+                    hidden = torch.relu(hidden)
+            forecasts.append(hidden)
+        return forecasts
 
     def predict(self, X: np.ndarray, members: list[int]) -> np.ndarray:
         """Forecasts (len(members), n, H) in chunks of EVAL_CHUNK windows, as predict_network makes them."""
         X_t = torch.from_numpy(np.ascontiguousarray(X, dtype=np.float32))
         with torch.no_grad():
-            outputs = [self(X_t[start:start + EVAL_CHUNK], members) for start in range(0, len(X_t), EVAL_CHUNK)]
+            outputs = [torch.stack(self([X_t[start:start + EVAL_CHUNK]] * len(members), members))
+                       for start in range(0, len(X_t), EVAL_CHUNK)]
         return torch.cat(outputs, dim=1).numpy()
 
 
@@ -146,11 +146,12 @@ def train_ensemble(build_network, train, val: dict | None = None, penalty: Penal
     while step < cfg.max_steps and active:
         if penalty.resets_optimizer_at(step):
             optimizer = make_optimizer(stacked, cfg)
-        index = torch.stack([torch.cat(sampler.next_batch()) for sampler in samplers])  # (K, B)
-        predictions, targets = stacked(X[index]), y[index]
+        batches = [torch.cat(sampler.next_batch()) for sampler in samplers]  # every seed draws, stopped or not
+        predictions = dict(zip(active, stacked([X.index_select(0, batches[k]) for k in active], active)))
         losses, step_terms, diverged = [], {}, []
         for k in active:
-            terms = penalties[k].objective(predictions[k], targets[k], layout, step, env_weights=samplers[k].risk_weights)
+            terms = penalties[k].objective(predictions[k], y.index_select(0, batches[k]), layout, step,
+                                           env_weights=samplers[k].risk_weights)
             if not math.isfinite(terms.loss_value()):
                 diverged.append(k)
                 continue

@@ -12,7 +12,8 @@ Reads the environment index of every training window; writes nothing. Obeys `fit
   least `min_per_env` windows per batch so that per-environment terms stay defined; because the weights
   are the population shares, not the batch counts, that floor does not bias the risk term.
 
-Both draw from a dedicated, seeded torch.Generator. The sampling a run used is part of its protocol: a
+Both draw from a dedicated, seeded torch.Generator (index_select rather than advanced indexing: the same
+windows, at less cost per step). The sampling a run used is part of its protocol: a
 penalised run and its ERM twin must share it (pipeline.twins), and the grid pairs twins by it.
 """
 
@@ -39,7 +40,7 @@ class EnvironmentBalancedSampler:
 
     def next_batch(self) -> list[torch.Tensor]:
         """One index tensor per environment (in the order of self.env_ids), each of length per_env."""
-        return [idx[torch.randint(len(idx), (self.per_env,), generator=self.generator)]
+        return [idx.index_select(0, torch.randint(len(idx), (self.per_env,), generator=self.generator))
                 for idx in self.indices]
 
 
@@ -62,7 +63,7 @@ class PooledSampler:
 
     def next_batch(self) -> list[torch.Tensor]:
         """One index tensor per environment (in the order of self.env_ids), of length counts[e]."""
-        return [idx[torch.randint(len(idx), (count,), generator=self.generator)]
+        return [idx.index_select(0, torch.randint(len(idx), (count,), generator=self.generator))
                 for idx, count in zip(self.indices, self.counts)]
 
 
