@@ -83,10 +83,14 @@ def test_plain_file_reads_as_the_careful_reader_reads_it(tmp_path):
     spec = {**SPEC, "header_line": 3}
     path = write(tmp_path, "exported by logger\r\nunits: ug/m3\r\nsite,t,v\r\nA,2025-01-01 00:00, 1.5\r\n"
                            "B,2025-01-01 01:00,\r\n")
-    fast, digest = plain(path, spec)
-    careful = raw.read_csv_text(path, spec)
-    pd.testing.assert_frame_equal(fast, careful.table, check_dtype=False)
-    assert fast["line"].tolist() == [4, 5]  # line numbers as an editor shows them
+    copy = tmp_path / "dump2.csv"
+    copy.write_bytes(path.read_bytes())
+    arrow, digest = plain(path, spec)
+    files, fast = raw._joined([(path, arrow), (copy, arrow)], spec)  # two files, joined
+    careful = raw.read_csv_text(path, spec).table
+    pd.testing.assert_frame_equal(fast, pd.concat([careful, careful], ignore_index=True), check_dtype=False)
+    assert fast["line"].tolist() == [4, 5, 4, 5]  # line numbers as an editor shows them, per file
+    assert list(files) == [str(path), str(path), str(copy), str(copy)]
     assert digest == raw.file_digest(path)
 
 

@@ -14,8 +14,8 @@ def read(paths: list, spec: dict) -> RawTable:
     needed = [spec["station_column"], *time_columns(spec["time"]), spec["variable_column"],
               spec["value_column"]] + ([spec["unit_column"]] if "unit_column" in spec else [])
 
-    def frames_of(path, table):
-        return [pd.DataFrame({**located(path, table, spec),
+    def frames_of(files, table):
+        return [pd.DataFrame({**located(files, table, spec),
                               "variable_raw": table[spec["variable_column"]].str.strip(),
                               "value_raw": table[spec["value_column"]],
                               "unit_raw": (table[spec["unit_column"]].str.strip()

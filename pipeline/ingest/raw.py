@@ -138,10 +138,11 @@ def _blank_line(separator: str) -> re.Pattern:
     return re.compile(rb"\n[ \t\r\f\v\x1c-\x1f" + re.escape(separator.encode()) + rb"]*(?:\n|$)")
 
 
-def _plain_table(data: bytes, text: str, spec: dict, path: Path) -> tuple[pd.DataFrame, str] | None:
+def _plain_table(data: bytes, text: str, spec: dict, path: Path) -> tuple[pa.Table, str] | None:
     """The table through pyarrow when the file is plain (see the module docstring); None otherwise.
 
-    `data` is the file's bytes, `text` the same decoded. Returns (table with its `line` column, digest).
+    `data` is the file's bytes, `text` the same decoded. Returns (Arrow table of strings, digest); data row k
+    is on line header_line + 1 + k.
     """
     if codecs.lookup(spec["encoding"]).name != "utf-8":
         return None
@@ -170,9 +171,19 @@ def _plain_table(data: bytes, text: str, spec: dict, path: Path) -> tuple[pd.Dat
         return None
     if arrow.num_rows != rest.count(b"\n"):
         return None
-    table = arrow.to_pandas()  # large_string is what pandas' str columns hold: no conversion copy
-    table.insert(0, "line", np.arange(header_line + 1, header_line + 1 + len(table)))
-    return table, hashlib.sha256(data).hexdigest()
+    return arrow, hashlib.sha256(data).hexdigest()
+
+
+def _joined(plain: list[tuple[Path, pa.Table]], spec: dict) -> tuple[pd.Categorical, pd.DataFrame]:
+    """Consecutive plain files with one header as one table (one conversion to pandas, one frame for the
+    layout to build): (the file of each row, the table with its `line` column)."""
+    table = pa.concat_tables([arrow for _, arrow in plain]).to_pandas()  # large_string: no conversion copy
+    rows = [arrow.num_rows for _, arrow in plain]
+    first = spec["header_line"] + 1
+    table.insert(0, "line", np.concatenate([np.arange(first, first + count) for count in rows]))
+    files = pd.Categorical.from_codes(np.repeat(np.arange(len(plain)), rows),
+                                      categories=[str(path) for path, _ in plain])
+    return files, table
 
 
 def _utf8_plain(body: bytes) -> bool:
@@ -203,9 +214,9 @@ def _careful_text(text: str, path: Path, spec: dict) -> CsvText:
     return CsvText(table[~blank].reset_index(drop=True), int(blank.sum()), 0, [])
 
 
-def require_columns(table: pd.DataFrame, columns, path: Path, header_line: int):
+def require_columns(names, columns, path: Path, header_line: int):
     for column in columns:
-        if column not in table.columns:
+        if column not in names:
             raise InputError("column named in the format is not in the header", file=str(path),
                              row=header_line, field=column)
 
@@ -229,20 +240,37 @@ def time_columns(time_spec: dict) -> list[str]:
 def read_csv_files(paths: list, spec: dict, needed: list[str], frames_of, long: bool,
                    records_per_line: int = 1) -> RawTable:
     """Every file of a CSV layout: its columns checked, its table turned into raw frames by
-    `frames_of(path, table)`, its lines accounted for (a malformed line loses `records_per_line` records)."""
-    frames, files, malformed = [], [], 0
+    `frames_of(files, table)` (`files`: the file of each row), its lines accounted for (a malformed line
+    loses `records_per_line` records)."""
+    tables, plain_run, files, malformed = [], [], [], 0
+
+    def end_plain_run():
+        if plain_run:
+            tables.append(_joined(plain_run, spec))
+            plain_run.clear()
+
     for path in paths:
         data = Path(path).read_bytes()
         decoded = read_text(path, spec["encoding"])  # the one-line error naming an undecodable byte's line
         plain = _plain_table(data, decoded, spec, path)
         if plain is None:
             text, digest = _careful_text(decoded, path, spec), file_digest(path)
+            require_columns(text.table.columns, needed, path, spec["header_line"])
+            end_plain_run()
+            tables.append((file_column(path, len(text.table)), text.table))
         else:
-            text, digest = CsvText(plain[0], 0, 0, []), plain[1]
-        require_columns(text.table, needed, path, spec["header_line"])
-        frames.extend(frames_of(path, text.table))
+            arrow, digest = plain
+            text = CsvText(arrow, 0, 0, [])
+            require_columns(arrow.column_names, needed, path, spec["header_line"])
+            # A layout with several records per line lays its rows out file by file: joining files would
+            # change the delivery order of its rows.
+            if plain_run and (plain_run[-1][1].schema != arrow.schema or records_per_line != 1):
+                end_plain_run()
+            plain_run.append((path, arrow))
         files.append(text.file_entry(path, digest))
         malformed += text.malformed_records * records_per_line
+    end_plain_run()
+    frames = [frame for rows_file, table in tables for frame in frames_of(rows_file, table)]
     return RawTable(pd.concat(frames, ignore_index=True), long=long, files=files,
                     pre_dropped={"unparseable_record": malformed})
 
@@ -252,8 +280,8 @@ def file_column(path: Path, rows: int) -> pd.Categorical:
     return pd.Categorical.from_codes(np.zeros(rows, dtype="int8"), categories=[str(path)])
 
 
-def located(path: Path, table: pd.DataFrame, spec: dict) -> dict:
+def located(files: pd.Categorical, table: pd.DataFrame, spec: dict) -> dict:
     """The columns every raw frame starts with: where each record came from, its station and its stamp."""
-    return {"file": file_column(path, len(table)), "line": table["line"],
+    return {"file": files, "line": table["line"],
             "station_raw": table[spec["station_column"]].str.strip(),
             "time_raw": time_text(table, spec["time"])}

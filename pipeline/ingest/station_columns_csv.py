@@ -9,15 +9,15 @@ record: rows read = data lines x station columns.
 
 import pandas as pd
 
-from pipeline.ingest.raw import RawTable, file_column, read_csv_files, time_columns, time_text
+from pipeline.ingest.raw import RawTable, read_csv_files, time_columns, time_text
 
 
 def read(paths: list, spec: dict) -> RawTable:
     variable = spec["variable"]
 
-    def frames_of(path, table):
+    def frames_of(files, table):
         times = time_text(table, spec["time"])
-        return [pd.DataFrame({"file": file_column(path, len(table)), "line": table["line"], "station_raw": column, "time_raw": times,
+        return [pd.DataFrame({"file": files, "line": table["line"], "station_raw": column, "time_raw": times,
                               variable: table[column].array}) for column in spec["station_columns"]]
 
     return read_csv_files(paths, spec, [*time_columns(spec["time"]), *spec["station_columns"]], frames_of,

@@ -13,9 +13,9 @@ from pipeline.ingest.raw import RawTable, located, read_csv_files, time_columns
 def read(paths: list, spec: dict) -> RawTable:
     needed = [spec["station_column"], *time_columns(spec["time"]), *spec["columns"]]
 
-    def frames_of(path, table):
+    def frames_of(files, table):
         # .array keeps the Arrow strings as they are (no copy into Python objects)
-        return [pd.DataFrame({**located(path, table, spec),
+        return [pd.DataFrame({**located(files, table, spec),
                               **{canonical: table[raw_name].array for raw_name, canonical in spec["columns"].items()}})]
 
     return read_csv_files(paths, spec, needed, frames_of, long=False)
