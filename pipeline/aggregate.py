@@ -137,7 +137,9 @@ def collect_runs(record_paths: list[Path | str]) -> tuple[pd.DataFrame, dict]:
     rows, skipped = [], {}
     for path, record in records:
         uri = record["tracking_uri"]
-        run = found[uri].get(record["run_id"]) or fetch_run(clients[uri], record, path)
+        run = found[uri].get(record["run_id"])
+        if run is None:
+            run = fetch_run(clients[uri], record, path)
         if tracking.SUPERSEDED_TAG in run.data.tags:
             skipped.setdefault("superseded", []).append(path)
             continue

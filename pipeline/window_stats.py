@@ -1,8 +1,10 @@
 """Statistics from per-origin forecast errors: Diebold-Mariano against the ERM twin, block-bootstrap intervals.
 
-Pure pandas/numpy functions on each run's predictions artifact (predictions/target_predictions.parquet:
-one row per target test window and selection rule with y_hXX / p_hXX and the station's MASE scale),
-handed over by pipeline.aggregate; nothing is read or written here. Config keys obeyed (passed in):
+Pure numpy functions on each run's predictions artifact (predictions/target_predictions.parquet: one row
+per target test window and selection rule with y_hXX / p_hXX and the station's MASE scale), handed over by
+pipeline.aggregate as a pyarrow Table (or a pandas DataFrame) and kept per rule as `Windows` arrays; nothing
+is read or written here. A grid runs thousands of tests and intervals, so each has a batch form
+(`paired_dm_many`, `cell_intervals_many`) and the one-comparison functions are batches of one. Config keys obeyed (passed in):
 report.bootstrap_samples; horizon and stride in hours, from the run's `forecast.horizon_hours` and
 `forecast.stride_hours` params (the artifact's columns count steps of the cadence).
 

@@ -9,8 +9,9 @@ from scipy import stats as sps
 from statsmodels.stats.multitest import multipletests
 
 from pipeline.errors import InputError
-from pipeline.stats import (DMResult, diebold_mariano, dm_lag_order, friedman, hac_variance, holm, iman_davenport,
-                            nemenyi_cd, nemenyi_q, rank_within, relative_change, win_tie_loss)
+from pipeline.stats import (DMResult, diebold_mariano, diebold_mariano_many, dm_lag_order, friedman, hac_variance,
+                            hac_variances, holm, iman_davenport, nemenyi_cd, nemenyi_q, rank_within, relative_change,
+                            win_tie_loss)
 
 # Loss differences (T = 16); the check values below were computed with numpy/scipy, not published.
 D = np.array([0.5, 0.9, 0.7, -0.2, 0.1, 0.6, 1.0, 0.8, 0.3, -0.4, 0.2, 0.9, 0.6, 0.4, -0.1, 0.5])
@@ -211,3 +212,26 @@ def test_win_tie_loss_and_relative_change():
     assert relative_change(0.9, 1.0) == pytest.approx(-0.1)
     np.testing.assert_allclose(relative_change([1.5, 1.0], [1.0, 0.0]), [0.5, np.nan])
     assert relative_change(-1.0, -2.0) == pytest.approx(0.5)
+
+
+def test_many_series_at_once_give_each_series_its_own_variance_and_test():
+    """The batch lays series end to end: no pair may straddle two series, and each keeps its own lags and gaps.
+    Reference: the quadratic form z' W z / T^2 of each series alone (Newey & West 1987), as above."""
+    rng = np.random.default_rng(7)
+    series, lags, places = [], [], []
+    for size, lag in ((12, 0), (30, 3), (9, 2), (50, 1)):
+        places.append(np.sort(rng.choice(size + 5, size, replace=False)))
+        series.append(rng.normal(0.1, 1.0, size))
+        lags.append(lag)
+    variances = hac_variances(series, lags, places)
+    for d, lag, where, variance in zip(series, lags, places, variances):
+        z = np.zeros(where[-1] + 1)
+        z[where] = d - d.mean()
+        grid = np.arange(z.size)
+        weights = np.maximum(0.0, 1.0 - np.abs(grid[:, None] - grid[None, :]) / (lag + 1))
+        assert variance == pytest.approx(z @ weights @ z / d.size ** 2, rel=1e-12)
+    alone = [diebold_mariano(d, lag, positions=where) for d, lag, where in zip(series, lags, places)]
+    for one, together in zip(alone, diebold_mariano_many(series, lags, places)):
+        assert together.p_value == pytest.approx(one.p_value, rel=1e-12) and together.lags == one.lags
+    constant = diebold_mariano_many([np.zeros(5), np.full(5, 0.5)], [1, 1])
+    assert (constant[0].statistic, constant[0].p_value) == (0.0, 1.0) and constant[1].p_value == 0.0

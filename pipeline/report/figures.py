@@ -18,7 +18,7 @@ import matplotlib.pyplot as plt  # noqa: E402
 import numpy as np  # noqa: E402
 import pandas as pd  # noqa: E402
 
-from pipeline import grid_stats, names, selection  # noqa: E402
+from pipeline import grid_stats, names, selection, stats  # noqa: E402
 from pipeline.metrics import EXCEEDANCE_SCORES  # noqa: E402
 from pipeline.step_words import step_words  # noqa: E402
 
@@ -45,10 +45,40 @@ def _ordered_combos(summary: pd.DataFrame) -> list[str]:
     return order.sort_values(["model", "key"])["combo"].tolist()
 
 
+# A heatmap row is 0.62 in high and every cell is a text matplotlib lays out several times: past this many
+# splits the figure takes minutes, is too tall to read, and past about 1,000 splits exceeds the 2^16 pixels
+# Agg can draw. Then it shows one row per target city; the table below it keeps every split.
+HEATMAP_MAX_ROWS = 60
+
+
+def heatmap_rows(summary: pd.DataFrame) -> tuple[pd.DataFrame, bool]:
+    """The heatmap's rows: the splits, or, past HEATMAP_MAX_ROWS of them, one row per target city holding the
+    mean over that target's splits of each combination's cell means, with the change vs ERM and the best
+    combination recomputed from those means (the Friedman blocks average splits that share a target the same
+    way). Returns (rows, averaged)."""
+    if summary["split"].nunique() <= HEATMAP_MAX_ROWS:
+        return summary, False
+    metric, label = summary["metric"].iloc[0], summary["metric_label"].iloc[0]
+    rows = (summary.groupby(["target", "model", "penalty", "combo"], sort=True, dropna=False)
+            .agg(mean=("mean", "mean"), n_splits=("split_id", "nunique")).reset_index())
+    erm = rows[rows["penalty"] == names.ERM]
+    erm_mean = dict(zip(zip(erm["target"], erm["model"]), erm["mean"]))
+    twin = np.array([erm_mean.get((t, m), np.nan) for t, m in zip(rows["target"], rows["model"])], dtype=np.float64)
+    penalised = ~rows["penalty"].isin([names.ERM, names.NOT_APPLICABLE]).to_numpy()
+    rows["vs_erm_change"] = np.where(penalised, stats.relative_change(rows["mean"].to_numpy(), twin), np.nan)
+    splits = rows.groupby("target")["n_splits"].transform("max")
+    rows["split"] = [f"→ {target} ({count} splits)" for target, count in zip(rows["target"], splits)]
+    loss = grid_stats.as_loss(rows["mean"], metric)
+    rows["best_in_split"] = loss == pd.Series(loss).groupby(rows["target"].to_numpy()).transform("min").to_numpy()
+    return rows.assign(metric=metric, metric_label=label), True
+
+
 def grid_heatmap(summary: pd.DataFrame, rule: str):
     """Rows source -> target, columns model x penalty; numbers = mean metric and the change vs ERM written
     exactly as the report table and `shiftgrid grid` write it (grid_stats.format_change: negative = the
-    penalty lowered the metric); colour = whether that change is better (blue) or worse (red)."""
+    penalty lowered the metric); colour = whether that change is better (blue) or worse (red). Past
+    HEATMAP_MAX_ROWS splits, one row per target city (`heatmap_rows`), said in the title."""
+    summary, averaged = heatmap_rows(summary)
     combos = _ordered_combos(summary)
     splits = sorted(summary["split"].unique())
     gain = summary.assign(gain=grid_stats.gain_vs_erm(summary) * 100.0)
@@ -77,9 +107,11 @@ def grid_heatmap(summary: pd.DataFrame, rule: str):
             ax.text(j, i, text, ha="center", va="center", fontsize=8, fontweight="bold" if is_best else "normal")
     ax.set_xticks(range(len(combos)), combos, rotation=30, ha="right")
     ax.set_yticks(range(len(splits)), splits)
-    ax.set_title(_title(f"{label} by split and model+penalty ({grid_stats.direction_text(metric)}); "
-                        f"{BEST_MARK} = best in split\nsecond line: change vs ERM twin, % (negative = the penalty "
-                        "lowered the metric)", rule))
+    rows = ("target city (mean over its splits: more than "
+            f"{HEATMAP_MAX_ROWS} splits; the table lists each)") if averaged else "split"
+    ax.set_title(_title(f"{label} by {rows} and model+penalty ({grid_stats.direction_text(metric)}); "
+                        f"{BEST_MARK} = best in {'row' if averaged else 'split'}\nsecond line: change vs ERM twin, % "
+                        "(negative = the penalty lowered the metric)", rule))
     bar = fig.colorbar(image, ax=ax, fraction=0.04, pad=0.02)
     bar.set_label("better (+) or worse (-) than the ERM twin, %\n(blue = better, grey = no twin)")
     fig.tight_layout()
