@@ -265,8 +265,8 @@ def test_all_environments_at_once_give_each_environment_its_own_formula(counts, 
 
 
 @pytest.mark.parametrize("counts", [(6, 6, 6), (5, 8, 3)])
-@pytest.mark.parametrize("name,extra", [("irm", {}), ("irm", {"irm_gradient": "autograd"}), ("vrex", {}),
-                                        ("groupdro", {})])
+@pytest.mark.parametrize("name,extra", [("irm", {}), ("irm", {"irm_gradient": "autograd"}),
+                                        ("irm", {"estimator": "squared"}), ("vrex", {}), ("groupdro", {})])
 def test_all_environments_at_once_give_the_gradients_of_a_loop_over_environments(counts, name, extra):
     generator = torch.Generator().manual_seed(1)
     preds = [torch.randn(n, 3, generator=generator, dtype=torch.float64).requires_grad_() for n in counts]
@@ -275,7 +275,9 @@ def test_all_environments_at_once_give_the_gradients_of_a_loop_over_environments
     fused = torch.autograd.grad(loss, preds)
     # the same objective written as a loop over environments (weight 3 > 1: the loss is divided by 3)
     risks = torch.stack([torch.mean((p - y) ** 2) for p, y in zip(preds, targets)])
-    if name == "irm":
+    if name == "irm" and extra.get("estimator") == "squared":
+        term = torch.mean(torch.stack([(2 * torch.mean((p - y) * p)) ** 2 for p, y in zip(preds, targets)]))
+    elif name == "irm":
         halves = [(2 * torch.mean((p[:len(p) // 2] - y[:len(p) // 2]) * p[:len(p) // 2]),
                    2 * torch.mean((p[len(p) // 2:] - y[len(p) // 2:]) * p[len(p) // 2:])) for p, y in zip(preds, targets)]
         term = torch.mean(torch.stack([a * b for a, b in halves]))
