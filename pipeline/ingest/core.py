@@ -62,30 +62,35 @@ def _convert_wide(parsed: dict, kept: np.ndarray, spec: dict, temperature: float
 
 
 def _convert_long(kept: pd.DataFrame, spec: dict, temperature: float):
-    """Convert per (variable, unit) group, then pivot to one row per station and hour."""
-    unit_text = kept["unit_raw"].where(kept["unit_raw"] != "",
-                                       kept["variable"].map(lambda v: spec["units"].get(v, "")))
+    """Convert per (variable, unit) group, then place each value on its row of one row per station and hour."""
+    variable_codes, variables = pd.factorize(kept["variable"], sort=True)
+    fallback_units = np.array([spec["units"].get(variable, "") for variable in variables], dtype=object)
+    unit_text = kept["unit_raw"].where(kept["unit_raw"] != "", fallback_units[variable_codes])
+    parsed, parsed_flags = parse_numbers(kept["value_raw"], spec)  # per cell, so once for every group
     numbers = np.full(len(kept), np.nan)
     flags = np.zeros(len(kept), dtype="int8")
     conversions: dict[str, list] = {}
     for (variable, unit), index in kept.groupby([kept["variable"], unit_text], sort=True).indices.items():
-        rows = kept.iloc[index]
         try:
             conversion = conversion_to_canonical(variable, unit, temperature)
         except InputError as error:
-            first = rows.iloc[0]
-            raise InputError(str(error).split(": ", 1)[-1], file=first["file"], row=int(first["line"]),
+            raise InputError(str(error).split(": ", 1)[-1], file=str(kept["file"].iloc[index[0]]),
+                             row=int(kept["line"].iloc[index[0]]),
                              field=spec.get("unit_column", f"units.{variable}")) from None
-        parsed, parsed_flags = parse_numbers(rows["value_raw"], spec)
-        numbers[index], flags[index] = to_canonical(parsed, parsed_flags, variable, conversion)
+        numbers[index], flags[index] = to_canonical(parsed[index], parsed_flags[index], variable, conversion)
         conversions.setdefault(variable, []).append({**conversion.as_record(), "values": int(len(index))})
-    table = pd.DataFrame({"station_id": kept["station_id"].to_numpy(), "time": kept["utc"].to_numpy(),
-                          "variable": kept["variable"].to_numpy(), "value": numbers, "flag": flags})
-    wide_values = table.pivot(index=["station_id", "time"], columns="variable", values="value")
-    wide_flags = table.pivot(index=["station_id", "time"], columns="variable", values="flag")
-    keys = wide_values.index.to_frame(index=False)
-    values = {v: (wide_values[v].to_numpy(), wide_flags[v].fillna(QC_MISSING).to_numpy("int8"))
-              for v in wide_values.columns}
+    # (station, hour) pairs in sorted order, as a pivot gives them; (station, hour, variable) is unique here.
+    station_codes, stations = pd.factorize(kept["station_id"], sort=True)
+    hour_codes, hours = pd.factorize(kept["utc"], sort=True)
+    pairs, pair_of_row = np.unique(station_codes.astype("int64") * len(hours) + hour_codes, return_inverse=True)
+    keys = pd.DataFrame({"station_id": np.asarray(stations, dtype=object)[pairs // len(hours)],
+                         "time": hours[pairs % len(hours)]})
+    values = {}
+    for code, variable in enumerate(variables):
+        rows = variable_codes == code
+        column_values, column_flags = np.full(len(pairs), np.nan), np.full(len(pairs), QC_MISSING, dtype="int8")
+        column_values[pair_of_row[rows]], column_flags[pair_of_row[rows]] = numbers[rows], flags[rows]
+        values[variable] = column_values, column_flags
     return keys, values, conversions
 
 
@@ -103,7 +108,8 @@ def _complete_grid(keys: pd.DataFrame, values: dict, step: pd.Timedelta) -> pd.D
     starts = np.concatenate([[0], np.cumsum(lengths)[:-1]])
     rows = int(lengths.sum())
     steps_in = np.arange(rows) - np.repeat(starts, lengths)
-    grid = {"station_id": pd.array(list(stations), dtype="string").take(np.repeat(np.arange(len(stations)), lengths)),
+    station_of_row = np.repeat(np.arange(len(stations)), lengths)
+    grid = {"station_id": pd.array(list(stations), dtype="string").take(station_of_row),
             "time": pd.to_datetime((np.repeat(first, lengths) + steps_in * step.value).view("datetime64[ns]"),
                                    utc=True)}
     place = starts[codes] + (nanos - first[codes]) // step.value
@@ -155,14 +161,14 @@ def ingest_city(city: str, fmt: dict, raw_dir, stations: pd.DataFrame,
         frame["variable"] = frame["variable_raw"].map(spec["variables"])
         reason[active() & frame["variable"].isna().to_numpy()] = REASON_CODE["variable_not_mapped"]
         series_keys.append("variable")
-        value_columns = ["variable", "value_raw", "unit_raw"]
+        value_columns = ["value_raw", "unit_raw"]
     else:
         value_columns = list(spec["columns"].values())
     parsed = timeparse.parse_text(frame["time_raw"], spec["time"])
     reason[active() & parsed.isna().to_numpy()] = REASON_CODE["unparseable_timestamp"]
     window = timeparse.window_bounds(spec["time"])
     reason[active() & timeparse.outside_window(parsed, window)] = REASON_CODE["timestamp_outside_window"]
-    exact = qc.mark_exact_duplicates(frame, active(), ["station_id", "time_raw"], value_columns)
+    exact = qc.mark_exact_duplicates(frame, active(), [*series_keys, "time_raw"], value_columns)
     reason[exact] = REASON_CODE["exact_duplicate"]
     if not raw.long:  # the values' text has served (exact duplicates): numbers take far less memory
         parsed_values = parse_number_columns({column: frame[column] for column in value_columns}, spec)
