@@ -139,7 +139,7 @@ class FitProgress:
     def __init__(self, env_names: list, penalty: Penalty, cfg: FitConfig):
         self.env_names, self.penalty, self.cfg = env_names, penalty, cfg
         self.risk_keys = [f"train/risk/{name}" for name in env_names]  # history key of each env's training risk
-        self.since_eval: list[StepTerms] = []  # the steps since the last evaluation
+        self.since_eval: list[tuple] = []  # (loss, loss scale, term, risks) of each step since the last evaluation
         self.history: list[dict[str, float]] = []
         self.snapshots: dict[int, dict[str, torch.Tensor]] = {}
         self.best_value, self.best_step, self.evals_without_gain = math.inf, None, 0
@@ -147,8 +147,9 @@ class FitProgress:
         self.eval_seconds = 0.0
 
     def record_step(self, terms: StepTerms) -> None:
-        """The penalty's terms of one optimizer step; made into floats only at the next evaluation."""
-        self.since_eval.append(terms)
+        """The penalty's terms of one optimizer step, detached (the step's graph is not kept); made into
+        floats only at the next evaluation."""
+        self.since_eval.append((terms.loss.detach(), terms.loss_scale, terms.term, terms.risks))
 
     def _training_means(self) -> dict[str, float]:
         """The mean of each training value over the steps since the last evaluation (none without a step):
@@ -157,10 +158,10 @@ class FitProgress:
         if not steps:
             return {}
         # Unscaled objective (loss / loss_scale) so histories with and without rescaling compare.
-        losses = torch.stack([terms.loss.detach() for terms in steps]).tolist()
-        values = {"train_loss": [loss / terms.loss_scale for loss, terms in zip(losses, steps)],
-                  "penalty_value": torch.stack([terms.term for terms in steps]).tolist()}
-        risks = torch.stack([terms.risks for terms in steps]).T.tolist()
+        losses, scales, terms, risks = zip(*steps)
+        values = {"train_loss": [loss / scale for loss, scale in zip(torch.stack(losses).tolist(), scales)],
+                  "penalty_value": torch.stack(terms).tolist()}
+        risks = torch.stack(risks).T.tolist()
         values.update(zip(self.risk_keys, risks))
         return {key: float(np.mean(column)) for key, column in values.items()}
 
