@@ -2,7 +2,7 @@
 
 Reads job slices (pipeline.config.job_slice: `penalty`, `fit`); writes nothing. Config keys obeyed
 through them: penalty.name, penalty.warmup_steps, penalty.extra.reset_optimizer, fit.sampling,
-fit.max_steps. Pure Python, no torch: it runs while the DAG is planned.
+fit.validation_windows, fit.max_steps. Pure Python, no torch: it runs while the DAG is planned.
 
 The grid reads a penalty's effect as the difference to the ERM run of the same split, model and seed.
 That difference is the penalty's only if nothing else differs. Today's protocol has three things that
@@ -19,6 +19,7 @@ from pipeline.errors import InputError
 from pipeline.names import ERM
 
 DEFAULT_SAMPLING = "balanced"  # what runs logged before fit.sampling existed used
+OLD_VALIDATION_WINDOWS = "all"  # what job slices written before fit.validation_windows existed used
 
 
 def treatment(job: dict) -> dict:
@@ -26,8 +27,15 @@ def treatment(job: dict) -> dict:
     penalty = job.get("penalty") or {}
     warmup = int(penalty.get("warmup_steps", 0))
     reset = bool((penalty.get("extra") or {}).get("reset_optimizer", True))
+    fit = job.get("fit") or {}
     return {"warmup_steps": warmup, "optimizer_reset_at": warmup if reset and warmup > 0 else None,
-            "sampling": (job.get("fit") or {}).get("sampling", DEFAULT_SAMPLING)}
+            "sampling": fit.get("sampling", DEFAULT_SAMPLING),
+            "validation_windows": fit.get("validation_windows", OLD_VALIDATION_WINDOWS)}
+
+
+# The config key behind each part of the treatment, named in the refusal.
+FIELD_OF = {"warmup_steps": "penalty.warmup_steps", "optimizer_reset_at": "penalty.extra.reset_optimizer",
+            "sampling": "fit.sampling", "validation_windows": "fit.validation_windows"}
 
 
 def check_schedule(job: dict) -> None:
@@ -60,5 +68,4 @@ def check_units(units: list[dict]) -> None:
             if value != expected[key]:
                 raise InputError(f"{unit['penalty']} has {key} {value} but its ERM twin {expected[key]}: the twin "
                                  f"must get the same treatment; give every penalty of the sweep the same "
-                                 f"penalty.warmup_steps and penalty.extra.reset_optimizer",
-                                 field="penalty.warmup_steps" if key != "sampling" else "fit.sampling")
+                                 f"{FIELD_OF[key]}", field=FIELD_OF[key])

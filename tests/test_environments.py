@@ -29,7 +29,7 @@ def job(penalty="irm", weight=100.0, rule="source-holdout", also=(), warmup=10, 
     spec = None if penalty is None else {"name": penalty, "weight": weight, "warmup_steps": warmup,
                                          "extra": dict(extra or {})}
     return {"penalty": spec, "selection": {"rule": rule, "also": list(also)},
-            "fit": {"max_steps": 50, "sampling": "balanced", **(fit or {})}}
+            "fit": {"max_steps": 50, "sampling": "balanced", "validation_windows": "non_overlapping", **(fit or {})}}
 
 
 def one_source(**settings):
@@ -130,8 +130,9 @@ def test_twins_with_the_same_schedule_and_sampling_pass():
 
 @pytest.mark.parametrize("penalised,field", [
     (job("irm", warmup=20), "penalty.warmup_steps"),  # reset and selection window at another step
-    (job("irm", extra={"reset_optimizer": False}), "penalty.warmup_steps"),  # optimizer reset on one side only
+    (job("irm", extra={"reset_optimizer": False}), "penalty.extra.reset_optimizer"),  # reset on one side only
     (job("irm", fit={"sampling": "pooled"}), "fit.sampling"),  # batch composition
+    (job("irm", fit={"validation_windows": "all"}), "fit.validation_windows"),  # checkpoints picked elsewhere
 ])
 def test_a_twin_under_another_protocol_is_refused(penalised, field):
     with pytest.raises(InputError, match=field) as caught:
