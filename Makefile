@@ -36,6 +36,8 @@ bench: $(STAMP)
 	$(BIN)/python bench/trainer_vs_bare_torch.py
 	$(BIN)/python bench/seed_ensemble.py
 	$(BIN)/python bench/bookkeeping_scale.py
+	$(BIN)/python bench/planning_time.py
+	$(BIN)/python bench/incremental_cost.py
 	$(BIN)/python bench/command_latency.py
 	$(BIN)/python bench/new_city_latency.py
 
