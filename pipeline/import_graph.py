@@ -100,6 +100,7 @@ class ImportGraph:
     def __init__(self, package_dir: Path | str):
         self.package_dir = Path(package_dir).resolve()
         self._parsed: dict[Path, tuple[tuple[int, int], ModuleImports]] = {}
+        self._families: dict[Path, tuple[tuple[int, int], tuple[str, ...]]] = {}
 
     def imports(self, name: str) -> ModuleImports:
         path = module_file(self.package_dir, name)
@@ -135,13 +136,28 @@ class ImportGraph:
         """Model family name -> the module defining its class (found in the source, nothing imported)."""
         found = {}
         for path in sorted((self.package_dir / "models").glob("*.py")):
-            tree = ast.parse(path.read_bytes(), filename=str(path))
-            for node in ast.walk(tree):
-                if not isinstance(node, ast.ClassDef):
-                    continue
-                for statement in node.body:
-                    if (isinstance(statement, ast.Assign) and len(statement.targets) == 1
-                            and isinstance(statement.targets[0], ast.Name) and statement.targets[0].id == "family"
-                            and isinstance(statement.value, ast.Constant) and isinstance(statement.value.value, str)):
-                        found[statement.value.value] = module_name(self.package_dir, path)
+            found.update(dict.fromkeys(self._families_defined(path), module_name(self.package_dir, path)))
         return found
+
+    def _families_defined(self, path: Path) -> tuple[str, ...]:
+        """The family names one file's classes declare, parsed once per file version (a job asks for
+        every run it logs)."""
+        stat = path.stat()
+        key = (stat.st_size, stat.st_mtime_ns)
+        cached = self._families.get(path)
+        if cached is None or cached[0] != key:
+            cached = (key, tuple(_declared_families(ast.parse(path.read_bytes(), filename=str(path)))))
+            self._families[path] = cached
+        return cached[1]
+
+
+def _declared_families(tree: ast.AST):
+    """Values of class attributes `family = "<name>"` in a parsed module."""
+    for node in ast.walk(tree):
+        if not isinstance(node, ast.ClassDef):
+            continue
+        for statement in node.body:
+            if (isinstance(statement, ast.Assign) and len(statement.targets) == 1
+                    and isinstance(statement.targets[0], ast.Name) and statement.targets[0].id == "family"
+                    and isinstance(statement.value, ast.Constant) and isinstance(statement.value.value, str)):
+                yield statement.value.value
