@@ -21,3 +21,17 @@ def test_overrides_with_brackets_and_quotes_arrive_unchanged(tmp_path):
     received = json.loads(line.split(" ", 1)[1])
     assert received == typed
     assert parse_overrides(received) == typed
+
+
+def test_run_hands_every_snakemake_argument_on_in_order():
+    """Options that start with "-" reach Snakemake one per --snakemake flag, in the order given."""
+    import argparse
+
+    from pipeline.commands import run
+
+    parser = argparse.ArgumentParser()
+    run.add_arguments(parser)
+    args = parser.parse_args(["experiment=demo", "--snakemake=--forcerun", "--snakemake=results/a.json",
+                              "--snakemake=-n"])
+    assert args.overrides == ["experiment=demo"]
+    assert args.snakemake == ["--forcerun", "results/a.json", "-n"]

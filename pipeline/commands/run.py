@@ -9,8 +9,10 @@ from pathlib import Path
 def add_arguments(parser) -> None:
     parser.add_argument("overrides", nargs="*", help="Hydra overrides, e.g. experiment=demo model=lstm,gru")
     parser.add_argument("--profile", default="local", help="Snakemake profile: local, slurm or a folder")
-    parser.add_argument("--snakemake", nargs="*", default=[], metavar="ARG",
-                        help="extra arguments handed to snakemake as they are (e.g. --snakemake=-n)")
+    # extend: each --snakemake adds its values, so options that start with "-" can be passed one per flag
+    parser.add_argument("--snakemake", nargs="*", action="extend", default=[], metavar="ARG",
+                        help="extra arguments handed to snakemake as they are, e.g. --snakemake=-n or "
+                             "--snakemake=--forcerun --snakemake=FILE")
 
 
 def run(args) -> int:
