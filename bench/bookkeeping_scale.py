@@ -223,11 +223,11 @@ def measure_grid(root: Path, n_records: int) -> list[tuple[str, float, str]]:
 def main() -> None:
     parser = argparse.ArgumentParser(description=__doc__.splitlines()[0])
     parser.add_argument("--records", type=int, default=1_000,
-                        help="run records of part 2 (10000 measures the goal's scale directly: about 30 min "
-                             "on 2 loaded cores; fewer are extrapolated linearly)")
+                        help="run records of part 2 (10000 measures the goal's scale directly: a few minutes "
+                             "on 2 cores; fewer are extrapolated linearly)")
     parser.add_argument("--models", type=int, default=6,
-                        help="linear variants in the DAG part: 6 gives 1,116 jobs in a few minutes; 54 gives "
-                             "10,044, which did not finish in 25 min on 2 loaded cores")
+                        help="linear variants in the DAG part: 6 gives 1,116 jobs; 54 gives 10,044 (about 4 min "
+                             "on 2 cores)")
     parser.add_argument("--skip-dag", action="store_true")
     parser.add_argument("--skip-grid", action="store_true")
     args = parser.parse_args()
