@@ -1,11 +1,11 @@
 """Wall time of every `shiftgrid` command on a finished project, each next to its goal (never pass/fail).
 
-    .venv/bin/python bench/command_latency.py [PROJECT] [--overrides experiment=tiny] [--repeat 5]
+    .venv/bin/python bench/command_latency.py [PROJECT] [--overrides experiment=tiny] [--rounds 5]
 
 PROJECT is a finished project folder (config/, Snakefile, results/ with a grid and an MLflow store); without
 one, a tiny project (experiment=tiny) holding a copy of the package is made and run in a temporary folder
 first (minutes); the commands then run that copy, so edits to the checkout during the rounds change nothing. Every command
-runs as a fresh process, as a user types it; the figure is the median of --repeat rounds after one warm-up
+runs as a fresh process, as a user types it; the figure is the median of --rounds rounds after one warm-up
 round (which also fills the plan cache of pipeline.plan_cache, as any earlier Snakemake call would have).
 A round runs every command once, in turn, so figures compared side by side saw the same machine load.
 
@@ -111,14 +111,14 @@ def main() -> None:
     parser = argparse.ArgumentParser(description=__doc__.splitlines()[0])
     parser.add_argument("project", nargs="?", help="finished project folder (default: make a tiny one)")
     parser.add_argument("--overrides", nargs="*", default=["experiment=tiny"])
-    parser.add_argument("--repeat", type=int, default=5)
+    parser.add_argument("--rounds", type=int, default=5)
     args = parser.parse_args()
     with tempfile.TemporaryDirectory() as folder:
         project = Path(args.project).resolve() if args.project else tiny_project(Path(folder), args.overrides)
         load_before = os.getloadavg()[0]  # the machine's state while measuring: other work shifts every figure
-        rows = measure(project, args.overrides, args.repeat)
+        rows = measure(project, args.overrides, args.rounds)
     print(f"cores: {os.cpu_count()}, 1-minute load average {load_before:.1f} before the rounds, "
-          f"{os.getloadavg()[0]:.1f} after; median of {args.repeat} rounds, overrides: {' '.join(args.overrides)}")
+          f"{os.getloadavg()[0]:.1f} after; median of {args.rounds} rounds, overrides: {' '.join(args.overrides)}")
     print(f"{'command':<18} {'seconds':>8}  goal")
     for name, seconds, goal in rows:
         print(f"{name:<18} {seconds:>8.2f}  {goal}")

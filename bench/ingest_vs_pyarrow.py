@@ -66,7 +66,7 @@ def main() -> None:
     parser = argparse.ArgumentParser(description=__doc__.splitlines()[0])
     parser.add_argument("--days", type=int, default=365)
     parser.add_argument("--city", default="arlenvik")
-    parser.add_argument("--repeats", type=int, default=3)
+    parser.add_argument("--rounds", type=int, default=3)
     parser.add_argument("--peak-of", metavar="RAW_DIR", help=argparse.SUPPRESS)  # the child process's mode
     args = parser.parse_args()
     if args.peak_of:
@@ -89,7 +89,7 @@ def main() -> None:
 
         # Alternate the sides, best of N each, so both see the same machine load.
         arrow_times, ingest_times = [], []
-        for _ in range(args.repeats):
+        for _ in range(args.rounds):
             arrow_times.append(best_of(1, read_with_pyarrow))
             ingest_times.append(best_of(1, ingest))
         arrow_s, ingest_s = min(arrow_times), min(ingest_times)
@@ -99,8 +99,8 @@ def main() -> None:
     mb = n_bytes / 1e6
     peak = memory["heap"] + memory["arrow"]
     print(f"city {args.city}: {len(paths)} raw files, {mb:.1f} MB, {args.days} days -> {memory['rows']:,} clean rows")
-    print(f"pyarrow.csv.read_csv  {mb / arrow_s:8.1f} MB/s  ({arrow_s:.3f} s, best of {args.repeats})")
-    print(f"shiftgrid ingestion   {mb / ingest_s:8.1f} MB/s  ({ingest_s:.3f} s, best of {args.repeats})")
+    print(f"pyarrow.csv.read_csv  {mb / arrow_s:8.1f} MB/s  ({arrow_s:.3f} s, best of {args.rounds})")
+    print(f"shiftgrid ingestion   {mb / ingest_s:8.1f} MB/s  ({ingest_s:.3f} s, best of {args.rounds})")
     print(f"ratio ingestion / pyarrow: {arrow_s / ingest_s:.2f}x   (goal >= 0.5x)")
     print(f"peak memory {peak / 1e6:.1f} MB (Python heap {memory['heap'] / 1e6:.1f} + Arrow pool "
           f"{memory['arrow'] / 1e6:.1f}) vs clean table {memory['table'] / 1e6:.1f} MB: "

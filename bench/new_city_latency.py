@@ -1,11 +1,11 @@
 """Wall time of `shiftgrid new-city draft` and `check` next to a real ingestion of the same dump (never pass/fail).
 
-    .venv/bin/python bench/new_city_latency.py [--days 30] [--city arlenvik] [--repeat 3]
+    .venv/bin/python bench/new_city_latency.py [--days 30] [--city arlenvik] [--rounds 3]
 
 Writes the demo's dumps for --days into a temporary folder, then, in each round and in turn (so figures
 compared side by side saw the same machine load): the draft of the city's format from its files, the check
 of the shipped block (ingestion without writing), and the real ingestion that writes the clean table and
-the QC file (pipeline.ingest.run_ingest). Prints the median of --repeat rounds of each, in-process (no
+the QC file (pipeline.ingest.run_ingest). Prints the median of --rounds rounds of each, in-process (no
 interpreter start-up), and the ratios to the real ingestion. The goal of the check is to cost what the
 ingestion costs minus its writes, so that a format can be tried again in seconds. CI does not run this.
 """
@@ -35,7 +35,7 @@ def main() -> int:
     parser = argparse.ArgumentParser(description=__doc__.splitlines()[0])
     parser.add_argument("--days", type=int, default=30)
     parser.add_argument("--city", default="arlenvik")
-    parser.add_argument("--repeat", type=int, default=3)
+    parser.add_argument("--rounds", type=int, default=3)
     args = parser.parse_args()
     config = yaml.safe_load((REPO / "config" / "data" / "demo.yaml").read_text())
     stations_csv = REPO / config["stations"]
@@ -49,14 +49,14 @@ def main() -> int:
                  "ingest (writes)": lambda: run_ingest(args.city, fmt, raw, stations_csv, Path(folder) / "c.parquet",
                                                        Path(folder) / "q.json")}
         times = {name: [] for name in steps}
-        for _ in range(args.repeat + 1):  # the first round warms imports and caches, not counted
+        for _ in range(args.rounds + 1):  # the first round warms imports and caches, not counted
             for name, step in steps.items():
                 started = time.perf_counter()
                 step()
                 times[name].append(time.perf_counter() - started)
         rows = sum(1 for f in files for _ in f.open()) - len(files)
     base = statistics.median(times["ingest (writes)"][1:])
-    print(f"{args.city}, {args.days} days, {len(files)} file(s), {rows} records; median of {args.repeat} rounds")
+    print(f"{args.city}, {args.days} days, {len(files)} file(s), {rows} records; median of {args.rounds} rounds")
     for name, values in times.items():
         median = statistics.median(values[1:])
         print(f"  {name:<16} {median:7.2f} s   x{median / base:5.2f} of the real ingestion")
