@@ -9,7 +9,7 @@ in this order and each in a fresh Python process (as Snakemake starts one):
   anyway; printed apart);
 - cached: the same call with the cache filled by an earlier call;
 - reference: one Hydra composition per model and per model x penalty pair, the way the plan composed
-  before pipeline.config.VariantComposer (compositions only: no splits, no digests).
+  before pipeline.config_variants.VariantComposer (compositions only: no splits, no digests).
 
 Best of --rounds for each. Goals (issue): cold <= 3 s, cached <= 1 s; the reference is printed beside
 cold as a ratio measured in the same run. Never fails on timings.

@@ -1,12 +1,13 @@
 """A cache of the DAG plan: Snakemake invocations and `shiftgrid status` skip Hydra when nothing changed.
 
-Composing the plan costs two Hydra compositions (pipeline.config.VariantComposer), the splits and every
-job's params at every Snakemake invocation: seconds for experiment=full. The plan is a function of the overrides, the config tree, the files the
-plan reads (the station table), the package's code and the library versions (code digests and, with
-tracking.dependency_changes=rerun, versions are part of it); not of where the project folder sits, so a
-moved project keeps its entries. The key covers the overrides, the config tree and the code; the entry
-lists the files the plan read with their sha256, and, for a plan that holds versions, the versions,
-both checked on every load (so a station table outside config/ is covered too).
+Composing the plan costs two Hydra compositions (pipeline.config_variants.VariantComposer), the splits
+and every job's params at every Snakemake invocation: seconds for experiment=full. The plan is a function
+of the overrides, the config tree, the files the plan reads (the station table), the package's code and
+the library versions (code digests and, with tracking.dependency_changes=rerun, versions are part of it);
+not of where the project folder sits, so a moved project keeps its entries. The key covers the
+overrides, the config tree and the code; the entry lists the files the plan read with their sha256, and,
+for a plan that holds versions, the versions, both checked on every load (so a station table outside
+config/ is covered too).
 
 Reads and writes `<project>/.snakemake/shiftgrid-plans/<key>.json` (the newest few entries are kept).
 Obeys no config key itself. Imports neither Hydra nor pandas, so a hit is cheap.

@@ -208,9 +208,10 @@ def plan_config(overrides: str | list | None = None, root: Path | str = ".") -> 
 
 
 def compose_plan(overrides: list[str], root: Path) -> WorkflowPlan:
-    """Compose the configuration (Hydra twice, pipeline.config.VariantComposer) and plan cities, splits, jobs."""
+    """Compose the configuration (Hydra twice: pipeline.config_variants) and plan cities, splits, jobs."""
     from pipeline import search
-    from pipeline.config import VariantComposer, expand_sweep_overrides, forecast_targets, job_slice, validate
+    from pipeline.config import expand_sweep_overrides, forecast_targets, job_slice, validate
+    from pipeline.config_variants import VariantComposer
     from pipeline.names import NOT_APPLICABLE
     from pipeline.splits import plan_splits
     from pipeline.stations import load_stations

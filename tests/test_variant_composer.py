@@ -1,4 +1,4 @@
-"""pipeline.config.VariantComposer gives each model (x penalty) exactly the configuration Hydra composes.
+"""pipeline.config_variants.VariantComposer gives each model (x penalty) exactly the configuration Hydra composes.
 
 Hydra is the reference: every shipped experiment (and none), every shipped model and every shipped
 penalty, compared as plain data with a real Hydra composition of the same overrides. The model node and
@@ -11,7 +11,8 @@ from pathlib import Path
 import pytest
 
 from pipeline.canonical import to_container
-from pipeline.config import VariantComposer, compose_config, expand_sweep_overrides
+from pipeline.config import compose_config, expand_sweep_overrides
+from pipeline.config_variants import VariantComposer
 from pipeline.errors import InputError
 
 REPO = Path(__file__).resolve().parents[1]
