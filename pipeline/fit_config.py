@@ -16,6 +16,14 @@ SAMPLING_MODES = ("balanced", "pooled")  # fit.sampling; the samplers live in pi
 # fit.validation_windows: which validation windows a fit is evaluated and selected on (pipeline.train);
 # the first is the default.
 VALIDATION_WINDOW_MODES = ("non_overlapping", "all")
+# What a job slice written before fit.validation_windows existed was evaluated on: every window. A re-run
+# or a twin check of such a run must read it so, not with today's default.
+VALIDATION_WINDOWS_BEFORE_THE_KEY = "all"
+
+
+def validation_windows_of(fit: dict) -> str:
+    """A job slice's fit.validation_windows, checked; a slice from before the key existed gets `all`."""
+    return FitConfig(**{"validation_windows": VALIDATION_WINDOWS_BEFORE_THE_KEY, **fit}).validation_windows
 
 
 @dataclass

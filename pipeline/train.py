@@ -19,7 +19,7 @@ import pandas as pd
 
 from pipeline import selection
 from pipeline.environments import rotation_groups
-from pipeline.fit_config import FitConfig
+from pipeline.fit_config import FitConfig, validation_windows_of
 from pipeline.metrics import forecast_scores, mse
 from pipeline.models import build_model
 from pipeline.penalties import build_penalty
@@ -38,7 +38,7 @@ def validation_sets(windows, job: dict) -> dict:
     `fit.validation_windows` says (pipeline.fit_config). Test metrics never use these: they take every
     test window."""
     sets = {"source": windows.val_source, "target": windows.val_target}
-    if FitConfig(**job["fit"]).validation_windows == "all":
+    if validation_windows_of(job["fit"]) == "all":
         return sets
     horizon = job["forecast"]["horizon_hours"]
     return {name: subset(window_set, non_overlapping_targets(window_set, horizon))

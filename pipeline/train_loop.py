@@ -11,8 +11,9 @@ What it does, in order:
    with environment weights in the loss), runs one forward pass, asks the penalty for the loss of the
    whole batch (its rows grouped by environment: pipeline.penalties.BatchLayout), clips the gradient norm
    and takes one Adam step; the optimizer is rebuilt when the penalty's warm-up ends (for ERM runs with
-   the same warm-up too: pipeline.twins). The step's logged values stay tensors until the next
-   evaluation, which turns them into floats at once (no conversion per step);
+   the same warm-up too: pipeline.twins). Each step reads only its loss as a float (to stop on a
+   non-finite one); its other logged values stay tensors until the next evaluation turns them into
+   floats at once;
 3. every `eval_every` steps (and at the last step) computes the MSE on every validation set, overall and
    per environment, and stores a history entry. Only AFTER the warm-up (step > penalty.warmup_steps) does
    it store a snapshot and count towards early stopping: a warm-up snapshot was trained without the

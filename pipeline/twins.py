@@ -16,10 +16,10 @@ also keys twins on it (pipeline.grid_stats).
 from __future__ import annotations
 
 from pipeline.errors import InputError
+from pipeline.fit_config import validation_windows_of
 from pipeline.names import ERM
 
 DEFAULT_SAMPLING = "balanced"  # what runs logged before fit.sampling existed used
-OLD_VALIDATION_WINDOWS = "all"  # what job slices written before fit.validation_windows existed used
 
 
 def treatment(job: dict) -> dict:
@@ -30,7 +30,7 @@ def treatment(job: dict) -> dict:
     fit = job.get("fit") or {}
     return {"warmup_steps": warmup, "optimizer_reset_at": warmup if reset and warmup > 0 else None,
             "sampling": fit.get("sampling", DEFAULT_SAMPLING),
-            "validation_windows": fit.get("validation_windows", OLD_VALIDATION_WINDOWS)}
+            "validation_windows": validation_windows_of(fit)}
 
 
 # The config key behind each part of the treatment, named in the refusal.

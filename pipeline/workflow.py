@@ -2,8 +2,8 @@
 
 Reads the Hydra config (overrides passed as `snakemake --config overrides="..."`), the station table and
 the package's source files (for code digests); never reads data, so adding data never changes the job
-list. Composes with Hydra twice whatever the number of model x penalty pairs (pipeline.config.
-VariantComposer derives each pair's config), and only when the plan's inputs changed: otherwise the plan
+list. Composes with Hydra twice whatever the number of model x penalty pairs (pipeline.config_variants
+derives each pair's config), and only when the plan's inputs changed: otherwise the plan
 comes from pipeline.plan_cache (read/written under `.snakemake/shiftgrid-plans/`).
 Each job's params are sorted-key JSON of exactly its config slice plus the digest of the code it runs (the
 rule script's import closure, pipeline.provenance), which is what makes re-runs minimal. Nothing that

@@ -289,3 +289,25 @@ def test_pooled_fit_weights_environment_risks_by_their_share_and_balanced_does_n
         else:
             np.testing.assert_allclose(penalty.env_weights[0].numpy(), expected)
             assert penalty.batch_shapes[0] == [(24, 3), (8, 3), (2, 3)]  # 34 x shares: 24, 8, 2
+
+
+def test_gradient_clipping_equals_torchs_clip_grad_norm_bit_for_bit():
+    """train_loop.clip_gradient_norms skips torch's grouping of tensors but must leave the same gradients
+    as torch.nn.utils.clip_grad_norm_ (the reference), for one network and for several clipped together."""
+    from pipeline.train_loop import clip_gradient_norms
+
+    def networks_with_gradients():
+        torch.manual_seed(3)
+        nets = [torch.nn.Sequential(torch.nn.Linear(7, 16), torch.nn.Tanh(), torch.nn.Linear(16, 4)) for _ in range(3)]
+        x = torch.randn(32, 7)
+        for k, net in enumerate(nets):
+            (net(x) * (k + 1) * 40).pow(2).mean().backward()  # norms well above max_norm: clipping acts
+        return nets
+
+    reference, ours = networks_with_gradients(), networks_with_gradients()
+    for net in reference:
+        torch.nn.utils.clip_grad_norm_(list(net.parameters()), 1.0)
+    clip_gradient_norms([list(net.parameters()) for net in ours], 1.0)
+    for ref_net, our_net in zip(reference, ours):
+        for ref, our in zip(ref_net.parameters(), our_net.parameters()):
+            assert torch.equal(ref.grad, our.grad)

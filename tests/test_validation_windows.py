@@ -91,3 +91,16 @@ def test_an_unknown_mode_is_named():
     with pytest.raises(InputError, match="fit.validation_windows"):
         FitConfig(validation_windows="some")
     assert FitConfig().validation_windows == "non_overlapping"
+
+
+def test_a_job_slice_from_before_the_key_is_evaluated_on_every_window_as_it_was(setting):
+    """A run logged before fit.validation_windows existed (re-trained by `verify`, or checked as a twin)
+    keeps its old treatment, not today's default."""
+    from pipeline import twins
+
+    _, windows, _ = setting
+    old = job("linear", "all")
+    del old["fit"]["validation_windows"]
+    assert validation_sets(windows, old)["source"] is windows.val_source
+    assert twins.treatment(old)["validation_windows"] == "all"
+    assert twins.treatment(job("linear", "non_overlapping"))["validation_windows"] == "non_overlapping"

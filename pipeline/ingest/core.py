@@ -151,7 +151,8 @@ def ingest_city(city: str, fmt: dict, raw_dir, stations: pd.DataFrame,
     def active():
         return reason == 0
 
-    station_codes, delivered_codes = pd.factorize(frame["station_raw"])
+    # a missing code keeps a code of its own (the default -1 would take() the last delivered station)
+    station_codes, delivered_codes = pd.factorize(frame["station_raw"], use_na_sentinel=False)
     mapped = pd.array([spec["station_map"].get(code, code) for code in delivered_codes], dtype="str")
     frame["station_id"] = mapped.take(station_codes)
     unknown = ~frame["station_id"].isin(known).to_numpy()

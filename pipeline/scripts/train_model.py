@@ -1,4 +1,4 @@
-"""Rules train_model / fit_baselines: every run of one job -> MLflow runs + run records (output order)."""
+"""Rule train_model: every run of one job -> MLflow runs + run records (output order)."""
 
 import json
 
