@@ -1,5 +1,7 @@
 """The variable and site-type registry (config/variables.yaml): validation, and new entries without code."""
 
+from pathlib import Path
+
 import pytest
 import yaml
 
@@ -73,6 +75,8 @@ def test_nox_as_no2_converts_with_the_molar_mass_of_no2():
 def test_a_project_reads_its_own_variables_file(tmp_path, monkeypatch):
     """Rules run in the project folder: its config/variables.yaml wins over the shipped one, so a study adds
     a variable without touching the installed package; a project without one uses the shipped file."""
+    # as in a fresh job process: a test that ran the CLI in this worker set the root to its --root
+    monkeypatch.setattr(variables, "_project_root", Path("."))
     monkeypatch.chdir(tmp_path)
     assert registry_file() == PACKAGED_REGISTRY
     content = yaml.safe_load(PACKAGED_REGISTRY.read_text())
