@@ -20,7 +20,11 @@ FORMAT_HINT = "convert the file or set the format's encoding (e.g. latin-1, cp12
 
 def read_text(path, encoding: str = "utf-8", hint: str = FORMAT_HINT) -> str:
     """The whole file as text; InputError FILE:LINE: encoding naming the first byte that does not decode."""
-    data = Path(path).read_bytes()
+    return decode_text(Path(path).read_bytes(), path, encoding, hint)
+
+
+def decode_text(data: bytes, path, encoding: str = "utf-8", hint: str = FORMAT_HINT) -> str:
+    """`read_text` on bytes already read (the error names `path` and the line of the bad byte)."""
     try:
         return data.decode(decoder_name(encoding))
     except UnicodeDecodeError as error:

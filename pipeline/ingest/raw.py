@@ -29,8 +29,7 @@ import pyarrow as pa
 import pyarrow.csv as pacsv
 
 from pipeline.errors import InputError
-from pipeline.provenance import file_digest
-from pipeline.textfile import read_text
+from pipeline.textfile import decode_text, read_text
 
 # Columns of RawTable.frame besides the value columns.
 KEY_COLUMNS = ("file", "line", "station_raw", "time_raw")
@@ -250,11 +249,11 @@ def read_csv_files(paths: list, spec: dict, needed: list[str], frames_of, long: 
             plain_run.clear()
 
     for path in paths:
-        data = Path(path).read_bytes()
-        decoded = read_text(path, spec["encoding"])  # the one-line error naming an undecodable byte's line
+        data = Path(path).read_bytes()  # read once: decoded, parsed and digested from these bytes
+        decoded = decode_text(data, path, spec["encoding"])  # one-line error naming an undecodable byte's line
         plain = _plain_table(data, decoded, spec, path)
         if plain is None:
-            text, digest = _careful_text(decoded, path, spec), file_digest(path)
+            text, digest = _careful_text(decoded, path, spec), hashlib.sha256(data).hexdigest()
             require_columns(text.table.columns, needed, path, spec["header_line"])
             end_plain_run()
             tables.append((file_column(path, len(text.table)), text.table))
